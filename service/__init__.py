@@ -1,0 +1,1 @@
+"""Grovekeeper's HTTP service: API, database tables, job queue and tuning workers."""

@@ -1,0 +1,46 @@
+"""Request dependencies: settings, a database session, the artifact store."""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from typing import Annotated
+
+from fastapi import Depends, Request
+from sqlalchemy.orm import Session
+
+from service.db import get_sessionmaker
+from service.settings import Settings
+from service.storage import LocalStore
+
+
+def get_settings_dep(request: Request) -> Settings:
+    return request.app.state.settings
+
+
+def get_store(request: Request) -> LocalStore:
+    return request.app.state.store
+
+
+def get_session(settings: Annotated[Settings, Depends(get_settings_dep)]) -> Iterator[Session]:
+    session = get_sessionmaker(settings.db_url)()
+    try:
+        yield session
+        session.commit()
+    except BaseException:
+        session.rollback()
+        raise
+    finally:
+        session.close()
+
+
+SettingsDep = Annotated[Settings, Depends(get_settings_dep)]
+StoreDep = Annotated[LocalStore, Depends(get_store)]
+SessionDep = Annotated[Session, Depends(get_session)]
+
+
+def require_key(request: Request) -> None:
+    """Router-level dependency: the key's scope must allow the request's method."""
+    request.app.state.keys.check(request.method, request.headers.get("authorization"))
+
+
+AuthDep = Depends(require_key)

@@ -1,0 +1,37 @@
+"""Loaded models kept in memory, so a prediction never re-reads the model file."""
+
+from __future__ import annotations
+
+import threading
+from collections import OrderedDict
+
+import tuner
+from service.storage import LocalStore
+from service.tables import Model
+
+CAPACITY = 16
+
+
+class PredictorCache:
+    def __init__(self, store: LocalStore, capacity: int = CAPACITY) -> None:
+        self.store = store
+        self.capacity = capacity
+        self._items: OrderedDict[str, tuner.Predictor] = OrderedDict()
+        self._lock = threading.Lock()
+
+    def get(self, model: Model) -> tuner.Predictor:
+        with self._lock:
+            found = self._items.get(model.id)
+            if found is not None:
+                self._items.move_to_end(model.id)
+                return found
+        path = self.store.local_path(model.file_key)
+        booster = tuner.load_booster(path, expected_sha256=model.sha256)
+        predictor = tuner.Predictor(
+            booster, tuner.FeatureSchema.from_dict(model.feature_schema), model.task, model.classes
+        )
+        with self._lock:
+            self._items[model.id] = predictor
+            while len(self._items) > self.capacity:
+                self._items.popitem(last=False)
+        return predictor

@@ -1,0 +1,171 @@
+"""Tuning jobs: submit, list, show, cancel, trials, leaderboard."""
+
+from __future__ import annotations
+
+from typing import Annotated, Literal
+
+import pandas as pd
+from fastapi import APIRouter, Query, Request, Response
+from fastapi.concurrency import run_in_threadpool
+
+from service import repository
+from service.api.deps import SessionDep, SettingsDep, StoreDep
+from service.api.tabular import csv_response, wants_csv
+from service.db import session_scope
+from service.errors import NotFound, Unprocessable
+from service.jobspec import build_run
+from service.schemas import (
+    JobCreate,
+    JobOut,
+    Leaderboard,
+    LeaderboardRow,
+    Page,
+    Progress,
+    TrialOut,
+    as_utc,
+)
+from service.settings import Settings
+from service.storage import LocalStore
+from service.tables import Job, JobStatus, utcnow
+
+router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
+StatusFilter = Literal["queued", "running", "succeeded", "failed", "cancelled"]
+
+
+def to_out(job: Job) -> JobOut:
+    effective = job.spec["effective"]
+    started = as_utc(job.started_at)
+    end = as_utc(job.finished_at) or utcnow()
+    elapsed = (end - started).total_seconds() if started else 0.0
+    return JobOut(
+        id=job.id,
+        dataset_id=job.dataset_id,
+        status=job.status,
+        priority=job.priority,
+        target=effective["target"],
+        task=effective["task"],
+        metric=effective["metric"],
+        direction=effective["direction"],
+        spec=effective,
+        progress=Progress(
+            trials_completed=job.trials_completed,
+            trials_pruned=job.trials_pruned,
+            trials_failed=job.trials_failed,
+            trials_budget=effective["budget"]["trials"],
+            best_score=job.best_score,
+            best_trial_number=job.best_trial_number,
+            elapsed_seconds=round(max(elapsed, 0.0), 3),
+        ),
+        model_id=job.model_id,
+        error=job.error,
+        warnings=job.warnings,
+        cancel_requested=job.cancel_requested,
+        attempts=job.attempts,
+        created_at=as_utc(job.created_at),
+        started_at=started,
+        finished_at=as_utc(job.finished_at),
+    )
+
+
+def _submit(settings: Settings, store: LocalStore, body: JobCreate) -> JobOut:
+    request = body.model_dump(mode="json")
+    with session_scope(settings.db_url) as session:
+        try:
+            dataset = repository.get_dataset(session, body.dataset_id)
+        except NotFound as exc:
+            raise Unprocessable(str(exc), errors=[{"field": "dataset_id",
+                                                   "message": "no such dataset"}]) from exc
+        key, sha = dataset.file_key, dataset.file_sha256
+    frame = pd.read_parquet(store.local_path(key, sha))
+    run = build_run(request, frame)  # every problem with the request surfaces here as 422
+    job_id = repository.new_id("job")
+    with session_scope(settings.db_url) as session:
+        job = repository.add_job(
+            session,
+            id=job_id,
+            dataset_id=body.dataset_id,
+            priority=body.priority,
+            spec={"request": request, "effective": run.effective},
+            study_name=f"grovekeeper-{job_id}",
+            warnings=list(run.data.warnings),
+        )
+        return to_out(job)
+
+
+@router.post("", status_code=202, response_model=JobOut, summary="Queue a tuning job")
+def submit_job(
+    body: JobCreate, response: Response, settings: SettingsDep, store: StoreDep
+) -> JobOut:
+    out = _submit(settings, store, body)
+    response.headers["Location"] = f"/v1/jobs/{out.id}"
+    return out
+
+
+@router.get("", response_model=Page[JobOut])
+def list_jobs(
+    session: SessionDep,
+    status: StatusFilter | None = None,
+    limit: Annotated[int, Query(ge=1, le=1000)] = 100,
+    offset: Annotated[int, Query(ge=0)] = 0,
+) -> Page[JobOut]:
+    rows, count = repository.list_jobs(session, status=status, limit=limit, offset=offset)
+    return Page[JobOut](data=[to_out(j) for j in rows], count=count)
+
+
+@router.get("/{job_id}", response_model=JobOut)
+def get_job(job_id: str, session: SessionDep) -> JobOut:
+    return to_out(repository.get_job(session, job_id))
+
+
+@router.post("/{job_id}/cancel", status_code=202, response_model=JobOut)
+def cancel_job(job_id: str, session: SessionDep) -> JobOut:
+    return to_out(repository.request_cancel(session, job_id))
+
+
+def _trial_out(t: object) -> TrialOut:
+    return TrialOut.model_validate(t, from_attributes=True)
+
+
+@router.get("/{job_id}/trials", response_model=Page[TrialOut])
+def list_trials(
+    job_id: str, request: Request, session: SessionDep, format: str | None = None
+) -> Page[TrialOut] | Response:
+    repository.get_job(session, job_id)
+    trials = [_trial_out(t) for t in repository.list_trials(session, job_id=job_id)]
+    if wants_csv(request, format):
+        header = ["number", "state", "score", "score_std", "boosting_rounds",
+                  "duration_seconds", "fold_scores", "params"]
+        return csv_response(header, ([getattr(t, h) for h in header] for t in trials))
+    return Page[TrialOut](data=trials, count=len(trials))
+
+
+@router.get("/{job_id}/leaderboard", response_model=Leaderboard)
+def leaderboard(
+    job_id: str,
+    request: Request,
+    session: SessionDep,
+    limit: Annotated[int | None, Query(ge=1, le=100_000)] = None,
+    format: Annotated[str | None, Query(pattern="^(json|csv)$")] = None,
+) -> Leaderboard | Response:
+    """Finished trials ranked best first; `Accept: text/csv` or `?format=csv` for CSV."""
+    job = repository.get_job(session, job_id)
+    direction = job.spec["effective"]["direction"]
+    trials, count = repository.leaderboard(session, job_id=job_id, direction=direction,
+                                           limit=limit)
+    rows = [
+        LeaderboardRow(rank=i, number=t.number, score=t.score, score_std=t.score_std,
+                       params=t.params, boosting_rounds=t.boosting_rounds)
+        for i, t in enumerate(trials, start=1)
+    ]
+    if wants_csv(request, format):
+        names = sorted({name for r in rows for name in r.params})
+        header = ["rank", "number", "score", "score_std", "boosting_rounds", *names]
+        return csv_response(header, (
+            [r.rank, r.number, r.score, r.score_std, r.boosting_rounds,
+             *(r.params.get(n) for n in names)] for r in rows))
+    return Leaderboard(job_id=job_id, metric=job.spec["effective"]["metric"],
+                       direction=direction, data=rows, count=count)
+
+
+def job_status_values() -> list[str]:
+    return [s.value for s in JobStatus]

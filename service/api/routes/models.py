@@ -1,0 +1,119 @@
+"""Models: metadata, the model file, predictions (JSON or CSV)."""
+
+from __future__ import annotations
+
+import io
+from typing import Annotated, Literal
+
+import pandas as pd
+from fastapi import APIRouter, Query, Request
+from fastapi.concurrency import run_in_threadpool
+from fastapi.responses import FileResponse, Response
+
+import tuner
+from service import repository
+from service.api.deps import SessionDep, SettingsDep, StoreDep
+from service.errors import PayloadTooLarge, Unprocessable, UnsupportedMediaType
+from service.schemas import ModelOut, PredictRequest, PredictResponse, as_utc
+from service.tables import Model
+
+router = APIRouter(prefix="/v1/models", tags=["models"])
+Unseen = Literal["error", "missing"]
+
+
+def to_out(model: Model) -> ModelOut:
+    return ModelOut(
+        id=model.id, job_id=model.job_id, task=model.task, metric=model.metric,
+        target=model.target, params=model.params, boosting_rounds=model.boosting_rounds,
+        trial_number=model.trial_number, cv=model.cv, holdout=model.holdout,
+        feature_schema=model.feature_schema, classes=model.classes,
+        feature_importance=model.feature_importance, details=model.details,
+        sha256=model.sha256, size_bytes=model.size_bytes, created_at=as_utc(model.created_at),
+    )
+
+
+@router.get("/{model_id}", response_model=ModelOut)
+def get_model(model_id: str, session: SessionDep) -> ModelOut:
+    return to_out(repository.get_model(session, model_id))
+
+
+@router.get("/{model_id}/file", response_class=FileResponse,
+            summary="The LightGBM text model, byte for byte as stored")
+def get_model_file(model_id: str, session: SessionDep, store: StoreDep) -> FileResponse:
+    model = repository.get_model(session, model_id)
+    path = store.local_path(model.file_key, model.sha256)
+    return FileResponse(path, media_type="text/plain; charset=utf-8",
+                        filename=f"{model_id}.txt", headers={"X-Model-Sha256": model.sha256})
+
+
+def _read_csv_rows(body: bytes) -> pd.DataFrame:
+    try:
+        return pd.read_csv(io.BytesIO(body), encoding="utf-8-sig")
+    except (ValueError, UnicodeDecodeError, pd.errors.ParserError) as exc:
+        raise Unprocessable(f"the CSV body could not be read: {exc}",
+                            errors=[{"field": "body", "message": str(exc)}]) from exc
+
+
+def _predict_csv(predictor: tuner.Predictor, body: bytes, unseen: str, limit: int) -> Response:
+    frame = _read_csv_rows(body)
+    if len(frame) == 0:
+        raise Unprocessable("the CSV body has no rows", errors=[{"field": "body",
+                            "message": "no rows"}])
+    if len(frame) > limit:
+        raise PayloadTooLarge(f"at most {limit} rows per request; got {len(frame)}")
+    features, ignored = predictor.schema.frame_from_table(frame, unseen=unseen)
+    result = predictor.predict_frame(features)
+    out = pd.DataFrame({"prediction": result["predictions"]})
+    if result.get("probabilities") is not None:
+        probs = pd.DataFrame(result["probabilities"],
+                             columns=[f"probability_{c}" for c in predictor.classes or []])
+        out = pd.concat([out, probs], axis=1)
+    headers = {"X-Ignored-Columns": ",".join(ignored)} if ignored else None
+    return Response(out.to_csv(index=False), media_type="text/csv; charset=utf-8",
+                    headers=headers)
+
+
+@router.post(
+    "/{model_id}/predictions",
+    response_model=PredictResponse,
+    summary="Predict new rows (JSON rows, or a CSV body with Content-Type: text/csv)",
+    description=(
+        "Missing feature columns and wrong types are a 422 naming row and column. Unseen "
+        "categories are a 422 unless `unseen=missing`, which sends them down LightGBM's "
+        "missing-value branch. Columns the model does not use are ignored and listed in "
+        "`ignored_columns` (CSV: the `X-Ignored-Columns` header)."
+    ),
+    openapi_extra={"requestBody": {"content": {
+        "application/json": {"schema": PredictRequest.model_json_schema()},
+        "text/csv": {"schema": {"type": "string"},
+                     "example": "peak_temp_c,clay_body\n1240,raku\n"},
+    }}},
+)
+async def predict(
+    model_id: str,
+    request: Request,
+    session: SessionDep,
+    settings: SettingsDep,
+    unseen: Annotated[Unseen, Query()] = "error",
+) -> PredictResponse | Response:
+    model = repository.get_model(session, model_id)
+    session.close()
+    predictor = await run_in_threadpool(request.app.state.predictors.get, model)
+    media = (request.headers.get("content-type") or "").split(";")[0].strip().lower()
+    limit = settings.max_prediction_rows
+    body = await request.body()
+    if media == "text/csv":
+        return await run_in_threadpool(_predict_csv, predictor, body, unseen, limit)
+    if media not in ("application/json", ""):
+        raise UnsupportedMediaType(f"send application/json or text/csv, not {media}")
+    payload = PredictRequest.model_validate_json(body or b"{}")
+    if len(payload.rows) > limit:
+        raise PayloadTooLarge(f"at most {limit} rows per request; got {len(payload.rows)}")
+    result = predictor.predict_rows(payload.rows, unseen=unseen)
+    return PredictResponse(
+        model_id=model_id,
+        predictions=result["predictions"],
+        classes=predictor.classes,
+        probabilities=result.get("probabilities"),
+        ignored_columns=result.get("ignored_columns", []),
+    )

@@ -1,0 +1,119 @@
+"""Engine, session scope and schema creation for the service's own tables."""
+
+from __future__ import annotations
+
+import contextlib
+import threading
+import time
+from collections.abc import Iterator
+
+import sqlalchemy as sa
+from sqlalchemy import event
+from sqlalchemy.engine import Engine
+from sqlalchemy.orm import Session, sessionmaker
+
+from service.tables import Base
+
+# Long enough that a writer waiting behind a trial commit never gives up; see
+# LIBRARIES.md §2 (lock waits show up as stalls, not errors, at 30 s and more).
+SQLITE_BUSY_TIMEOUT_S = 60
+
+
+def is_sqlite(url: str) -> bool:
+    return url.startswith("sqlite")
+
+
+def _sqlite_pragmas(dbapi_conn, _record) -> None:  # type: ignore[no-untyped-def]
+    cur = dbapi_conn.cursor()
+    # WAL lets API reads proceed while a worker writes; it persists in the file.
+    cur.execute("PRAGMA journal_mode=WAL")
+    # NORMAL is durable across application crashes in WAL mode (only an OS crash
+    # can roll back the last commits), and it is much cheaper per trial than FULL.
+    cur.execute("PRAGMA synchronous=NORMAL")
+    cur.execute("PRAGMA foreign_keys=ON")
+    cur.execute(f"PRAGMA busy_timeout={SQLITE_BUSY_TIMEOUT_S * 1000}")
+    cur.close()
+
+
+def make_engine(url: str) -> Engine:
+    if is_sqlite(url):
+        engine = sa.create_engine(
+            url, connect_args={"timeout": SQLITE_BUSY_TIMEOUT_S, "check_same_thread": False}
+        )
+        event.listen(engine, "connect", _sqlite_pragmas)
+        return engine
+    return sa.create_engine(url, pool_pre_ping=True, pool_size=10, max_overflow=20)
+
+
+_engines: dict[str, Engine] = {}
+_makers: dict[str, sessionmaker[Session]] = {}
+_lock = threading.Lock()
+
+
+def get_engine(url: str) -> Engine:
+    """One engine (one pool) per URL per process."""
+    with _lock:
+        if url not in _engines:
+            _engines[url] = make_engine(url)
+        return _engines[url]
+
+
+def get_sessionmaker(url: str) -> sessionmaker[Session]:
+    engine = get_engine(url)
+    with _lock:
+        if url not in _makers:
+            _makers[url] = sessionmaker(bind=engine, expire_on_commit=False)
+        return _makers[url]
+
+
+def dispose_engines(*, close: bool = True) -> None:
+    """Drop every pool; a forked child passes close=False so it never closes the
+    parent's connections (SQLAlchemy's advice for multiprocessing)."""
+    with _lock:
+        for engine in _engines.values():
+            engine.dispose(close=close)
+        _engines.clear()
+        _makers.clear()
+
+
+@contextlib.contextmanager
+def session_scope(url: str) -> Iterator[Session]:
+    """One unit of work: commit on success, roll back on any error."""
+    session = get_sessionmaker(url)()
+    try:
+        yield session
+        session.commit()
+    except BaseException:
+        session.rollback()
+        raise
+    finally:
+        session.close()
+
+
+def init_db(url: str, *, attempts: int = 5) -> None:
+    """Create the service tables and Optuna's schema once.
+
+    Several processes starting against a fresh database race on CREATE TABLE
+    (LIBRARIES.md §2, start-up race); a retry after a short pause sees the tables
+    the winner created.
+    """
+    import optuna
+
+    for attempt in range(attempts):
+        try:
+            Base.metadata.create_all(get_engine(url))
+            engine_kwargs = (
+                {"connect_args": {"timeout": SQLITE_BUSY_TIMEOUT_S}} if is_sqlite(url) else {}
+            )
+            storage = optuna.storages.RDBStorage(url, engine_kwargs=engine_kwargs)
+            storage.engine.dispose()
+            return
+        except Exception:
+            if attempt == attempts - 1:
+                raise
+            time.sleep(0.5 * (attempt + 1))
+
+
+def ping(url: str) -> None:
+    with get_engine(url).connect() as conn:
+        conn.execute(sa.text("SELECT 1"))

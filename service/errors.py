@@ -1,0 +1,72 @@
+"""Domain errors raised by routes and the repository; the API turns each into an
+RFC 9457 problem document (see service/api/problems.py)."""
+
+from __future__ import annotations
+
+from typing import Any
+
+
+class ServiceError(Exception):
+    status = 500
+    code = "internal_error"
+    title = "Internal error"
+
+    def __init__(self, detail: str, *, errors: list[dict[str, Any]] | None = None) -> None:
+        super().__init__(detail)
+        self.detail = detail
+        self.errors = errors or []
+
+
+class BadRequest(ServiceError):
+    status = 400
+    code = "bad_request"
+    title = "Bad request"
+
+
+class Unauthorized(ServiceError):
+    status = 401
+    code = "unauthorized"
+    title = "Authentication required"
+
+
+class Forbidden(ServiceError):
+    status = 403
+    code = "forbidden"
+    title = "Not allowed for this key"
+
+
+class NotFound(ServiceError):
+    status = 404
+    code = "not_found"
+    title = "Not found"
+
+
+class Conflict(ServiceError):
+    status = 409
+    code = "conflict"
+    title = "Conflict"
+
+
+class PayloadTooLarge(ServiceError):
+    status = 413
+    code = "payload_too_large"
+    title = "Payload too large"
+
+
+class UnsupportedMediaType(ServiceError):
+    status = 415
+    code = "unsupported_media_type"
+    title = "Unsupported media type"
+
+
+class Unprocessable(ServiceError):
+    status = 422
+    code = "invalid_input"
+    title = "Invalid input"
+
+    def __init__(
+        self, detail: str, *, errors: list[dict[str, Any]] | None = None, code: str | None = None
+    ) -> None:
+        super().__init__(detail, errors=errors)
+        if code:
+            self.code = code

@@ -1,0 +1,145 @@
+"""Uploads: stream the body to disk, sniff it, parse, profile, store as Parquet.
+
+The body is never held whole in memory: it is copied in chunks to a temporary
+file while its size and sha256 are counted, and the upload is refused (413) the
+moment it passes the limit. Nothing reaches the dataset folder or the database
+until the table has parsed; a failure at any step removes what was written.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import re
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from fastapi import Request
+from starlette.datastructures import UploadFile
+
+import tuner
+from service.errors import PayloadTooLarge, Unprocessable, UnsupportedMediaType
+
+CSV_TYPES = {"text/csv", "application/csv", "text/plain"}
+PARQUET_TYPES = {"application/vnd.apache.parquet", "application/x-parquet", "application/parquet"}
+CHUNK = 1 << 20
+NAME_RE = re.compile(r"^[\w .()\-]{1,200}$")
+
+_MAGIC = {
+    b"PK\x03\x04": "a ZIP archive (or a spreadsheet); upload CSV or Parquet",
+    b"\x1f\x8b": "a gzip file; decompress it first",
+    b"\x89PNG": "a PNG image",
+    b"\xff\xd8\xff": "a JPEG image",
+    b"GIF8": "a GIF image",
+    b"%PDF": "a PDF document",
+}
+
+
+@dataclass
+class Received:
+    path: Path
+    size: int
+    sha256: str
+    fmt: str
+    name: str
+
+
+def _media_type(value: str | None) -> str:
+    return (value or "").split(";")[0].strip().lower()
+
+
+def clean_name(name: str | None, fallback: str = "dataset") -> str:
+    name = (name or "").strip()
+    if not name:
+        return fallback
+    if not NAME_RE.match(name):
+        raise Unprocessable(
+            "name may hold letters, digits, spaces and . _ - ( ), at most 200 characters",
+            errors=[{"field": "name", "message": "invalid characters or length"}],
+        )
+    return name
+
+
+async def _copy(chunks: Any, dest: Path, limit: int) -> tuple[int, str]:
+    digest, size = hashlib.sha256(), 0
+    with open(dest, "wb") as out:
+        async for chunk in chunks:
+            size += len(chunk)
+            if size > limit:
+                raise PayloadTooLarge(f"upload exceeds the limit of {limit // (1 << 20)} MB")
+            digest.update(chunk)
+            out.write(chunk)
+    return size, digest.hexdigest()
+
+
+async def _file_chunks(upload: UploadFile) -> Any:
+    while chunk := await upload.read(CHUNK):
+        yield chunk
+
+
+def sniff(path: Path, declared: str) -> str:
+    """The format the bytes really have; refuse what is neither CSV nor Parquet."""
+    with open(path, "rb") as fh:
+        head = fh.read(1 << 16)
+    if not head:
+        raise Unprocessable("the uploaded file is empty", errors=[{"field": "file",
+                            "message": "empty"}], code="empty_file")
+    if head.startswith(b"PAR1"):
+        if declared == "csv":
+            raise UnsupportedMediaType(
+                "the body is a Parquet file but was sent as CSV; "
+                "use Content-Type: application/vnd.apache.parquet"
+            )
+        return "parquet"
+    for magic, what in _MAGIC.items():
+        if head.startswith(magic):
+            raise UnsupportedMediaType(f"the body looks like {what}")
+    if declared == "parquet":
+        raise UnsupportedMediaType("the body is not a Parquet file (no PAR1 magic bytes)")
+    if b"\x00" in head:
+        raise UnsupportedMediaType("the body holds binary data (NUL bytes), not CSV text")
+    return "csv"
+
+
+async def receive(request: Request, tmp: Path, *, limit: int, name: str | None) -> Received:
+    """Copy the upload (raw body or multipart field ``file``) into ``tmp``."""
+    declared = request.headers.get("content-length")
+    if declared is not None and declared.isdigit() and int(declared) > limit + (1 << 16):
+        raise PayloadTooLarge(f"upload exceeds the limit of {limit // (1 << 20)} MB")
+    media = _media_type(request.headers.get("content-type"))
+    if media == "multipart/form-data":
+        async with request.form(max_files=1, max_fields=8) as form:  # closes spooled parts
+            upload = form.get("file")
+            if not isinstance(upload, UploadFile):
+                raise Unprocessable("multipart upload needs a file field named 'file'",
+                                    errors=[{"field": "file", "message": "missing"}])
+            form_name = form.get("name")
+            default = Path(upload.filename or "dataset").stem[:200]
+            name = clean_name(str(form_name) if isinstance(form_name, str) else name,
+                              fallback=_safe(default))
+            part = _media_type(upload.content_type)
+            is_parquet = part in PARQUET_TYPES or (upload.filename or "").endswith(".parquet")
+            fmt = "parquet" if is_parquet else "any"
+            size, digest = await _copy(_file_chunks(upload), tmp, limit)
+    elif media in CSV_TYPES or media in PARQUET_TYPES:
+        fmt = "csv" if media in CSV_TYPES else "parquet"
+        name = clean_name(name)
+        size, digest = await _copy(request.stream(), tmp, limit)
+    else:
+        raise UnsupportedMediaType(
+            f"Content-Type {media or '(none)'} is not accepted; send text/csv, "
+            "application/vnd.apache.parquet or multipart/form-data with a 'file' field"
+        )
+    return Received(path=tmp, size=size, sha256=digest, fmt=sniff(tmp, fmt), name=name)
+
+
+def _safe(stem: str) -> str:
+    cleaned = re.sub(r"[^\w .()\-]", "_", stem).strip()
+    return cleaned or "dataset"
+
+
+def parse(received: Received) -> tuple[Any, list[tuner.ColumnProfile], list[str]]:
+    """Parse and profile the table; bad tables raise tuner.DatasetError (422)."""
+    frame = tuner.read_table(received.path, received.fmt)
+    profiles, warnings = tuner.profile_table(frame)
+    return frame, profiles, warnings

@@ -1,0 +1,170 @@
+"""Every query the API and the worker make, as keyword-only functions over a session."""
+
+from __future__ import annotations
+
+import secrets
+from collections.abc import Sequence
+from typing import Any
+
+import sqlalchemy as sa
+from sqlalchemy.orm import Session
+
+from service.errors import Conflict, NotFound
+from service.tables import Dataset, Job, JobStatus, Model, Trial, utcnow
+
+ACTIVE = (JobStatus.QUEUED.value, JobStatus.RUNNING.value)
+
+
+def new_id(prefix: str) -> str:
+    return f"{prefix}_{secrets.token_hex(8)}"
+
+
+# -- datasets ---------------------------------------------------------------
+
+
+def add_dataset(session: Session, **fields: Any) -> Dataset:
+    dataset = Dataset(**fields)
+    session.add(dataset)
+    session.flush()
+    return dataset
+
+
+def get_dataset(session: Session, dataset_id: str) -> Dataset:
+    dataset = session.get(Dataset, dataset_id)
+    if dataset is None:
+        raise NotFound(f"no dataset with id {dataset_id!r}")
+    return dataset
+
+
+def list_datasets(session: Session, *, limit: int, offset: int) -> tuple[Sequence[Dataset], int]:
+    rows = session.scalars(
+        sa.select(Dataset).order_by(Dataset.created_at.desc()).limit(limit).offset(offset)
+    ).all()
+    count = session.scalar(sa.select(sa.func.count()).select_from(Dataset)) or 0
+    return rows, count
+
+
+def delete_dataset(session: Session, dataset_id: str) -> Dataset:
+    dataset = get_dataset(session, dataset_id)
+    busy = session.scalars(
+        sa.select(Job.id).where(Job.dataset_id == dataset_id, Job.status.in_(ACTIVE))
+    ).all()
+    if busy:
+        raise Conflict(f"dataset {dataset_id!r} is used by active jobs: {', '.join(busy)}")
+    session.delete(dataset)
+    return dataset
+
+
+# -- jobs -------------------------------------------------------------------
+
+
+def add_job(session: Session, **fields: Any) -> Job:
+    job = Job(**fields)
+    session.add(job)
+    session.flush()
+    return job
+
+
+def get_job(session: Session, job_id: str) -> Job:
+    job = session.get(Job, job_id)
+    if job is None:
+        raise NotFound(f"no job with id {job_id!r}")
+    return job
+
+
+def list_jobs(
+    session: Session, *, status: str | None, limit: int, offset: int
+) -> tuple[Sequence[Job], int]:
+    query = sa.select(Job)
+    counter = sa.select(sa.func.count()).select_from(Job)
+    if status is not None:
+        query = query.where(Job.status == status)
+        counter = counter.where(Job.status == status)
+    rows = session.scalars(query.order_by(Job.created_at.desc()).limit(limit).offset(offset)).all()
+    return rows, session.scalar(counter) or 0
+
+
+def request_cancel(session: Session, job_id: str) -> Job:
+    """Cancel a queued job at once; ask the worker of a running job to stop."""
+    job = get_job(session, job_id)
+    if job.status == JobStatus.QUEUED:
+        job.status = JobStatus.CANCELLED.value
+        job.finished_at = utcnow()
+        job.cancel_requested = True
+    elif job.status == JobStatus.RUNNING:
+        job.cancel_requested = True
+    else:
+        raise Conflict(f"job {job_id!r} is already {job.status}")
+    session.flush()
+    return job
+
+
+def is_cancel_requested(session: Session, job_id: str) -> bool:
+    return bool(session.scalar(sa.select(Job.cancel_requested).where(Job.id == job_id)))
+
+
+# -- trials -----------------------------------------------------------------
+
+
+def upsert_trial(session: Session, *, job_id: str, record: dict[str, Any]) -> None:
+    """Insert or replace our copy of one finished trial (idempotent for re-syncs)."""
+    existing = session.get(Trial, (job_id, record["number"]))
+    values = {
+        "state": record["state"],
+        "params": record["params"],
+        "score": record["score"],
+        "score_std": record["score_std"],
+        "fold_scores": record["fold_scores"],
+        "best_iterations": record["best_iterations"],
+        "boosting_rounds": record["boosting_rounds"],
+        "duration_seconds": record["duration_seconds"],
+        "train_seconds": record.get("train_seconds"),
+    }
+    if existing is None:
+        session.add(Trial(job_id=job_id, number=record["number"], **values))
+    else:
+        for key, value in values.items():
+            setattr(existing, key, value)
+    session.flush()
+
+
+def list_trials(session: Session, *, job_id: str) -> Sequence[Trial]:
+    return session.scalars(
+        sa.select(Trial).where(Trial.job_id == job_id).order_by(Trial.number)
+    ).all()
+
+
+def leaderboard(
+    session: Session, *, job_id: str, direction: str, limit: int | None
+) -> tuple[Sequence[Trial], int]:
+    order = Trial.score.desc() if direction == "maximize" else Trial.score.asc()
+    where = (Trial.job_id == job_id, Trial.state == "complete", Trial.score.is_not(None))
+    query = sa.select(Trial).where(*where).order_by(order, Trial.number)
+    if limit is not None:
+        query = query.limit(limit)
+    count = session.scalar(sa.select(sa.func.count()).select_from(Trial).where(*where)) or 0
+    return session.scalars(query).all(), count
+
+
+def trial_counts(session: Session, *, job_id: str) -> dict[str, int]:
+    rows = session.execute(
+        sa.select(Trial.state, sa.func.count()).where(Trial.job_id == job_id).group_by(Trial.state)
+    ).all()
+    return {state: int(n) for state, n in rows}
+
+
+# -- models -----------------------------------------------------------------
+
+
+def add_model(session: Session, **fields: Any) -> Model:
+    model = Model(**fields)
+    session.add(model)
+    session.flush()
+    return model
+
+
+def get_model(session: Session, model_id: str) -> Model:
+    model = session.get(Model, model_id)
+    if model is None:
+        raise NotFound(f"no model with id {model_id!r}")
+    return model

@@ -1,0 +1,194 @@
+"""Request and response shapes, kept apart from the tables."""
+
+from __future__ import annotations
+
+from datetime import UTC, datetime
+from typing import Any, Generic, Literal, TypeVar
+
+from pydantic import BaseModel, ConfigDict, Field, model_validator
+
+Task = Literal["binary", "multiclass", "regression"]
+Strategy = Literal["kfold", "stratified", "group", "time"]
+DEFAULT_TRIALS = 40
+
+
+def as_utc(value: datetime | None) -> datetime | None:
+    # SQLite hands back naive datetimes; every one we store is UTC.
+    if value is None or value.tzinfo is not None:
+        return value
+    return value.replace(tzinfo=UTC)
+
+
+class Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+
+class Budget(Strict):
+    trials: int | None = Field(default=None, ge=1, le=100_000)
+    seconds: float | None = Field(default=None, gt=0, le=7 * 24 * 3600)
+
+    @model_validator(mode="after")
+    def _default_trials(self) -> Budget:
+        if self.trials is None and self.seconds is None:
+            self.trials = DEFAULT_TRIALS
+        return self
+
+
+class CVSpec(Strict):
+    folds: int = Field(default=5, ge=2, le=20)
+    strategy: Strategy | None = None
+    group_column: str | None = None
+    time_column: str | None = None
+
+
+class JobCreate(Strict):
+    """A tuning job request. Only ``dataset_id`` and ``target`` are required."""
+
+    model_config = ConfigDict(
+        extra="forbid",
+        json_schema_extra={
+            "examples": [
+                {"dataset_id": "ds_0123abcd", "target": "defect", "budget": {"trials": 40}}
+            ]
+        },
+    )
+
+    dataset_id: str = Field(min_length=1, max_length=64)
+    target: str = Field(min_length=1)
+    task: Task | None = None
+    metric: str | None = None
+    features: list[str] | None = None
+    exclude: list[str] | None = None
+    budget: Budget = Field(default_factory=Budget)
+    cv: CVSpec = Field(default_factory=CVSpec)
+    holdout_fraction: float = Field(default=0.2, ge=0.0, le=0.5)
+    weight_column: str | None = None
+    search_space: dict[str, Any] | None = None
+    seed: int = Field(default=0, ge=0, le=2**31 - 1)
+    priority: int = Field(default=0, ge=-1000, le=1000)
+
+
+class ColumnOut(BaseModel):
+    name: str
+    kind: str
+    missing: int
+    distinct: int
+    dtype: str | None = None
+
+
+class DatasetOut(BaseModel):
+    id: str
+    name: str
+    rows: int
+    n_columns: int
+    size_bytes: int
+    sha256: str
+    source_format: str
+    created_at: datetime
+    columns: list[ColumnOut]
+    warnings: list[str]
+
+
+T = TypeVar("T")
+
+
+class Page(BaseModel, Generic[T]):
+    data: list[T]
+    count: int
+
+
+class Progress(BaseModel):
+    trials_completed: int
+    trials_pruned: int
+    trials_failed: int
+    trials_budget: int | None
+    best_score: float | None
+    best_trial_number: int | None
+    elapsed_seconds: float
+
+
+class JobOut(BaseModel):
+    id: str
+    dataset_id: str
+    status: str
+    priority: int
+    target: str
+    task: str
+    metric: str
+    direction: str
+    spec: dict[str, Any]
+    progress: Progress
+    model_id: str | None
+    error: str | None
+    warnings: list[str]
+    cancel_requested: bool
+    attempts: int
+    created_at: datetime
+    started_at: datetime | None
+    finished_at: datetime | None
+
+
+class TrialOut(BaseModel):
+    number: int
+    state: str
+    params: dict[str, Any]
+    score: float | None
+    score_std: float | None
+    fold_scores: list[float]
+    best_iterations: list[int]
+    boosting_rounds: int | None
+    duration_seconds: float | None
+
+
+class LeaderboardRow(BaseModel):
+    rank: int
+    number: int
+    score: float
+    score_std: float | None
+    params: dict[str, Any]
+    boosting_rounds: int | None
+
+
+class Leaderboard(BaseModel):
+    job_id: str
+    metric: str
+    direction: str
+    data: list[LeaderboardRow]
+    count: int
+
+
+class ModelOut(BaseModel):
+    id: str
+    job_id: str
+    task: str
+    metric: str
+    target: str
+    params: dict[str, Any]
+    boosting_rounds: int
+    trial_number: int
+    cv: dict[str, Any]
+    holdout: dict[str, Any]
+    feature_schema: dict[str, Any]
+    classes: list[Any] | None
+    feature_importance: list[dict[str, Any]]
+    details: dict[str, Any]
+    sha256: str
+    size_bytes: int
+    created_at: datetime
+
+
+class PredictRequest(Strict):
+    model_config = ConfigDict(
+        extra="forbid",
+        json_schema_extra={"examples": [{"rows": [{"peak_temp_c": 1240, "clay_body": "raku"}]}]},
+    )
+
+    rows: list[dict[str, Any]] = Field(min_length=1)
+
+
+class PredictResponse(BaseModel):
+    model_id: str
+    predictions: list[Any]
+    classes: list[Any] | None = None
+    probabilities: list[list[float]] | None = None
+    ignored_columns: list[str] = []

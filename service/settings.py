@@ -1,0 +1,68 @@
+"""Settings: the only module that reads the environment."""
+
+from __future__ import annotations
+
+from functools import lru_cache
+from pathlib import Path
+
+from pydantic import Field, field_validator
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+
+class Settings(BaseSettings):
+    """Everything a Grovekeeper process needs to know; flags override these values."""
+
+    model_config = SettingsConfigDict(env_prefix="GROVEKEEPER_", extra="ignore")
+
+    home: Path = Field(default=Path("./grovekeeper-data"))
+    database_url: str | None = None
+    max_upload_mb: int = Field(default=1024, ge=1)
+    # Rows one prediction request may carry; bigger batches belong in several requests.
+    max_prediction_rows: int = Field(default=100_000, ge=1)
+    # Seconds without a heartbeat after which a running job is handed back to the queue.
+    stale_after_seconds: float = Field(default=60.0, gt=0)
+    heartbeat_seconds: float = Field(default=5.0, gt=0)
+    # How often an idle worker looks for queued jobs.
+    poll_seconds: float = Field(default=1.0, gt=0)
+    log_format: str = Field(default="text", pattern="^(text|json)$")
+    # Set by ``serve`` for the workers it starts, so they stop when it is gone.
+    parent_pid: int | None = None
+
+    @field_validator("database_url")
+    @classmethod
+    def _normalise_postgres(cls, value: str | None) -> str | None:
+        # SQLAlchemy 2.1 reads postgresql:// as psycopg 3 already; being explicit keeps
+        # URLs written for 2.0 (postgres://, postgresql+psycopg2://) working too.
+        if value is None:
+            return None
+        for prefix in ("postgres://", "postgresql://", "postgresql+psycopg2://"):
+            if value.startswith(prefix):
+                return "postgresql+psycopg://" + value[len(prefix) :]
+        return value
+
+    @property
+    def db_url(self) -> str:
+        if self.database_url:
+            return self.database_url
+        return f"sqlite:///{(self.home / 'grovekeeper.db').resolve()}"
+
+    @property
+    def datasets_dir(self) -> Path:
+        return self.home / "datasets"
+
+    @property
+    def models_dir(self) -> Path:
+        return self.home / "models"
+
+    @property
+    def tmp_dir(self) -> Path:
+        return self.home / "tmp"
+
+    def ensure_dirs(self) -> None:
+        for folder in (self.home, self.datasets_dir, self.models_dir, self.tmp_dir):
+            folder.mkdir(parents=True, exist_ok=True)
+
+
+@lru_cache
+def get_settings() -> Settings:
+    return Settings()

@@ -1,0 +1,127 @@
+"""The service's own tables. Optuna keeps its trials in its own tables beside these;
+``gk_trials`` is our ranked copy so the leaderboard never loads Optuna trial objects."""
+
+from __future__ import annotations
+
+import enum
+from datetime import UTC, datetime
+from typing import Any
+
+import sqlalchemy as sa
+from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
+
+
+def utcnow() -> datetime:
+    return datetime.now(UTC)
+
+
+class Base(DeclarativeBase):
+    type_annotation_map = {dict[str, Any]: sa.JSON, list[Any]: sa.JSON}
+
+
+class JobStatus(enum.StrEnum):
+    QUEUED = "queued"
+    RUNNING = "running"
+    SUCCEEDED = "succeeded"
+    FAILED = "failed"
+    CANCELLED = "cancelled"
+
+    def is_finished(self) -> bool:
+        return self in (JobStatus.SUCCEEDED, JobStatus.FAILED, JobStatus.CANCELLED)
+
+
+class Dataset(Base):
+    __tablename__ = "gk_datasets"
+
+    id: Mapped[str] = mapped_column(sa.String(40), primary_key=True)
+    name: Mapped[str] = mapped_column(sa.String(200))
+    rows: Mapped[int]
+    n_columns: Mapped[int]
+    size_bytes: Mapped[int] = mapped_column(sa.BigInteger)
+    sha256: Mapped[str] = mapped_column(sa.String(64))
+    source_format: Mapped[str] = mapped_column(sa.String(16))
+    columns: Mapped[list[Any]]
+    warnings: Mapped[list[Any]]
+    file_key: Mapped[str] = mapped_column(sa.String(200))
+    # sha256 of the stored Parquet file (``sha256`` is of the bytes as uploaded).
+    file_sha256: Mapped[str] = mapped_column(sa.String(64))
+    created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+
+
+class Job(Base):
+    __tablename__ = "gk_jobs"
+    __table_args__ = (sa.Index("ix_gk_jobs_claim", "status", "priority", "created_at"),)
+
+    id: Mapped[str] = mapped_column(sa.String(40), primary_key=True)
+    # No foreign key: a job keeps the id of its dataset after the dataset is deleted.
+    dataset_id: Mapped[str] = mapped_column(sa.String(40), index=True)
+    status: Mapped[str] = mapped_column(sa.String(16), default=JobStatus.QUEUED.value)
+    priority: Mapped[int] = mapped_column(default=0)
+    spec: Mapped[dict[str, Any]]
+    study_name: Mapped[str] = mapped_column(sa.String(80))
+    trials_completed: Mapped[int] = mapped_column(default=0)
+    trials_pruned: Mapped[int] = mapped_column(default=0)
+    trials_failed: Mapped[int] = mapped_column(default=0)
+    best_score: Mapped[float | None]
+    best_trial_number: Mapped[int | None]
+    cancel_requested: Mapped[bool] = mapped_column(default=False)
+    error: Mapped[str | None] = mapped_column(sa.Text)
+    model_id: Mapped[str | None] = mapped_column(sa.String(40))
+    worker_id: Mapped[str | None] = mapped_column(sa.String(120))
+    attempts: Mapped[int] = mapped_column(default=0)
+    warnings: Mapped[list[Any]] = mapped_column(default=list)
+    created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+    started_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
+    heartbeat_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
+    finished_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
+
+
+class Trial(Base):
+    __tablename__ = "gk_trials"
+    __table_args__ = (sa.Index("ix_gk_trials_rank", "job_id", "state", "score"),)
+
+    job_id: Mapped[str] = mapped_column(sa.ForeignKey("gk_jobs.id"), primary_key=True)
+    number: Mapped[int] = mapped_column(primary_key=True)
+    state: Mapped[str] = mapped_column(sa.String(16))
+    params: Mapped[dict[str, Any]]
+    score: Mapped[float | None]
+    score_std: Mapped[float | None]
+    fold_scores: Mapped[list[Any]]
+    best_iterations: Mapped[list[Any]]
+    boosting_rounds: Mapped[int | None]
+    duration_seconds: Mapped[float | None]
+    train_seconds: Mapped[float | None]
+    finished_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+
+
+class Model(Base):
+    __tablename__ = "gk_models"
+
+    id: Mapped[str] = mapped_column(sa.String(40), primary_key=True)
+    job_id: Mapped[str] = mapped_column(sa.ForeignKey("gk_jobs.id"), index=True)
+    task: Mapped[str] = mapped_column(sa.String(16))
+    metric: Mapped[str] = mapped_column(sa.String(32))
+    params: Mapped[dict[str, Any]]
+    boosting_rounds: Mapped[int]
+    trial_number: Mapped[int]
+    cv: Mapped[dict[str, Any]]
+    holdout: Mapped[dict[str, Any]]
+    feature_schema: Mapped[dict[str, Any]]
+    classes: Mapped[list[Any] | None] = mapped_column(sa.JSON)
+    target: Mapped[str] = mapped_column(sa.String(200))
+    feature_importance: Mapped[list[Any]]
+    details: Mapped[dict[str, Any]] = mapped_column(default=dict)
+    sha256: Mapped[str] = mapped_column(sa.String(64))
+    file_key: Mapped[str] = mapped_column(sa.String(200))
+    size_bytes: Mapped[int] = mapped_column(sa.BigInteger)
+    created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+
+
+class ApiKey(Base):
+    __tablename__ = "gk_api_keys"
+
+    id: Mapped[str] = mapped_column(sa.String(40), primary_key=True)
+    scope: Mapped[str] = mapped_column(sa.String(16))
+    key_hash: Mapped[str] = mapped_column(sa.String(64), unique=True)
+    created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+    revoked_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))

@@ -1,0 +1,82 @@
+"""Small LightGBM helpers shared by the CV objective and the final fit."""
+
+from __future__ import annotations
+
+import re
+from typing import Any
+
+import lightgbm as lgb
+import numpy as np
+import pandas as pd
+
+# LightGBM refuses feature names containing JSON punctuation and rewrites whitespace.
+_UNSAFE = re.compile(r'[\s",:\[\]{}]')
+_OBJECTIVES = {"binary": "binary", "multiclass": "multiclass", "regression": "regression"}
+
+
+def lgb_names(names: list[str]) -> list[str]:
+    """Feature names LightGBM accepts, unique, in the same order as ``names``."""
+    out: list[str] = []
+    seen: set[str] = set()
+    for name in names:
+        safe = _UNSAFE.sub("_", name) or "_"
+        candidate, n = safe, 1
+        while candidate in seen:
+            n += 1
+            candidate = f"{safe}__{n}"
+        seen.add(candidate)
+        out.append(candidate)
+    return out
+
+
+def lgb_frame(frame: pd.DataFrame) -> pd.DataFrame:
+    """``frame`` with LightGBM-safe column names (values untouched)."""
+    return frame.set_axis(lgb_names([str(c) for c in frame.columns]), axis=1)
+
+
+def base_params(task: str, *, num_class: int | None, metric: str, seed: int,
+                num_threads: int) -> dict[str, Any]:
+    """Parameters every model of a search shares, whatever the trial.
+
+    ``deterministic`` plus ``force_col_wise`` is what LightGBM documents as needed for
+    repeatable models; ``verbosity=-1`` keeps its C++ logging out of worker output.
+    """
+    params: dict[str, Any] = {
+        # A Poisson metric needs positive predictions, which the L2 objective cannot promise.
+        "objective": "poisson" if metric == "poisson_deviance" else _OBJECTIVES[task],
+        "verbosity": -1,
+        "num_threads": num_threads,
+        "seed": seed,
+        "deterministic": True,
+        "force_col_wise": True,
+        # Pre-filtering drops features by the trial's min_data_in_leaf; keeping them all
+        # makes every trial (and the final fit) see the same feature set.
+        "feature_pre_filter": False,
+    }
+    if task == "multiclass":
+        params["num_class"] = num_class
+    return params
+
+
+def make_dataset(X: pd.DataFrame, y: np.ndarray, weight: np.ndarray | None,
+                 params: dict[str, Any], reference: lgb.Dataset | None = None) -> lgb.Dataset:
+    """Build a Dataset; categoricals are taken from the pandas ``category`` columns."""
+    return lgb.Dataset(
+        lgb_frame(X), label=y, weight=weight, reference=reference, params=params,
+        free_raw_data=True, categorical_feature="auto",
+    )
+
+
+def predict(booster: lgb.Booster, task: str, frame: pd.DataFrame,
+            num_iteration: int | None = None) -> np.ndarray:
+    """Predict with the convention of :mod:`tuner.metrics`.
+
+    Returns:
+        Binary: probability of class 1, shape ``(n,)``; multiclass: ``(n, K)``
+        probabilities; regression: values.
+    """
+    out = booster.predict(lgb_frame(frame), num_iteration=num_iteration)
+    out = np.asarray(out, dtype="float64")
+    if task == "multiclass" and out.ndim == 1:
+        out = out.reshape(len(frame), -1)
+    return out

@@ -1,0 +1,301 @@
+"""Running, resuming and reading an Optuna search stored behind a storage URL."""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import asdict, dataclass, field
+from typing import Any
+
+import lightgbm as lgb
+import numpy as np
+import optuna
+from optuna.trial import FrozenTrial, TrialState
+
+from tuner._lgb import base_params
+from tuner.data import PreparedData
+from tuner.errors import ConfigError, TunerError
+from tuner.metrics import get_metric
+from tuner.objective import CVObjective
+from tuner.space import DEFAULT_SPACE, LIGHTGBM_DEFAULTS, SearchSpace, initial_params
+from tuner.validation import ValidationPlan
+
+# The only global the tuner sets: Optuna logs every trial at INFO, which floods workers.
+optuna.logging.set_verbosity(optuna.logging.WARNING)
+
+_STATES = {
+    TrialState.COMPLETE: "complete", TrialState.PRUNED: "pruned", TrialState.FAIL: "failed",
+    TrialState.RUNNING: "running", TrialState.WAITING: "waiting",
+}
+_BUDGET_STATES = (TrialState.COMPLETE, TrialState.PRUNED)
+# Failures that stop a search, at least: an error in every trial is not worth repeating.
+_MIN_FAILURE_CAP = 5
+
+
+@dataclass(frozen=True)
+class SearchConfig:
+    """What to search and how long; ``n_trials`` counts complete and pruned trials."""
+
+    task: str
+    metric: str
+    n_trials: int | None = 40
+    timeout: float | None = None
+    seed: int = 0
+    space: SearchSpace = DEFAULT_SPACE
+    max_rounds: int = 1000
+    early_stopping_rounds: int = 50
+    num_threads: int = 1
+    pruner_warmup_folds: int = 1
+    n_startup_trials: int = 8
+
+
+@dataclass(frozen=True)
+class TrialRecord:
+    """A JSON-friendly summary of one trial (``state``: complete/pruned/failed/running)."""
+
+    number: int
+    state: str
+    params: dict[str, Any]
+    score: float | None
+    score_std: float | None
+    fold_scores: list[float] = field(default_factory=list)
+    best_iterations: list[int] = field(default_factory=list)
+    boosting_rounds: int | None = None
+    duration_seconds: float | None = None
+    train_seconds: float | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        """Return the record as a JSON-ready dict."""
+        return asdict(self)
+
+
+@dataclass(frozen=True)
+class SearchResult:
+    """Outcome of :func:`run_search`; counts cover the whole study, resumed runs included."""
+
+    best: TrialRecord | None
+    n_complete: int
+    n_pruned: int
+    n_failed: int
+    direction: str
+
+
+def record_from_frozen(ft: FrozenTrial) -> TrialRecord:
+    """Summarise an Optuna trial (``state`` is ``"waiting"`` for enqueued, unstarted ones)."""
+    attrs = ft.user_attrs
+    complete = ft.state == TrialState.COMPLETE
+    return TrialRecord(
+        number=ft.number,
+        state=_STATES[ft.state],
+        params=dict(attrs.get("params", ft.params)),
+        score=float(ft.value) if complete and ft.value is not None else None,
+        score_std=attrs.get("score_std") if complete else None,
+        fold_scores=list(attrs.get("fold_scores", [])),
+        best_iterations=list(attrs.get("best_iterations", [])),
+        boosting_rounds=attrs.get("boosting_rounds") if complete else None,
+        duration_seconds=ft.duration.total_seconds() if ft.duration is not None else None,
+        train_seconds=attrs.get("train_seconds"),
+    )
+
+
+def _storage(storage_url: str) -> optuna.storages.RDBStorage:
+    engine_kwargs: dict[str, Any] = {}
+    if storage_url.startswith("sqlite"):
+        # Waiting for a lock beats failing: SQLite's default 5 s is short on a busy disk.
+        engine_kwargs = {"connect_args": {"timeout": 60}}
+    return optuna.storages.RDBStorage(storage_url, engine_kwargs=engine_kwargs)
+
+
+def init_storage(storage_url: str) -> None:
+    """Create Optuna's tables once, before several workers open studies concurrently.
+
+    Concurrent first-time schema creation races ("table already exists"), so the service
+    should call this at start-up, from one process.
+    """
+    _storage(storage_url)
+
+
+def _count_trials(storage: optuna.storages.RDBStorage, study_name: str) -> int:
+    try:
+        study_id = storage.get_study_id_from_name(study_name)
+    except KeyError:
+        return 0
+    return len(storage.get_all_trials(study_id, deepcopy=False))
+
+
+def open_study(
+    storage_url: str,
+    study_name: str,
+    *,
+    direction: str,
+    seed: int,
+    create: bool,
+    n_startup_trials: int = 8,
+    n_warmup_steps: int = 0,
+    initial_params: dict[str, Any] | None = None,
+) -> optuna.Study:
+    """Open a study with the tuner's sampler and pruner.
+
+    Args:
+        storage_url: SQLAlchemy URL of the Optuna storage (e.g. ``sqlite:///x.db``).
+        study_name: Unique name; one study per search job.
+        direction: ``"maximize"`` or ``"minimize"``.
+        seed: Sampler seed. A study that already has trials is re-opened with a seed
+            derived from ``seed`` and its trial count, so a resumed search does not replay
+            the random configurations it already tried.
+        create: Create the study if missing and, when it has no trials yet, enqueue
+            ``initial_params`` as trial 0; otherwise the study must exist.
+        n_startup_trials: Random trials before TPE starts modelling.
+        n_warmup_steps: Folds reported before pruning is allowed, minus one.
+        initial_params: Trial 0's parameters; defaults to :data:`LIGHTGBM_DEFAULTS`.
+
+    Returns:
+        The study.
+
+    Raises:
+        KeyError: ``create`` is false and the study does not exist.
+    """
+    storage = _storage(storage_url)
+    existing = _count_trials(storage, study_name)
+    sampler_seed = seed if existing == 0 else int(
+        np.random.SeedSequence([seed, existing]).generate_state(1)[0]
+    )
+    sampler = optuna.samplers.TPESampler(seed=sampler_seed, n_startup_trials=n_startup_trials)
+    pruner = optuna.pruners.MedianPruner(n_startup_trials=5, n_warmup_steps=n_warmup_steps)
+    if not create:
+        return optuna.load_study(study_name=study_name, storage=storage, sampler=sampler,
+                                 pruner=pruner)
+    study = optuna.create_study(storage=storage, study_name=study_name, direction=direction,
+                                sampler=sampler, pruner=pruner, load_if_exists=True)
+    if not study.get_trials(deepcopy=False):
+        study.enqueue_trial(dict(LIGHTGBM_DEFAULTS if initial_params is None else initial_params))
+    return study
+
+
+def _check_config(data: PreparedData, config: SearchConfig) -> None:
+    errors = []
+    if config.task != data.task:
+        errors.append({"field": "task", "message": f"config task '{config.task}' differs from "
+                       f"the data's task '{data.task}'"})
+    if config.n_trials is not None and config.n_trials < 1:
+        errors.append({"field": "n_trials", "message": "must be at least 1"})
+    if config.timeout is not None and config.timeout <= 0:
+        errors.append({"field": "timeout", "message": "must be positive"})
+    if config.metric == "poisson_deviance" and (data.y < 0).any():
+        errors.append({"field": "metric", "message": "poisson_deviance needs a non-negative "
+                       "target"})
+    if errors:
+        raise ConfigError(f"invalid search settings: {errors[0]['message']}", errors)
+
+
+def run_search(
+    data: PreparedData,
+    plan: ValidationPlan,
+    config: SearchConfig,
+    *,
+    storage_url: str,
+    study_name: str,
+    on_trial: Callable[[TrialRecord], None] | None = None,
+    should_stop: Callable[[], bool] | None = None,
+) -> SearchResult:
+    """Run (or resume) a search until its budget, timeout or a stop request.
+
+    The study is created on first use, with trial 0 set to LightGBM's defaults. When it
+    already holds trials (a resumed job), complete and pruned trials count against
+    ``n_trials``; trials left RUNNING by a crashed worker are marked failed, which assumes
+    one worker per study. Trials run one at a time.
+
+    Args:
+        data: Prepared data.
+        plan: Validation plan; the search uses its train part only.
+        config: Budget, seed, space and LightGBM settings.
+        storage_url: Optuna storage URL.
+        study_name: The study to create or resume.
+        on_trial: Called with each finished trial's record, in the worker's thread;
+            exceptions it raises end the search.
+        should_stop: Polled before each fold and after each trial; ``True`` ends the
+            search (the running trial is recorded as pruned).
+
+    Returns:
+        Counts for the whole study and the best complete trial (``None`` if none).
+
+    Raises:
+        ConfigError: The config does not fit the data (task, metric, budget).
+    """
+    _check_config(data, config)
+    metric = get_metric(config.metric, data.task)
+    study = open_study(
+        storage_url, study_name, direction=metric.direction, seed=config.seed, create=True,
+        n_startup_trials=config.n_startup_trials,
+        n_warmup_steps=max(0, config.pruner_warmup_folds - 1),
+        initial_params=initial_params(config.space, n_train_rows=plan.min_fit_rows),
+    )
+    for ft in study.get_trials(deepcopy=False, states=(TrialState.RUNNING,)):
+        study.tell(ft.number, state=TrialState.FAIL)
+    objective = CVObjective(
+        data, plan, metric,
+        params_base=base_params(data.task, num_class=len(data.classes or ()),
+                                metric=metric.name, seed=config.seed,
+                                num_threads=config.num_threads),
+        space=config.space, max_rounds=config.max_rounds,
+        early_stopping_rounds=config.early_stopping_rounds, should_stop=should_stop,
+    )
+    done = len(study.get_trials(deepcopy=False, states=_BUDGET_STATES))
+    failure_cap = max(_MIN_FAILURE_CAP, config.n_trials or 0)
+    failures = 0
+
+    def after_trial(study: optuna.Study, ft: FrozenTrial) -> None:
+        nonlocal failures
+        failures += ft.state == TrialState.FAIL
+        if on_trial is not None:
+            on_trial(record_from_frozen(ft))
+        if failures >= failure_cap or (should_stop is not None and should_stop()):
+            study.stop()
+
+    callbacks: list[Callable[[optuna.Study, FrozenTrial], None]] = [after_trial]
+    if config.n_trials is not None:
+        callbacks.append(optuna.study.MaxTrialsCallback(config.n_trials, states=_BUDGET_STATES))
+    budget_left = config.n_trials is None or done < config.n_trials
+    if budget_left and not (should_stop is not None and should_stop()):
+        # n_trials=None: the budget callback counts only complete and pruned trials, so
+        # failed ones do not eat into it.
+        try:
+            study.optimize(objective, n_trials=None, timeout=config.timeout,
+                           callbacks=callbacks, catch=(lgb.basic.LightGBMError, TunerError))
+        except optuna.exceptions.UpdateFinishedTrialError:
+            # Another process resumed this study and failed our running trial (see above).
+            # Expected only when this worker was told to stop because it lost the job.
+            if should_stop is None or not should_stop():
+                raise TunerError(
+                    f"study '{study_name}' is being run by another process"
+                ) from None
+    return _result(study, metric.direction)
+
+
+def _result(study: optuna.Study, direction: str) -> SearchResult:
+    trials = study.get_trials(deepcopy=False)
+    complete = [t for t in trials if t.state == TrialState.COMPLETE and t.value is not None]
+    best = None
+    if complete:
+        sign = -1.0 if direction == "maximize" else 1.0
+        best = record_from_frozen(min(complete, key=lambda t: (sign * t.value, t.number)))
+    return SearchResult(
+        best=best,
+        n_complete=len(complete),
+        n_pruned=sum(t.state == TrialState.PRUNED for t in trials),
+        n_failed=sum(t.state == TrialState.FAIL for t in trials),
+        direction=direction,
+    )
+
+
+def load_trial_records(storage_url: str, study_name: str) -> list[TrialRecord]:
+    """Records of every started trial of a study (``[]`` if the study does not exist).
+
+    Enqueued trials that never started are left out.
+    """
+    storage = _storage(storage_url)
+    try:
+        study = optuna.load_study(study_name=study_name, storage=storage)
+    except KeyError:
+        return []
+    return [record_from_frozen(t) for t in study.get_trials(deepcopy=False)
+            if t.state != TrialState.WAITING]

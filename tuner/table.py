@@ -1,0 +1,263 @@
+"""Reading uploaded tables and profiling their columns."""
+
+from __future__ import annotations
+
+import csv
+import os
+import re
+from dataclasses import asdict, dataclass
+from typing import Any
+
+import pandas as pd
+from pandas.api import types as ptypes
+
+from tuner._columns import as_level_strings, infer_kind, to_bool_float
+from tuner.errors import DatasetError
+
+KINDS = ("numeric", "categorical", "boolean", "datetime", "text")
+
+# Rows needed before "every value is distinct" suggests an identifier rather than chance.
+_ID_MIN_ROWS = 20
+_LINE_RE = re.compile(r"line (\d+)")
+
+
+@dataclass(frozen=True)
+class ColumnProfile:
+    """What the profiler found out about one column."""
+
+    name: str
+    kind: str
+    missing: int
+    distinct: int
+    dtype: str
+
+    def to_dict(self) -> dict[str, Any]:
+        """Return the profile as a JSON-ready dict."""
+        return asdict(self)
+
+
+def _fail(field: str, message: str) -> DatasetError:
+    return DatasetError(message, [{"field": field, "message": message}])
+
+
+def _first_bad_utf8_line(path: str | os.PathLike[str]) -> int:
+    with open(path, "rb") as handle:
+        for number, raw in enumerate(handle, start=1):
+            try:
+                raw.decode("utf-8")
+            except UnicodeDecodeError:
+                return number
+    return 0
+
+
+def _check_header(path: str | os.PathLike[str]) -> list[str]:
+    """Read the header row ourselves: pandas silently renames duplicates to ``a.1``."""
+    # Read bytes line by line: a text-mode reader decodes ahead and would blame the header
+    # for a bad byte further down. pandas skips blank lines before the header; so do we.
+    with open(path, "rb") as handle:
+        lines = enumerate(handle, start=1)
+        number, raw = next(((n, line) for n, line in lines if line.strip()), (0, b""))
+    if number == 0:
+        raise _fail("file", "the file is empty: no header row found")
+    try:
+        text = raw.decode("utf-8-sig" if number == 1 else "utf-8")
+    except UnicodeDecodeError:
+        where = f"line {number}"
+        raise _fail(where, f"the file is not valid UTF-8 text ({where})") from None
+    try:
+        header = next(csv.reader([text]), [])
+    except csv.Error as exc:
+        raise _fail("file", f"cannot read the header row: {exc}") from None
+    if all(not name.strip() for name in header):
+        raise _fail("file", "the file is empty: no header row found")
+    errors = [
+        {"field": f"column {i + 1}", "message": f"column {i + 1} of the header has no name"}
+        for i, name in enumerate(header)
+        if not name.strip()
+    ]
+    seen: dict[str, int] = {}
+    for i, name in enumerate(header):
+        if name in seen and name.strip():
+            message = f"duplicate column name '{name}' (columns {seen[name] + 1} and {i + 1})"
+            errors.append({"field": name, "message": message})
+        seen.setdefault(name, i)
+    if errors:
+        summary = "; ".join(e["message"] for e in errors[:3])
+        raise DatasetError(f"invalid header row: {summary}", errors)
+    return header
+
+
+def _read_csv(path: str | os.PathLike[str]) -> pd.DataFrame:
+    _check_header(path)
+    try:
+        # low_memory=False: chunked type inference would emit DtypeWarning on mixed columns.
+        return pd.read_csv(path, engine="c", encoding="utf-8-sig", low_memory=False)
+    except pd.errors.EmptyDataError:
+        raise _fail("file", "the file is empty") from None
+    except pd.errors.ParserError as exc:
+        found = _LINE_RE.search(str(exc))
+        where = f"line {found.group(1)}" if found else "file"
+        detail = str(exc).replace("Error tokenizing data. C error: ", "").strip()
+        raise _fail(where, f"cannot parse the CSV file: {detail}") from None
+    except UnicodeDecodeError:
+        line = _first_bad_utf8_line(path)
+        where = f"line {line}" if line else "file"
+        raise _fail(where, f"the file is not valid UTF-8 text ({where})") from None
+
+
+def _read_parquet(path: str | os.PathLike[str]) -> pd.DataFrame:
+    import pyarrow as pa  # local: only Parquet uploads need it loaded
+
+    try:
+        frame = pd.read_parquet(path, engine="pyarrow")
+    except (pa.ArrowException, OSError, ValueError) as exc:
+        raise _fail("file", f"cannot read the Parquet file: {exc}") from None
+    frame.columns = [str(c) for c in frame.columns]
+    names = list(frame.columns)
+    dupes = sorted({n for n in names if names.count(n) > 1})
+    errors = [{"field": n, "message": f"duplicate column name '{n}'"} for n in dupes]
+    errors += [
+        {"field": f"column {i + 1}", "message": f"column {i + 1} has no name"}
+        for i, n in enumerate(names)
+        if not n.strip()
+    ]
+    if errors:
+        raise DatasetError(f"invalid column names: {errors[0]['message']}", errors)
+    return frame
+
+
+def _normalise_column(name: str, s: pd.Series) -> pd.Series:
+    """Bring pyarrow-backed and nullable dtypes back to numpy/pandas defaults.
+
+    LightGBM rejects pyarrow-backed dtypes, and keeping one representation per kind keeps
+    the converters in ``_columns`` simple.
+    """
+    dtype = s.dtype
+    if isinstance(dtype, pd.ArrowDtype):
+        import pyarrow as pa
+
+        kind = dtype.pyarrow_dtype
+        if pa.types.is_string(kind) or pa.types.is_large_string(kind):
+            return s.astype("str")
+        if pa.types.is_dictionary(kind):
+            return s.astype(object).astype("category")
+        if pa.types.is_boolean(kind):
+            return s.astype("boolean") if s.isna().any() else s.astype(bool)
+        if pa.types.is_integer(kind) and not s.isna().any():
+            return s.astype("int64")
+        if pa.types.is_integer(kind) or pa.types.is_floating(kind) or pa.types.is_decimal(kind):
+            return s.astype("float64")
+        if pa.types.is_timestamp(kind) and kind.tz is not None:
+            return s.astype(pd.DatetimeTZDtype("us", kind.tz))
+        if pa.types.is_timestamp(kind) or pa.types.is_date(kind):
+            return s.astype("datetime64[us]")
+        return s.astype(object)
+    if ptypes.is_extension_array_dtype(dtype) and not isinstance(
+        dtype, (pd.CategoricalDtype, pd.StringDtype, pd.DatetimeTZDtype)
+    ):
+        if ptypes.is_bool_dtype(dtype):
+            return s if s.isna().any() else s.astype(bool)
+        if ptypes.is_integer_dtype(dtype) and not s.isna().any():
+            return s.astype("int64")
+        if ptypes.is_numeric_dtype(dtype):
+            return s.astype("float64")
+    if isinstance(dtype, pd.StringDtype) and dtype != "str":
+        return s.astype("str")
+    if isinstance(dtype, pd.CategoricalDtype) and not ptypes.is_string_dtype(
+        dtype.categories.dtype
+    ):
+        return as_level_strings(s).astype("category")
+    return s
+
+
+def read_table(path: str | os.PathLike[str], fmt: str) -> pd.DataFrame:
+    """Read an uploaded CSV or Parquet file into a DataFrame with default dtypes.
+
+    Args:
+        path: Location of the file.
+        fmt: ``"csv"`` (UTF-8, a byte-order mark is tolerated) or ``"parquet"``.
+
+    Returns:
+        The table; text columns use pandas' ``str`` dtype, never pyarrow-backed dtypes.
+
+    Raises:
+        DatasetError: The file is empty, has only a header, has duplicate or empty column
+            names, cannot be parsed (the line number is given when pandas reports one),
+            or is not UTF-8.
+
+    Example:
+        >>> frame = read_table("upload.csv", "csv")  # doctest: +SKIP
+    """
+    if fmt == "csv":
+        frame = _read_csv(path)
+    elif fmt == "parquet":
+        frame = _read_parquet(path)
+    else:
+        raise _fail("format", f"unsupported format '{fmt}'; use 'csv' or 'parquet'")
+    if frame.shape[1] == 0:
+        raise _fail("file", "the file has no columns")
+    if len(frame) == 0:
+        raise _fail("file", "the file has a header but no data rows")
+    return pd.DataFrame({name: _normalise_column(name, frame[name]) for name in frame.columns})
+
+
+def profile_column(s: pd.Series) -> ColumnProfile:
+    """Profile one column (see :func:`profile_table` for the rules)."""
+    kind = infer_kind(s)
+    if kind == "boolean":
+        # "TRUE" and "true" are one value once converted; count what the model sees.
+        distinct = len(set(to_bool_float(s)[0][~s.isna().to_numpy()]))
+    elif kind in ("categorical", "text") or ptypes.is_object_dtype(s.dtype):
+        distinct = int(as_level_strings(s).nunique(dropna=True))
+    else:
+        distinct = int(s.nunique(dropna=True))
+    return ColumnProfile(
+        name=str(s.name), kind=kind, missing=int(s.isna().sum()), distinct=distinct,
+        dtype=str(s.dtype),
+    )
+
+
+def profile_table(df: pd.DataFrame) -> tuple[list[ColumnProfile], list[str]]:
+    """Infer each column's kind and collect warnings about doubtful columns.
+
+    Kinds: ``boolean`` for bool columns and strings that are all ``true``/``false`` (any
+    case); ``numeric`` for numbers; ``datetime`` for datetimes and strings that all parse
+    as ISO-8601 dates or times; other strings are ``categorical`` when they have at most
+    ``max(2, min(1000, 0.5 * non_missing))`` distinct values, else ``text``.
+
+    Args:
+        df: A table from :func:`read_table`.
+
+    Returns:
+        The profiles in column order, and warnings naming constant columns, ID-like columns
+        (integers or strings, all distinct, at least 20 rows) and text columns, which are
+        not used as features.
+    """
+    profiles = [profile_column(df[name]) for name in df.columns]
+    return profiles, column_warnings(profiles, df)
+
+
+def column_warnings(profiles: list[ColumnProfile], df: pd.DataFrame) -> list[str]:
+    """Warnings about constant, ID-like and free-text columns among ``profiles``."""
+    warnings: list[str] = []
+    rows = len(df)
+    for p in profiles:
+        if p.distinct <= 1:
+            warnings.append(f"column '{p.name}' is constant ({p.distinct} distinct value)")
+        id_typed = p.kind in ("categorical", "text") or ptypes.is_integer_dtype(df[p.name].dtype)
+        if id_typed and p.distinct == rows and rows >= _ID_MIN_ROWS:
+            warnings.append(
+                f"column '{p.name}' looks like an identifier (every value is distinct)"
+            )
+        if p.kind == "text":
+            warnings.append(
+                f"column '{p.name}' looks like free text ({p.distinct} distinct values) "
+                "and will not be used as features"
+            )
+    return warnings
+
+
+def kinds_of(profiles: list[ColumnProfile]) -> dict[str, str]:
+    """Map column name to kind."""
+    return {p.name: p.kind for p in profiles}
+
