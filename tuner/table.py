@@ -63,6 +63,7 @@ def _read_parquet(path: str | os.PathLike[str], max_columns: int) -> pd.DataFram
         if len(schema.names) > max_columns:
             raise _fail("file", f"the file has {len(schema.names)} columns; at most "
                                 f"{max_columns} are supported")
+        _check_parquet_names([str(n) for n in schema.names])
         nested = [f.name for f in schema if pa.types.is_nested(f.type)
                   or pa.types.is_binary(f.type) or pa.types.is_large_binary(f.type)
                   or pa.types.is_fixed_size_binary(f.type)]
@@ -80,7 +81,10 @@ def _read_parquet(path: str | os.PathLike[str], max_columns: int) -> pd.DataFram
         reason = str(exc).replace(str(path), "<upload>")
         raise _fail("file", f"cannot read the Parquet file: {reason}") from None
     frame.columns = [str(c) for c in frame.columns]
-    names = list(frame.columns)
+    return frame
+
+
+def _check_parquet_names(names: list[str]) -> None:
     dupes = sorted({n for n in names if names.count(n) > 1})
     errors = [{"field": n, "message": f"duplicate column name '{n}'"} for n in dupes]
     errors += [
@@ -96,7 +100,6 @@ def _read_parquet(path: str | os.PathLike[str], max_columns: int) -> pd.DataFram
     ]
     if errors:
         raise DatasetError(f"invalid column names: {errors[0]['message']}", errors)
-    return frame
 
 
 def _normalise_column(name: str, s: pd.Series) -> pd.Series:
