@@ -57,9 +57,9 @@ class Seeded:
         return counts, self.api.files()
 
 
-def seed(api: LiveApi) -> Seeded:
+def seed(api: LiveApi, headers: dict[str, str] | None = None) -> Seeded:
     frame = kilns(n_rows=150, seed=4)
-    with api.client() as client:
+    with api.client(headers=headers or {}) as client:
         ds = client.post("/v1/datasets", params={"name": "kilns"},
                          content=frame.to_csv(index=False).encode(),
                          headers={"Content-Type": "text/csv"})
@@ -74,7 +74,7 @@ def seed(api: LiveApi) -> Seeded:
             assert made.status_code == 201, made.text
             extra[name] = made.json()["id"]
     assert Worker(api.settings).run_once()
-    with api.client() as client:
+    with api.client(headers=headers or {}) as client:
         done = client.get(f"/v1/jobs/{job.json()['id']}").json()
     assert done["status"] == "succeeded", done
     row = frame.drop(columns=["defect"]).iloc[0].to_dict()
