@@ -106,7 +106,7 @@ def list_jobs(
     session: SessionDep,
     status: StatusFilter | None = None,
     limit: Annotated[int, Query(ge=1, le=1000)] = 100,
-    offset: Annotated[int, Query(ge=0)] = 0,
+    offset: Annotated[int, Query(ge=0, le=1_000_000_000)] = 0,
 ) -> Page[JobOut]:
     rows, count = repository.list_jobs(session, status=status, limit=limit, offset=offset)
     return Page[JobOut](data=[to_out(j) for j in rows], count=count)
