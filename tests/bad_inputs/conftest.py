@@ -11,6 +11,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+import pandas as pd
 import pytest
 import sqlalchemy as sa
 
@@ -78,7 +79,8 @@ def seed(api: LiveApi, headers: dict[str, str] | None = None) -> Seeded:
         done = client.get(f"/v1/jobs/{job.json()['id']}").json()
     assert done["status"] == "succeeded", done
     row = frame.drop(columns=["defect"]).iloc[0].to_dict()
-    row = {k: (v.item() if hasattr(v, "item") else v) for k, v in row.items()}
+    row = {k: None if pd.isna(v) else (v.item() if hasattr(v, "item") else v)
+           for k, v in row.items()}
     return Seeded(api=api, dataset_id=ds.json()["id"], job_id=done["id"],
                   model_id=done["model_id"], row=row, columns=list(frame.columns), extra=extra)
 
