@@ -21,6 +21,8 @@ from service.tables import ApiKey
 SCOPES = ("read", "write", "admin")
 KEY_PREFIX = "gk_"
 _CACHE_SECONDS = 5.0
+# Longer than any key we issue; longer headers are refused before hashing or a lookup.
+_MAX_KEY_LENGTH = 128
 
 
 def hash_key(secret: str) -> str:
@@ -87,7 +89,12 @@ class KeyChecker:
             return  # no key yet: serve refuses non-loopback binds in that state
         if not authorization or not authorization.lower().startswith("bearer "):
             raise Unauthorized("send 'Authorization: Bearer <key>'")
-        scope = self.scope_of(authorization[7:].strip())
+        secret = authorization[7:].strip()
+        # Only the shape of the key decides this shortcut, never its value, so it reveals
+        # nothing about stored keys; the lookup itself is by hash with compare_digest.
+        if not secret.startswith(KEY_PREFIX) or len(secret) > _MAX_KEY_LENGTH:
+            raise Unauthorized("unknown or revoked API key")
+        scope = self.scope_of(secret)
         if scope is None:
             raise Unauthorized("unknown or revoked API key")
         needed = required_scope(method)

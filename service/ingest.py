@@ -81,6 +81,10 @@ def sniff(path: Path, declared: str) -> str:
     """The format the bytes really have; refuse what is neither CSV nor Parquet."""
     with open(path, "rb") as fh:
         head = fh.read(1 << 16)
+    if head[:2] in (b"\xff\xfe", b"\xfe\xff"):
+        raise Unprocessable("the file is UTF-16 text; re-save it as UTF-8",
+                            errors=[{"field": "file", "message": "UTF-16, not UTF-8"}],
+                            code="not_utf8")
     if not head:
         raise Unprocessable("the uploaded file is empty", errors=[{"field": "file",
                             "message": "empty"}], code="empty_file")
@@ -131,6 +135,20 @@ async def receive(request: Request, tmp: Path, *, limit: int, name: str | None) 
             "application/vnd.apache.parquet or multipart/form-data with a 'file' field"
         )
     return Received(path=tmp, size=size, sha256=digest, fmt=sniff(tmp, fmt), name=name)
+
+
+async def read_body(request: Request, *, limit: int) -> bytes:
+    """The whole body of a small request (predictions), refused (413) past ``limit`` bytes."""
+    declared = request.headers.get("content-length")
+    if declared is not None and declared.isdigit() and int(declared) > limit:
+        raise PayloadTooLarge(f"the body exceeds the limit of {limit // (1 << 20)} MB")
+    parts, size = [], 0
+    async for chunk in request.stream():
+        size += len(chunk)
+        if size > limit:
+            raise PayloadTooLarge(f"the body exceeds the limit of {limit // (1 << 20)} MB")
+        parts.append(chunk)
+    return b"".join(parts)
 
 
 def _safe(stem: str) -> str:

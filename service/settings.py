@@ -25,6 +25,8 @@ class Settings(BaseSettings):
     # How often an idle worker looks for queued jobs.
     poll_seconds: float = Field(default=1.0, gt=0)
     log_format: str = Field(default="text", pattern="^(text|json)$")
+    # Browser origins allowed to call the API (comma-separated); empty keeps CORS closed.
+    cors_origins: str = ""
     # Set by ``serve`` for the workers it starts, so they stop when it is gone.
     parent_pid: int | None = None
 

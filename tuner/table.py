@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import csv
 import os
 import re
 from dataclasses import asdict, dataclass
@@ -12,6 +11,7 @@ import pandas as pd
 from pandas.api import types as ptypes
 
 from tuner._columns import as_level_strings, infer_kind, to_bool_float
+from tuner._csvcheck import MAX_COLUMNS, MAX_NAME_LENGTH, check_csv
 from tuner.errors import DatasetError
 
 KINDS = ("numeric", "categorical", "boolean", "datetime", "text")
@@ -40,55 +40,8 @@ def _fail(field: str, message: str) -> DatasetError:
     return DatasetError(message, [{"field": field, "message": message}])
 
 
-def _first_bad_utf8_line(path: str | os.PathLike[str]) -> int:
-    with open(path, "rb") as handle:
-        for number, raw in enumerate(handle, start=1):
-            try:
-                raw.decode("utf-8")
-            except UnicodeDecodeError:
-                return number
-    return 0
-
-
-def _check_header(path: str | os.PathLike[str]) -> list[str]:
-    """Read the header row ourselves: pandas silently renames duplicates to ``a.1``."""
-    # Read bytes line by line: a text-mode reader decodes ahead and would blame the header
-    # for a bad byte further down. pandas skips blank lines before the header; so do we.
-    with open(path, "rb") as handle:
-        lines = enumerate(handle, start=1)
-        number, raw = next(((n, line) for n, line in lines if line.strip()), (0, b""))
-    if number == 0:
-        raise _fail("file", "the file is empty: no header row found")
-    try:
-        text = raw.decode("utf-8-sig" if number == 1 else "utf-8")
-    except UnicodeDecodeError:
-        where = f"line {number}"
-        raise _fail(where, f"the file is not valid UTF-8 text ({where})") from None
-    try:
-        header = next(csv.reader([text]), [])
-    except csv.Error as exc:
-        raise _fail("file", f"cannot read the header row: {exc}") from None
-    if all(not name.strip() for name in header):
-        raise _fail("file", "the file is empty: no header row found")
-    errors = [
-        {"field": f"column {i + 1}", "message": f"column {i + 1} of the header has no name"}
-        for i, name in enumerate(header)
-        if not name.strip()
-    ]
-    seen: dict[str, int] = {}
-    for i, name in enumerate(header):
-        if name in seen and name.strip():
-            message = f"duplicate column name '{name}' (columns {seen[name] + 1} and {i + 1})"
-            errors.append({"field": name, "message": message})
-        seen.setdefault(name, i)
-    if errors:
-        summary = "; ".join(e["message"] for e in errors[:3])
-        raise DatasetError(f"invalid header row: {summary}", errors)
-    return header
-
-
-def _read_csv(path: str | os.PathLike[str]) -> pd.DataFrame:
-    _check_header(path)
+def _read_csv(path: str | os.PathLike[str], max_columns: int) -> pd.DataFrame:
+    check_csv(path, max_columns=max_columns)  # what pandas would silently repair
     try:
         # low_memory=False: chunked type inference would emit DtypeWarning on mixed columns.
         return pd.read_csv(path, engine="c", encoding="utf-8-sig", low_memory=False)
@@ -99,21 +52,39 @@ def _read_csv(path: str | os.PathLike[str]) -> pd.DataFrame:
         where = f"line {found.group(1)}" if found else "file"
         detail = str(exc).replace("Error tokenizing data. C error: ", "").strip()
         raise _fail(where, f"cannot parse the CSV file: {detail}") from None
-    except UnicodeDecodeError:
-        line = _first_bad_utf8_line(path)
-        where = f"line {line}" if line else "file"
-        raise _fail(where, f"the file is not valid UTF-8 text ({where})") from None
 
 
-def _read_parquet(path: str | os.PathLike[str]) -> pd.DataFrame:
+def _read_parquet(path: str | os.PathLike[str], max_columns: int) -> pd.DataFrame:
     import pyarrow as pa  # local: only Parquet uploads need it loaded
+    import pyarrow.parquet as pq
 
     try:
+        schema = pq.read_schema(path)  # the footer only: cheap even for a huge file
+        if len(schema.names) > max_columns:
+            raise _fail("file", f"the file has {len(schema.names)} columns; at most "
+                                f"{max_columns} are supported")
+        _check_parquet_names([str(n) for n in schema.names])
+        nested = [f.name for f in schema if pa.types.is_nested(f.type)
+                  or pa.types.is_binary(f.type) or pa.types.is_large_binary(f.type)
+                  or pa.types.is_fixed_size_binary(f.type)]
+        if nested:
+            raise DatasetError(
+                f"columns holding lists, structs, maps or raw bytes cannot be used: "
+                f"{', '.join(map(repr, nested[:10]))}",
+                [{"field": n, "message": "nested or binary column; flatten it or send text"}
+                 for n in nested])
         frame = pd.read_parquet(path, engine="pyarrow")
     except (pa.ArrowException, OSError, ValueError) as exc:
-        raise _fail("file", f"cannot read the Parquet file: {exc}") from None
+        if isinstance(exc, DatasetError):
+            raise
+        # The message may name our temporary file; the client only needs the reason.
+        reason = str(exc).replace(str(path), "<upload>")
+        raise _fail("file", f"cannot read the Parquet file: {reason}") from None
     frame.columns = [str(c) for c in frame.columns]
-    names = list(frame.columns)
+    return frame
+
+
+def _check_parquet_names(names: list[str]) -> None:
     dupes = sorted({n for n in names if names.count(n) > 1})
     errors = [{"field": n, "message": f"duplicate column name '{n}'"} for n in dupes]
     errors += [
@@ -121,9 +92,14 @@ def _read_parquet(path: str | os.PathLike[str]) -> pd.DataFrame:
         for i, n in enumerate(names)
         if not n.strip()
     ]
+    errors += [
+        {"field": f"column {i + 1}",
+         "message": f"the name of column {i + 1} is longer than {MAX_NAME_LENGTH} characters"}
+        for i, n in enumerate(names)
+        if len(n) > MAX_NAME_LENGTH
+    ]
     if errors:
         raise DatasetError(f"invalid column names: {errors[0]['message']}", errors)
-    return frame
 
 
 def _normalise_column(name: str, s: pd.Series) -> pd.Series:
@@ -163,6 +139,10 @@ def _normalise_column(name: str, s: pd.Series) -> pd.Series:
             return s.astype("float64")
     if isinstance(dtype, pd.StringDtype) and dtype != "str":
         return s.astype("str")
+    if ptypes.is_object_dtype(dtype) and _all_ints(s):
+        # pandas keeps integers beyond 64 bits as Python ints, which Parquet cannot store;
+        # as float64 they keep their magnitude (the last digits are lost, as in any float).
+        return s.astype("float64")
     if isinstance(dtype, pd.CategoricalDtype) and not ptypes.is_string_dtype(
         dtype.categories.dtype
     ):
@@ -170,28 +150,40 @@ def _normalise_column(name: str, s: pd.Series) -> pd.Series:
     return s
 
 
-def read_table(path: str | os.PathLike[str], fmt: str) -> pd.DataFrame:
+def _all_ints(s: pd.Series) -> bool:
+    values = s.dropna()
+    return len(values) > 0 and all(isinstance(v, int) and not isinstance(v, bool)
+                                   for v in values)
+
+
+def read_table(
+    path: str | os.PathLike[str], fmt: str, *, max_columns: int = MAX_COLUMNS
+) -> pd.DataFrame:
     """Read an uploaded CSV or Parquet file into a DataFrame with default dtypes.
 
     Args:
         path: Location of the file.
-        fmt: ``"csv"`` (UTF-8, a byte-order mark is tolerated) or ``"parquet"``.
+        fmt: ``"csv"`` (UTF-8, comma-separated, a byte-order mark is tolerated) or
+            ``"parquet"``.
+        max_columns: Wider tables are refused (default ``MAX_COLUMNS``, 2000).
 
     Returns:
         The table; text columns use pandas' ``str`` dtype, never pyarrow-backed dtypes.
 
     Raises:
-        DatasetError: The file is empty, has only a header, has duplicate or empty column
-            names, cannot be parsed (the line number is given when pandas reports one),
-            or is not UTF-8.
+        DatasetError: The file is empty, has only a header, has duplicate, empty or overlong
+            (> 256 characters) column names, too many columns, rows with a different number
+            of fields than the header (the line number is given), a different delimiter,
+            bad quoting, NUL bytes, text that is not UTF-8, or (Parquet) nested or binary
+            columns. Integers too large for 64 bits are read as float64.
 
     Example:
         >>> frame = read_table("upload.csv", "csv")  # doctest: +SKIP
     """
     if fmt == "csv":
-        frame = _read_csv(path)
+        frame = _read_csv(path, max_columns)
     elif fmt == "parquet":
-        frame = _read_parquet(path)
+        frame = _read_parquet(path, max_columns)
     else:
         raise _fail("format", f"unsupported format '{fmt}'; use 'csv' or 'parquet'")
     if frame.shape[1] == 0:

@@ -6,6 +6,7 @@ from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 
 from fastapi import FastAPI
+from fastapi.middleware.cors import CORSMiddleware
 
 from service.api import problems
 from service.api.predictors import PredictorCache
@@ -38,6 +39,10 @@ def create_app(settings: Settings, *, init: bool = True) -> FastAPI:
     app.state.predictors = PredictorCache(app.state.store)
     app.state.keys = KeyChecker(settings.db_url)
     problems.install(app)
+    origins = [o.strip() for o in settings.cors_origins.split(",") if o.strip()]
+    if origins:  # closed by default: no CORS headers at all unless origins are configured
+        app.add_middleware(CORSMiddleware, allow_origins=origins, allow_methods=["*"],
+                           allow_headers=["Authorization", "Content-Type", "Accept"])
     app.include_router(health.router)
     for router in (datasets.router, jobs.router, models.router):
         app.include_router(router, dependencies=[AuthDep])

@@ -10,6 +10,7 @@ from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
 from pydantic import ValidationError
 from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 import tuner
 from service.errors import ServiceError
@@ -58,9 +59,20 @@ async def _tuner_input_error(_: Request, exc: Exception) -> JSONResponse:
     return problem(422, "Invalid input", str(exc), code="invalid_input", errors=errors)
 
 
+def _entry(e: dict[str, Any]) -> dict[str, Any]:
+    if e.get("type") in ("json_invalid", "json_type"):
+        # The location of a JSON syntax error is a character offset, not a field.
+        offset = [p for p in e.get("loc", ()) if isinstance(p, int)]
+        where = f" at character {offset[0]}" if offset else ""
+        reason = (e.get("ctx") or {}).get("error", "")
+        return {"field": "body", "message": f"the body is not valid JSON{where}"
+                + (f": {reason}" if reason else "")}
+    return {"field": _field(tuple(e.get("loc", ()))), "message": e["msg"]}
+
+
 async def _validation_error(_: Request, exc: Exception) -> JSONResponse:
     assert isinstance(exc, RequestValidationError | ValidationError)
-    errors = [{"field": _field(tuple(e.get("loc", ()))), "message": e["msg"]} for e in exc.errors()]
+    errors = [_entry(e) for e in exc.errors()]
     fields = ", ".join(dict.fromkeys(e["field"] for e in errors))
     return problem(422, "Invalid request", f"invalid fields: {fields}", code="validation_error",
                    errors=errors)
@@ -68,7 +80,8 @@ async def _validation_error(_: Request, exc: Exception) -> JSONResponse:
 
 async def _http_error(_: Request, exc: Exception) -> JSONResponse:
     assert isinstance(exc, StarletteHTTPException)
-    title = {404: "Not found", 405: "Method not allowed", 413: "Payload too large"}.get(
+    title = {400: "Bad request", 404: "Not found", 405: "Method not allowed",
+             413: "Payload too large", 415: "Unsupported media type"}.get(
         exc.status_code, "Request failed"
     )
     code = title.lower().replace(" ", "_")
@@ -81,6 +94,37 @@ async def _unexpected(_: Request, exc: Exception) -> JSONResponse:
     return problem(500, "Internal error", "the server failed; see its log", code="internal_error")
 
 
+class CatchAll:
+    """Outermost guard: an unexpected exception becomes a 500 problem document.
+
+    Starlette's own handler for ``Exception`` answers and then re-raises, so the server
+    logs the error twice and drops the connection; this one answers and keeps serving.
+    """
+
+    def __init__(self, app: ASGIApp) -> None:
+        self.app = app
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        started = False
+
+        async def watch(message: Message) -> None:
+            nonlocal started
+            started = started or message["type"] == "http.response.start"
+            await send(message)
+
+        try:
+            await self.app(scope, receive, watch)
+        except Exception as exc:  # noqa: BLE001 - the last line of defence
+            log.exception("unhandled error", exc_info=exc)
+            if not started:
+                response = problem(500, "Internal error", "the server failed; see its log",
+                                   code="internal_error")
+                await response(scope, receive, send)
+
+
 def install(app: FastAPI) -> None:
     """Handlers are looked up along the exception's MRO, so base classes cover subclasses."""
     app.add_exception_handler(ServiceError, _service_error)
@@ -91,3 +135,73 @@ def install(app: FastAPI) -> None:
     app.add_exception_handler(ValidationError, _validation_error)  # bodies we parse ourselves
     app.add_exception_handler(StarletteHTTPException, _http_error)
     app.add_exception_handler(Exception, _unexpected)
+    app.add_middleware(CatchAll)
+    document(app)
+
+
+# -- OpenAPI: say what error answers really look like ------------------------------
+
+PROBLEM_SCHEMA: dict[str, Any] = {
+    "title": "Problem",
+    "type": "object",
+    "description": "An RFC 9457 problem document.",
+    "required": ["type", "title", "status", "detail", "code"],
+    "properties": {
+        "type": {"type": "string"},
+        "title": {"type": "string"},
+        "status": {"type": "integer"},
+        "detail": {"type": "string"},
+        "code": {"type": "string", "description": "stable, machine-readable error code"},
+        "errors": {
+            "type": "array",
+            "description": "the fields at fault",
+            "items": {
+                "type": "object",
+                "required": ["field", "message"],
+                "properties": {"field": {"type": "string"}, "message": {"type": "string"}},
+            },
+        },
+    },
+}
+_ERRORS = {
+    "400": "Malformed request (for example broken multipart data)",
+    "401": "No API key, or an unknown or revoked one",
+    "403": "The key's scope does not allow this method",
+    "404": "No such resource",
+    "405": "Method not allowed",
+    "409": "Conflicts with the resource's state",
+    "413": "Body or batch over the configured limit",
+    "415": "Content type or file format not accepted",
+    "422": "A field is invalid; `errors` names each one",
+    "500": "Server failure (never a client mistake)",
+}
+_PUBLIC = ("/healthz", "/readyz")
+
+
+def document(app: FastAPI) -> None:
+    """Replace FastAPI's JSON 422 schema with problem documents on every operation."""
+    build = app.openapi
+
+    def openapi() -> dict[str, Any]:
+        if app.openapi_schema is not None:
+            return app.openapi_schema
+        spec = build()
+        components = spec.setdefault("components", {}).setdefault("schemas", {})
+        components["Problem"] = PROBLEM_SCHEMA
+        for name in ("HTTPValidationError", "ValidationError"):
+            components.pop(name, None)
+        ref = {"$ref": "#/components/schemas/Problem"}
+        for path, item in spec.get("paths", {}).items():
+            for operation in item.values():
+                responses = operation.setdefault("responses", {})
+                codes = ["500"] if path in _PUBLIC else list(_ERRORS)
+                if path == "/readyz":
+                    codes.append("503")
+                for code in codes:
+                    description = _ERRORS.get(code, "Database unreachable")
+                    responses[code] = {"description": description,
+                                       "content": {PROBLEM: {"schema": ref}}}
+        app.openapi_schema = spec
+        return spec
+
+    app.openapi = openapi  # type: ignore[method-assign]

@@ -109,7 +109,7 @@ async def upload_dataset(
 def list_datasets(
     session: SessionDep,
     limit: Annotated[int, Query(ge=1, le=1000)] = 100,
-    offset: Annotated[int, Query(ge=0)] = 0,
+    offset: Annotated[int, Query(ge=0, le=1_000_000_000)] = 0,
 ) -> Page[DatasetOut]:
     rows, count = repository.list_datasets(session, limit=limit, offset=offset)
     return Page[DatasetOut](data=[to_out(d) for d in rows], count=count)

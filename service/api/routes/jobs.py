@@ -106,7 +106,7 @@ def list_jobs(
     session: SessionDep,
     status: StatusFilter | None = None,
     limit: Annotated[int, Query(ge=1, le=1000)] = 100,
-    offset: Annotated[int, Query(ge=0)] = 0,
+    offset: Annotated[int, Query(ge=0, le=1_000_000_000)] = 0,
 ) -> Page[JobOut]:
     rows, count = repository.list_jobs(session, status=status, limit=limit, offset=offset)
     return Page[JobOut](data=[to_out(j) for j in rows], count=count)
@@ -119,14 +119,21 @@ def get_job(job_id: str, session: SessionDep) -> JobOut:
 
 @router.post("/{job_id}/cancel", status_code=202, response_model=JobOut)
 def cancel_job(job_id: str, session: SessionDep) -> JobOut:
-    return to_out(repository.request_cancel(session, job_id))
+    job = repository.request_cancel(session, job_id)
+    # Commit before answering: the session dependency's own commit may run after the
+    # response is sent, and a client's next request must already see the cancellation.
+    session.commit()
+    return to_out(job)
 
 
 def _trial_out(t: object) -> TrialOut:
     return TrialOut.model_validate(t, from_attributes=True)
 
 
-@router.get("/{job_id}/trials", response_model=Page[TrialOut])
+_CSV_TOO = {200: {"content": {"text/csv": {"schema": {"type": "string"}}}}}
+
+
+@router.get("/{job_id}/trials", response_model=Page[TrialOut], responses=_CSV_TOO)
 def list_trials(
     job_id: str, request: Request, session: SessionDep, format: str | None = None
 ) -> Page[TrialOut] | Response:
@@ -139,7 +146,7 @@ def list_trials(
     return Page[TrialOut](data=trials, count=len(trials))
 
 
-@router.get("/{job_id}/leaderboard", response_model=Leaderboard)
+@router.get("/{job_id}/leaderboard", response_model=Leaderboard, responses=_CSV_TOO)
 def leaderboard(
     job_id: str,
     request: Request,

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import io
 from typing import Annotated, Literal
 
 import pandas as pd
@@ -11,10 +10,11 @@ from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import FileResponse, Response
 
 import tuner
-from service import repository
+from service import ingest, repository
 from service.api.deps import SessionDep, SettingsDep, StoreDep
 from service.errors import PayloadTooLarge, Unprocessable, UnsupportedMediaType
 from service.schemas import ModelOut, PredictRequest, PredictResponse, as_utc
+from service.storage import LocalStore
 from service.tables import Model
 
 router = APIRouter(prefix="/v1/models", tags=["models"])
@@ -46,19 +46,20 @@ def get_model_file(model_id: str, session: SessionDep, store: StoreDep) -> FileR
                         filename=f"{model_id}.txt", headers={"X-Model-Sha256": model.sha256})
 
 
-def _read_csv_rows(body: bytes) -> pd.DataFrame:
-    try:
-        return pd.read_csv(io.BytesIO(body), encoding="utf-8-sig")
-    except (ValueError, UnicodeDecodeError, pd.errors.ParserError) as exc:
-        raise Unprocessable(f"the CSV body could not be read: {exc}",
-                            errors=[{"field": "body", "message": str(exc)}]) from exc
+def _read_csv_rows(store: LocalStore, body: bytes) -> pd.DataFrame:
+    # The same reader as uploads, so a ragged row or a duplicate column is refused with its
+    # line number here too instead of being repaired by pandas.
+    with store.temp_path(".csv") as tmp:
+        tmp.write_bytes(body)
+        return tuner.read_table(tmp, "csv")
 
 
-def _predict_csv(predictor: tuner.Predictor, body: bytes, unseen: str, limit: int) -> Response:
-    frame = _read_csv_rows(body)
-    if len(frame) == 0:
-        raise Unprocessable("the CSV body has no rows", errors=[{"field": "body",
-                            "message": "no rows"}])
+def _predict_csv(predictor: tuner.Predictor, store: LocalStore, body: bytes, unseen: str,
+                 limit: int) -> Response:
+    if not body.strip():
+        raise Unprocessable("the CSV body is empty; send a header row and at least one row",
+                            errors=[{"field": "body", "message": "empty"}])
+    frame = _read_csv_rows(store, body)
     if len(frame) > limit:
         raise PayloadTooLarge(f"at most {limit} rows per request; got {len(frame)}")
     features, ignored = predictor.schema.frame_from_table(frame, unseen=unseen)
@@ -81,19 +82,23 @@ def _predict_csv(predictor: tuner.Predictor, body: bytes, unseen: str, limit: in
         "Missing feature columns and wrong types are a 422 naming row and column. Unseen "
         "categories are a 422 unless `unseen=missing`, which sends them down LightGBM's "
         "missing-value branch. Columns the model does not use are ignored and listed in "
-        "`ignored_columns` (CSV: the `X-Ignored-Columns` header)."
+        "`ignored_columns` (CSV: the `X-Ignored-Columns` header). An empty batch is a 422; "
+        "more rows than `GROVEKEEPER_MAX_PREDICTION_ROWS`, or a body over "
+        "`GROVEKEEPER_MAX_UPLOAD_MB`, is a 413."
     ),
     openapi_extra={"requestBody": {"content": {
         "application/json": {"schema": PredictRequest.model_json_schema()},
         "text/csv": {"schema": {"type": "string"},
                      "example": "peak_temp_c,clay_body\n1240,raku\n"},
     }}},
+    responses={200: {"content": {"text/csv": {"schema": {"type": "string"}}}}},
 )
 async def predict(
     model_id: str,
     request: Request,
     session: SessionDep,
     settings: SettingsDep,
+    store: StoreDep,
     unseen: Annotated[Unseen, Query()] = "error",
 ) -> PredictResponse | Response:
     model = repository.get_model(session, model_id)
@@ -101,12 +106,15 @@ async def predict(
     predictor = await run_in_threadpool(request.app.state.predictors.get, model)
     media = (request.headers.get("content-type") or "").split(";")[0].strip().lower()
     limit = settings.max_prediction_rows
-    body = await request.body()
+    body = await ingest.read_body(request, limit=settings.max_upload_mb * (1 << 20))
     if media == "text/csv":
-        return await run_in_threadpool(_predict_csv, predictor, body, unseen, limit)
+        return await run_in_threadpool(_predict_csv, predictor, store, body, unseen, limit)
     if media not in ("application/json", ""):
         raise UnsupportedMediaType(f"send application/json or text/csv, not {media}")
-    payload = PredictRequest.model_validate_json(body or b"{}")
+    if not body.strip():
+        raise Unprocessable('the body is empty; send {"rows": [{column: value, ...}, ...]}',
+                            errors=[{"field": "rows", "message": "missing"}])
+    payload = PredictRequest.model_validate_json(body)
     if len(payload.rows) > limit:
         raise PayloadTooLarge(f"at most {limit} rows per request; got {len(payload.rows)}")
     result = predictor.predict_rows(payload.rows, unseen=unseen)
