@@ -7,10 +7,10 @@ from contextlib import asynccontextmanager
 
 from fastapi import FastAPI
 
-from service.api import problems
+from service.api import openapi_examples, problems
 from service.api.predictors import PredictorCache
 from service.api.deps import AuthDep
-from service.api.routes import datasets, health, jobs, models
+from service.api.routes import bundle, datasets, events, health, jobs, metrics, models
 from service.auth import KeyChecker
 from service.db import init_db
 from service.settings import Settings
@@ -41,4 +41,9 @@ def create_app(settings: Settings, *, init: bool = True) -> FastAPI:
     app.include_router(health.router)
     for router in (datasets.router, jobs.router, models.router):
         app.include_router(router, dependencies=[AuthDep])
+    # Practitioner-facing additions: live events, bundles, /metrics, documented examples.
+    for router in (events.router, bundle.router, metrics.router):
+        app.include_router(router, dependencies=[AuthDep])
+    metrics.install(app)
+    openapi_examples.install(app)
     return app
