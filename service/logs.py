@@ -10,13 +10,16 @@ import contextlib
 import json
 import logging
 import sys
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping
 from contextvars import ContextVar
 from datetime import UTC, datetime
+from types import MappingProxyType
 from typing import Any
 
 CONTEXT_KEYS = ("job_id", "trial", "worker_id")
-_context: ContextVar[dict[str, Any]] = ContextVar("grovekeeper_log_context", default={})
+_context: ContextVar[Mapping[str, Any]] = ContextVar(
+    "grovekeeper_log_context", default=MappingProxyType({})
+)
 
 
 @contextlib.contextmanager
