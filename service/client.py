@@ -40,7 +40,14 @@ def _reason(response: httpx.Response) -> str:
         return f"HTTP {response.status_code}: {text or response.reason_phrase}"
     if isinstance(body, dict) and "detail" in body:
         code = body.get("code") or body.get("title") or ""
-        return f"HTTP {response.status_code} {code}: {body['detail']}"
+        reason = f"HTTP {response.status_code} {code}: {body['detail']}"
+        # The fields at fault, unless the detail already names them all.
+        fields = [f"{e.get('field')}: {e.get('message')}" for e in body.get("errors") or []
+                  if isinstance(e, dict) and f"{e.get('field')}: " not in reason]
+        if fields:
+            more = f" (+{len(fields) - 2} more)" if len(fields) > 2 else ""
+            reason += " [" + "; ".join(fields[:2]) + more + "]"
+        return reason
     return f"HTTP {response.status_code}: {str(body)[:200]}"
 
 
