@@ -42,8 +42,11 @@ def create_app(settings: Settings, *, init: bool = True) -> FastAPI:
     for router in (datasets.router, jobs.router, models.router):
         app.include_router(router, dependencies=[AuthDep])
     # Practitioner-facing additions: live events, bundles, /metrics, documented examples.
-    for router in (events.router, bundle.router, metrics.router):
+    for router in (events.router, bundle.router):
         app.include_router(router, dependencies=[AuthDep])
+    # Like /readyz, no key: a scraper needs no secret, and it must still answer (with
+    # grovekeeper_database_up 0) when the database, which holds the keys, is down.
+    app.include_router(metrics.router)
     metrics.install(app)
     openapi_examples.install(app)
     return app
