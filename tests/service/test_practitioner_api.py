@@ -174,3 +174,15 @@ def test_progress_line_redraws_on_a_terminal_and_prints_changes_elsewhere() -> N
     assert len(lines) == 3  # the repeated state printed once
     assert lines[0] == "4/10 trials  1 pruned  best roc_auc 0.8123  1:05 elapsed  ~0:30 left"
     assert lines[-1].endswith("succeeded")
+
+
+def test_errors_are_one_short_line_for_a_terminal(api: LiveApi) -> None:
+    with api.client() as client:
+        missing = client.get("/v1/jobs/job_nope")
+        invalid = client.get("/v1/jobs", params={"limit": 0})
+    for response, code in ((missing, "not_found"), (invalid, "validation_error")):
+        assert response.headers["content-type"] == "application/problem+json"
+        # One line of JSON and a newline, so curl's output ends before the prompt.
+        assert response.text.endswith("}\n") and response.text.count("\n") == 1
+        assert response.json()["code"] == code and len(response.text) < 300
+    assert invalid.json()["errors"][0]["field"] == "limit"
