@@ -46,4 +46,16 @@ call -H 'Content-Type: application/json' "$BASE/v1/models/$MODEL/predictions" \
 echo
 head -n 4 "$DIR/kilns.csv" | call --data-binary @- -H 'Content-Type: text/csv' \
   "$BASE/v1/models/$MODEL/predictions"
+
+echo "7. the job's story as Server-Sent Events (ends with the final status)"
+call -N "$BASE/v1/jobs/$JOB/events" | grep '^event:' | sort | uniq -c
+
+echo "8. lists as CSV, and Prometheus metrics"
+call -H 'Accept: text/csv' "$BASE/v1/jobs?limit=3"
+call "$BASE/metrics" | grep -E '^grovekeeper_(jobs|queue_depth|trials_total)'
+
+echo "9. the model bundle, predicting with lightgbm and pandas alone"
+call -o "$DIR/bundle.zip" "$BASE/v1/models/$MODEL/bundle"
+(cd "$DIR" && "$PY" -m zipfile -e bundle.zip . && head -n 4 kilns.csv > rows.csv \
+  && "$PY" "$MODEL/predict.py" rows.csv)
 echo "walkthrough finished"

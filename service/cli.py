@@ -204,6 +204,10 @@ def build_parser() -> argparse.ArgumentParser:
     common(create)
     create.add_argument("--scope", choices=["read", "write", "admin"], required=True)
     create.set_defaults(func=cmd_keys_create)
+
+    from service.client_cli import register  # upload, tune, board, predict, ...
+
+    register(sub)
     return parser
 
 

@@ -105,6 +105,8 @@ class Progress(BaseModel):
     best_score: float | None
     best_trial_number: int | None
     elapsed_seconds: float
+    # Seconds left, from the pace of the trials so far (None until one has finished).
+    eta_seconds: float | None = None
 
 
 class JobOut(BaseModel):

@@ -24,6 +24,7 @@ import tuner
 from service import queue, repository
 from service.db import init_db, session_scope
 from service.jobspec import RunPlan, build_run
+from service.logs import log_context
 from service.schemas import as_utc
 from service.settings import Settings
 from service.storage import LocalStore
@@ -78,7 +79,8 @@ class Worker:
             job_id = queue.claim_next(session, worker_id=self.worker_id)
         if job_id is None:
             return False
-        self.run_job(job_id)
+        with log_context(job_id=job_id, worker_id=self.worker_id):  # ids on every line
+            self.run_job(job_id)
         return True
 
     # -- one job -------------------------------------------------------------
@@ -195,6 +197,8 @@ class Worker:
         with session_scope(self.url) as session:
             repository.upsert_trial(session, job_id=job_id, record=record.to_dict())
             _refresh_progress(session, job_id)
+        log.info("trial %d %s, score %s", record.number, record.state, record.score,
+                 extra={"trial": record.number})
 
     def _resync_trials(self, job_id: str, study_name: str) -> None:
         """Copy trials Optuna finished but we never recorded (a crash between the two)."""

@@ -8,10 +8,10 @@ from contextlib import asynccontextmanager
 from fastapi import FastAPI
 from fastapi.middleware.cors import CORSMiddleware
 
-from service.api import problems
+from service.api import openapi_examples, problems
 from service.api.predictors import PredictorCache
 from service.api.deps import AuthDep
-from service.api.routes import datasets, health, jobs, models
+from service.api.routes import bundle, datasets, events, health, jobs, metrics, models
 from service.auth import KeyChecker
 from service.db import init_db
 from service.settings import Settings
@@ -46,4 +46,12 @@ def create_app(settings: Settings, *, init: bool = True) -> FastAPI:
     app.include_router(health.router)
     for router in (datasets.router, jobs.router, models.router):
         app.include_router(router, dependencies=[AuthDep])
+    # Practitioner-facing additions: live events, bundles, /metrics, documented examples.
+    for router in (events.router, bundle.router):
+        app.include_router(router, dependencies=[AuthDep])
+    # Like /readyz, no key: a scraper needs no secret, and it must still answer (with
+    # grovekeeper_database_up 0) when the database, which holds the keys, is down.
+    app.include_router(metrics.router)
+    metrics.install(app)
+    openapi_examples.install(app)
     return app

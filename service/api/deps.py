@@ -35,7 +35,10 @@ def get_session(settings: Annotated[Settings, Depends(get_settings_dep)]) -> Ite
 
 SettingsDep = Annotated[Settings, Depends(get_settings_dep)]
 StoreDep = Annotated[LocalStore, Depends(get_store)]
-SessionDep = Annotated[Session, Depends(get_session)]
+# scope="function": commit before the response is sent. With the default ("request")
+# the commit ran after the client had its answer, so a quick next request (cancel, then
+# cancel again) could still read the old row.
+SessionDep = Annotated[Session, Depends(get_session, scope="function")]
 
 
 def require_key(request: Request) -> None:

@@ -20,6 +20,15 @@ PROBLEM = "application/problem+json"
 TYPE_BASE = "https://grovekeeper.invalid/problems/"
 
 
+class ProblemResponse(JSONResponse):
+    """A problem document ending in a newline, so curl's output never runs into the prompt."""
+
+    media_type = PROBLEM
+
+    def render(self, content: Any) -> bytes:
+        return super().render(content) + b"\n"
+
+
 def problem(
     status: int,
     title: str,
@@ -38,7 +47,7 @@ def problem(
     }
     if errors:
         body["errors"] = errors
-    return JSONResponse(body, status_code=status, media_type=PROBLEM, headers=headers)
+    return ProblemResponse(body, status_code=status, media_type=PROBLEM, headers=headers)
 
 
 def _field(loc: tuple[Any, ...]) -> str:

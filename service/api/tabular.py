@@ -6,6 +6,7 @@ import csv
 import io
 import json
 from collections.abc import Iterable, Sequence
+from datetime import datetime
 from typing import Any
 
 from fastapi import Request
@@ -22,6 +23,8 @@ def wants_csv(request: Request, fmt: str | None) -> bool:
 
 
 def _cell(value: Any) -> Any:
+    if isinstance(value, datetime):
+        return value.isoformat()
     if isinstance(value, dict | list):
         return json.dumps(value, separators=(",", ":"))
     return "" if value is None else value

@@ -9,6 +9,7 @@ from fastapi.concurrency import run_in_threadpool
 
 from service import ingest, repository
 from service.api.deps import SessionDep, SettingsDep, StoreDep
+from service.api.tabular import csv_response, wants_csv
 from service.db import session_scope
 from service.schemas import DatasetOut, Page, as_utc
 from service.storage import LocalStore, sha256_file
@@ -105,14 +106,22 @@ async def upload_dataset(
     return out
 
 
-@router.get("", response_model=Page[DatasetOut])
+@router.get("", response_model=Page[DatasetOut],
+            summary="List datasets, newest first; `Accept: text/csv` or `?format=csv` for CSV")
 def list_datasets(
+    request: Request,
     session: SessionDep,
     limit: Annotated[int, Query(ge=1, le=1000)] = 100,
     offset: Annotated[int, Query(ge=0, le=1_000_000_000)] = 0,
-) -> Page[DatasetOut]:
+    format: Annotated[str | None, Query(pattern="^(json|csv)$")] = None,
+) -> Page[DatasetOut] | Response:
     rows, count = repository.list_datasets(session, limit=limit, offset=offset)
-    return Page[DatasetOut](data=[to_out(d) for d in rows], count=count)
+    out = [to_out(d) for d in rows]
+    if wants_csv(request, format):
+        header = ["id", "name", "rows", "n_columns", "size_bytes", "source_format", "sha256",
+                  "created_at", "warnings"]
+        return csv_response(header, ([getattr(d, h) for h in header] for d in out))
+    return Page[DatasetOut](data=out, count=count)
 
 
 @router.get("/{dataset_id}", response_model=DatasetOut)

@@ -14,6 +14,7 @@ from service.api.tabular import csv_response, wants_csv
 from service.db import session_scope
 from service.errors import NotFound, Unprocessable
 from service.jobspec import build_run
+from service.progress import eta_seconds
 from service.schemas import (
     JobCreate,
     JobOut,
@@ -55,6 +56,11 @@ def to_out(job: Job) -> JobOut:
             best_score=job.best_score,
             best_trial_number=job.best_trial_number,
             elapsed_seconds=round(max(elapsed, 0.0), 3),
+            eta_seconds=eta_seconds(
+                status=job.status, elapsed=max(elapsed, 0.0),
+                finished_trials=job.trials_completed + job.trials_pruned + job.trials_failed,
+                trials_budget=effective["budget"]["trials"],
+                seconds_budget=effective["budget"].get("seconds")),
         ),
         model_id=job.model_id,
         error=job.error,
@@ -101,15 +107,32 @@ def submit_job(
     return out
 
 
-@router.get("", response_model=Page[JobOut])
+@router.get("", response_model=Page[JobOut],
+            summary="List jobs, newest first; `Accept: text/csv` or `?format=csv` for CSV")
 def list_jobs(
+    request: Request,
     session: SessionDep,
     status: StatusFilter | None = None,
     limit: Annotated[int, Query(ge=1, le=1000)] = 100,
     offset: Annotated[int, Query(ge=0, le=1_000_000_000)] = 0,
-) -> Page[JobOut]:
+    format: Annotated[str | None, Query(pattern="^(json|csv)$")] = None,
+) -> Page[JobOut] | Response:
     rows, count = repository.list_jobs(session, status=status, limit=limit, offset=offset)
-    return Page[JobOut](data=[to_out(j) for j in rows], count=count)
+    out = [to_out(j) for j in rows]
+    if wants_csv(request, format):
+        return csv_response(JOB_CSV_HEADER, (_job_csv_row(j) for j in out))
+    return Page[JobOut](data=out, count=count)
+
+
+JOB_CSV_HEADER = ["id", "dataset_id", "status", "target", "task", "metric", "trials_completed",
+                  "trials_pruned", "trials_failed", "trials_budget", "best_score",
+                  "elapsed_seconds", "eta_seconds", "model_id", "created_at", "finished_at",
+                  "error"]
+
+
+def _job_csv_row(job: JobOut) -> list[object]:
+    fields = {**job.progress.model_dump(), **job.model_dump(exclude={"progress"})}
+    return [fields[h] for h in JOB_CSV_HEADER]
 
 
 @router.get("/{job_id}", response_model=JobOut)

@@ -1,0 +1,172 @@
+"""Request and response examples for every route, attached to the OpenAPI document.
+
+Kept in one table apart from the routes so the route modules stay short, and so a test
+can check that no route is left without them (tests/service/test_openapi_examples.py).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from fastapi import FastAPI
+
+from service.api.problems import PROBLEM, TYPE_BASE
+
+DATASET = {
+    "id": "ds_0123abcd4567ef89", "name": "kilns", "rows": 1200, "n_columns": 13,
+    "size_bytes": 98304, "sha256": "9f2c…", "source_format": "csv",
+    "created_at": "2026-03-14T09:30:00Z",
+    "columns": [
+        {"name": "peak_temp_c", "kind": "numeric", "missing": 0, "distinct": 410,
+         "dtype": "float64"},
+        {"name": "clay_body", "kind": "categorical", "missing": 0, "distinct": 4,
+         "dtype": "str"},
+    ],
+    "warnings": ["column 'firing_id' looks like an ID (every value is unique)"],
+}
+PROGRESS = {"trials_completed": 17, "trials_pruned": 4, "trials_failed": 0,
+            "trials_budget": 40, "best_score": 0.8712, "best_trial_number": 11,
+            "elapsed_seconds": 42.5, "eta_seconds": 38.5}
+JOB = {
+    "id": "job_89ab01cd23ef4567", "dataset_id": DATASET["id"], "status": "running",
+    "priority": 0, "target": "defect", "task": "binary", "metric": "roc_auc",
+    "direction": "maximize",
+    "spec": {"target": "defect", "task": "binary", "metric": "roc_auc",
+             "budget": {"trials": 40, "seconds": None}},
+    "progress": PROGRESS, "model_id": None, "error": None, "warnings": [],
+    "cancel_requested": False, "attempts": 1, "created_at": "2026-03-14T09:31:00Z",
+    "started_at": "2026-03-14T09:31:01Z", "finished_at": None,
+}
+PARAMS = {"learning_rate": 0.052, "num_leaves": 31, "min_data_in_leaf": 20,
+          "feature_fraction": 0.8, "lambda_l2": 0.01}
+TRIAL = {"number": 11, "state": "complete", "params": PARAMS, "score": 0.8712,
+         "score_std": 0.0121, "fold_scores": [0.861, 0.879, 0.868, 0.884, 0.864],
+         "best_iterations": [88, 102, 95, 91, 110], "boosting_rounds": 97,
+         "duration_seconds": 1.8}
+LEADERBOARD = {"job_id": JOB["id"], "metric": "roc_auc", "direction": "maximize", "count": 17,
+               "data": [{"rank": 1, "number": 11, "score": 0.8712, "score_std": 0.0121,
+                         "params": PARAMS, "boosting_rounds": 97}]}
+MODEL = {
+    "id": "mdl_4567cdef89ab0123", "job_id": JOB["id"], "task": "binary", "metric": "roc_auc",
+    "target": "defect", "params": PARAMS, "boosting_rounds": 97, "trial_number": 11,
+    "cv": {"roc_auc": 0.8712, "roc_auc_std": 0.0121},
+    "holdout": {"roc_auc": 0.8655, "log_loss": 0.391, "rows": 240},
+    "feature_schema": {"features": [
+        {"name": "peak_temp_c", "kind": "numeric", "levels": None},
+        {"name": "clay_body", "kind": "categorical",
+         "levels": ["earthenware", "porcelain", "raku", "stoneware"]}]},
+    "classes": [0, 1],
+    "feature_importance": [{"feature": "peak_temp_c", "gain": 812.4, "split": 140}],
+    "details": {}, "sha256": "c0ffee…", "size_bytes": 48211,
+    "created_at": "2026-03-14T09:33:00Z",
+}
+ROW = {"kiln": "north", "clay_body": "raku", "peak_temp_c": 1240, "ramp_rate_c_per_h": 150,
+       "hold_minutes": 20, "cooling_rate_c_per_h": 120, "humidity_pct": 55,
+       "glaze_thickness_mm": 0.8, "load_fraction": 0.7, "shelf_position": "middle",
+       "fired_on": "2026-03-14"}
+PREDICTIONS = {"model_id": MODEL["id"], "predictions": [0], "classes": [0, 1],
+               "probabilities": [[0.83, 0.17]], "ignored_columns": []}
+
+JSON = "application/json"
+CSV = "text/csv"
+JOB_CREATE = {"dataset_id": DATASET["id"], "target": "defect", "budget": {"trials": 40},
+              "cv": {"folds": 5}, "seed": 0}
+
+# (method, path) -> {"request": {media: example}, "responses": {status: {media: example}}}
+EXAMPLES: dict[tuple[str, str], dict[str, Any]] = {
+    ("get", "/healthz"): {"responses": {"200": {JSON: {"status": "ok"}}}},
+    ("get", "/readyz"): {"responses": {"200": {JSON: {"status": "ready"}}}},
+    ("get", "/metrics"): {"responses": {}},  # documented on the route itself
+    ("post", "/v1/datasets"): {
+        "request": {"multipart/form-data": {"name": "kilns", "file": "(kilns.csv)"},
+                    "application/vnd.apache.parquet": "(Parquet bytes)"},
+        "responses": {"201": {JSON: DATASET}}},
+    ("get", "/v1/datasets"): {"responses": {"200": {
+        JSON: {"data": [DATASET], "count": 1},
+        CSV: "id,name,rows,n_columns,size_bytes,source_format,sha256,created_at,warnings\n"
+             f"{DATASET['id']},kilns,1200,13,98304,csv,9f2c…,2026-03-14T09:30:00+00:00,[]\n"}}},
+    ("get", "/v1/datasets/{dataset_id}"): {"responses": {"200": {JSON: DATASET}}},
+    ("delete", "/v1/datasets/{dataset_id}"): {"responses": {}},
+    ("post", "/v1/jobs"): {"request": {JSON: JOB_CREATE},
+                           "responses": {"202": {JSON: {**JOB, "status": "queued"}}}},
+    ("get", "/v1/jobs"): {"responses": {"200": {
+        JSON: {"data": [JOB], "count": 1},
+        CSV: "id,dataset_id,status,target,task,metric,trials_completed,trials_pruned,"
+             "trials_failed,trials_budget,best_score,elapsed_seconds,eta_seconds,model_id,"
+             "created_at,finished_at,error\n"
+             f"{JOB['id']},{DATASET['id']},running,defect,binary,roc_auc,17,4,0,40,0.8712,"
+             "42.5,38.5,,2026-03-14T09:31:00+00:00,,\n"}}},
+    ("get", "/v1/jobs/{job_id}"): {"responses": {"200": {JSON: JOB}}},
+    ("post", "/v1/jobs/{job_id}/cancel"): {"responses": {"202": {
+        JSON: {**JOB, "cancel_requested": True}}}},
+    ("get", "/v1/jobs/{job_id}/trials"): {"responses": {"200": {
+        JSON: {"data": [TRIAL], "count": 1},
+        CSV: "number,state,score,score_std,boosting_rounds,duration_seconds,fold_scores,params\n"
+             '11,complete,0.8712,0.0121,97,1.8,"[0.861,0.879,0.868,0.884,0.864]",'
+             '"{""learning_rate"":0.052,""num_leaves"":31}"\n'}}},
+    ("get", "/v1/jobs/{job_id}/leaderboard"): {"responses": {"200": {
+        JSON: LEADERBOARD,
+        CSV: "rank,number,score,score_std,boosting_rounds,learning_rate,num_leaves\n"
+             "1,11,0.8712,0.0121,97,0.052,31\n"}}},
+    ("get", "/v1/jobs/{job_id}/events"): {"responses": {}},
+    ("get", "/v1/models/{model_id}"): {"responses": {"200": {JSON: MODEL}}},
+    ("get", "/v1/models/{model_id}/file"): {"responses": {"200": {
+        "text/plain": "tree\nversion=v4\nnum_class=1\n…"}}},
+    ("get", "/v1/models/{model_id}/bundle"): {"responses": {}},
+    ("post", "/v1/models/{model_id}/predictions"): {
+        "request": {JSON: {"rows": [ROW]}, CSV: ",".join(ROW) + "\n"
+                    + ",".join(str(v) for v in ROW.values()) + "\n"},
+        "responses": {"200": {JSON: PREDICTIONS,
+                              CSV: "prediction,probability_0,probability_1\n0,0.83,0.17\n"}}},
+}
+
+
+def _problem(status: int, title: str, code: str, detail: str, **extra: Any) -> dict[str, Any]:
+    return {"type": TYPE_BASE + code, "title": title, "status": status, "detail": detail,
+            "code": code, **extra}
+
+
+NOT_FOUND = _problem(404, "Not found", "not_found", "no job with id 'job_nope'")
+INVALID = _problem(422, "Invalid request", "validation_error", "invalid fields: limit",
+                   errors=[{"field": "limit", "message": "Input should be greater than or "
+                                                          "equal to 1"}])
+
+
+def _set(content: dict[str, Any], media: str, example: Any) -> None:
+    entry = content.setdefault(media, {})
+    entry.pop("examples", None)
+    entry["example"] = example
+
+
+def add_examples(doc: dict[str, Any]) -> dict[str, Any]:
+    for path, operations in doc.get("paths", {}).items():
+        for method, op in operations.items():
+            found = EXAMPLES.get((method, path), {})
+            for media, example in found.get("request", {}).items():
+                content = op.setdefault("requestBody", {}).setdefault("content", {})
+                _set(content, media, example)
+            for status, by_media in found.get("responses", {}).items():
+                content = op["responses"].setdefault(status, {}).setdefault("content", {})
+                for media, example in by_media.items():
+                    _set(content, media, example)
+            responses = op["responses"]
+            if "422" in responses:
+                # Errors are problem documents, not FastAPI's default shape.
+                responses["422"] = {"description": "Invalid request (RFC 9457 problem)",
+                                    "content": {PROBLEM: {"example": INVALID}}}
+            if "{" in path:
+                responses.setdefault("404", {"description": "No such resource (RFC 9457)",
+                                             "content": {PROBLEM: {"example": NOT_FOUND}}})
+    return doc
+
+
+def install(app: FastAPI) -> None:
+    """Wrap ``app.openapi`` so the cached document carries the examples."""
+    build = app.openapi
+
+    def openapi() -> dict[str, Any]:
+        if app.openapi_schema is None:
+            app.openapi_schema = add_examples(build())
+        return app.openapi_schema
+
+    app.openapi = openapi  # type: ignore[method-assign]

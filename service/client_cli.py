@@ -1,0 +1,218 @@
+"""Client commands of ``grovekeeper``, against a running server.
+
+``upload``, ``datasets``, ``tune``, ``watch``, ``status``, ``cancel``, ``jobs``,
+``board``, ``model``, ``predict``. The server comes from ``--url`` or GROVEKEEPER_URL,
+the key from ``--api-key`` or GROVEKEEPER_API_KEY (service/settings.py ClientSettings).
+Every failure leaves with a documented exit code and one line on stderr.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any, NoReturn
+
+from service import client
+from service import client_commands as jobs
+from service.client import Api, ClientError, fmt, table
+from service.settings import ClientSettings
+
+Command = Callable[[argparse.Namespace], int]
+
+
+def cmd_model(args: argparse.Namespace) -> int:
+    with Api(args.url, args.api_key, timeout=args.timeout) as api:
+        model = api.get(f"/v1/models/{args.model_id}")
+        if args.save_model:
+            _save(api, f"/v1/models/{args.model_id}/file", args.save_model)
+        if args.save_bundle:
+            _save(api, f"/v1/models/{args.model_id}/bundle", args.save_bundle)
+    if args.format == "json":
+        jobs._emit(model)
+        return client.OK
+    lines = [
+        f"model      {model['id']}  (job {model['job_id']}, trial {model['trial_number']})",
+        f"task       {model['task']} on {model['target']!r}, metric {model['metric']}",
+        f"rounds     {model['boosting_rounds']}",
+        "cv         " + _scores(model["cv"]),
+        "hold-out   " + _scores(model["holdout"]),
+        "params     " + "  ".join(f"{k}={fmt(v)}" for k, v in sorted(model["params"].items())
+                                  if k not in _PLUMBING),
+        f"sha256     {model['sha256']}",
+        "",
+    ]
+    sys.stdout.write("\n".join(lines))
+    importance = model["feature_importance"][: args.top]
+    if importance:
+        header = list(importance[0])
+        sys.stdout.write("\n" + table(header, [[row[h] for h in header] for row in importance]))
+    return client.OK
+
+
+# Parameters every model shares (tuner/_lgb.py base_params) say nothing about this one.
+_PLUMBING = {"verbosity", "num_threads", "seed", "deterministic", "force_col_wise",
+             "feature_pre_filter"}
+
+
+def _scores(scores: dict[str, Any]) -> str:
+    return "  ".join(f"{k} {fmt(v)}" for k, v in scores.items()
+                     if isinstance(v, int | float | str))
+
+
+def _save(api: Api, path: str, target: str) -> None:
+    data = api.request("GET", path).content
+    Path(target).write_bytes(data)
+    print(f"wrote {target} ({len(data)} bytes)", file=sys.stderr)
+
+
+def cmd_predict(args: argparse.Namespace) -> int:
+    if args.file == "-":
+        body = sys.stdin.buffer.read()
+    else:
+        source = Path(args.file)
+        if not source.is_file():
+            raise ClientError(client.USAGE, f"no such file: {source}")
+        body = source.read_bytes()
+    with Api(args.url, args.api_key, timeout=args.timeout) as api:
+        response = api.request("POST", f"/v1/models/{args.model_id}/predictions",
+                               content=body, params={"unseen": args.unseen},
+                               headers={"Content-Type": "text/csv", "Accept": "text/csv"})
+    if response.headers.get("x-ignored-columns"):
+        print(f"ignored columns: {response.headers['x-ignored-columns']}", file=sys.stderr)
+    if args.output:
+        Path(args.output).write_bytes(response.content)
+        rows = max(response.text.count("\n") - 1, 0)
+        print(f"wrote {rows} predictions to {args.output}", file=sys.stderr)
+    else:
+        sys.stdout.write(response.text)
+    return client.OK
+
+
+# -- the parser ------------------------------------------------------------------
+
+
+def _one_line_error(parser: argparse.ArgumentParser) -> None:
+    def error(message: str) -> NoReturn:
+        print(f"{parser.prog}: {message} (see --help)", file=sys.stderr)
+        sys.exit(client.USAGE)
+
+    parser.error = error  # type: ignore[method-assign]
+
+
+def _run(func: Command) -> Command:
+    def run(args: argparse.Namespace) -> int:
+        try:
+            return func(args)
+        except ClientError as exc:
+            print(f"grovekeeper {args.command}: {exc.reason}", file=sys.stderr)
+            return exc.code
+        except OSError as exc:  # unreadable input, unwritable output
+            print(f"grovekeeper {args.command}: {exc}", file=sys.stderr)
+            return client.USAGE
+
+    return run
+
+
+def _positive(kind: type) -> Callable[[str], Any]:
+    def parse(text: str) -> Any:
+        try:
+            value = kind(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+        if value <= 0:
+            raise argparse.ArgumentTypeError(f"must be more than 0, got {text}")
+        return value
+
+    return parse
+
+
+def register(sub: Any) -> None:
+    """Add the client commands to ``grovekeeper``'s subparsers (called by cli.py)."""
+    defaults = ClientSettings()
+
+    def add(name: str, func: Command, help_: str, formats: tuple[str, ...]) -> Any:
+        p = sub.add_parser(name, help=help_, description=help_[0].upper() + help_[1:] + ".",
+                           epilog=client.EXIT_CODES)
+        _one_line_error(p)
+        p.add_argument("--url", default=defaults.url,
+                       help=f"server address (default $GROVEKEEPER_URL or {defaults.url})")
+        p.add_argument("--api-key", default=defaults.api_key,
+                       help="bearer key (default $GROVEKEEPER_API_KEY; none on loopback)")
+        p.add_argument("--timeout", type=_positive(float), default=60.0,
+                       help="seconds to wait for each answer (default 60)")
+        p.add_argument("-f", "--format", choices=formats, default=formats[0],
+                       help=f"what to print on stdout (default {formats[0]})")
+        p.set_defaults(func=_run(func))
+        return p
+
+    p = add("upload", jobs.cmd_upload, "upload a CSV or Parquet table; prints its dataset id",
+            ("id", "json"))
+    p.add_argument("file", help="the table (.csv, or .parquet)")
+    p.add_argument("--name", help="dataset name (default: the file name without extension)")
+
+    p = add("datasets", jobs.cmd_datasets, "list datasets, newest first",
+            ("table", "csv", "json"))
+    p.add_argument("--limit", type=_positive(int), default=50, help="at most this many")
+
+    p = add("tune", jobs.cmd_tune, "queue a tuning job on a dataset; prints its job id",
+            ("id", "json"))
+    p.add_argument("dataset_id", help="the dataset to tune on (from 'grovekeeper upload')")
+    p.add_argument("--target", required=True, help="the column to predict")
+    p.add_argument("--trials", type=_positive(int), help="trial budget (server default 40)")
+    p.add_argument("--seconds", type=_positive(float), help="wall-clock budget in seconds")
+    p.add_argument("--task", choices=["binary", "multiclass", "regression"],
+                   help="default: inferred from the target")
+    p.add_argument("--metric", help="e.g. roc_auc, log_loss, rmse (default by task)")
+    p.add_argument("--folds", type=_positive(int), help="cross-validation folds (default 5)")
+    p.add_argument("--holdout", type=float, help="share of rows held out (default 0.2)")
+    p.add_argument("--exclude", action="append", metavar="COLUMN",
+                   help="leave this column out of the features (repeatable)")
+    p.add_argument("--seed", type=int, help="random seed (default 0)")
+    p.add_argument("--priority", type=int, help="higher runs first (default 0)")
+    p.add_argument("--wait", action="store_true",
+                   help="follow the job with a live progress line on stderr until it ends; "
+                        "exit 1 unless it succeeded")
+    p.add_argument("--interval", type=_positive(float), default=0.5,
+                   help="seconds between progress checks with --wait (default 0.5)")
+
+    p = add("watch", jobs.cmd_watch, "follow a job's progress until it ends; prints its "
+            "final status", ("status", "json"))
+    p.add_argument("job_id")
+    p.add_argument("--interval", type=_positive(float), default=0.5,
+                   help="seconds between progress checks (default 0.5)")
+
+    p = add("status", jobs.cmd_status, "show one job as 'key value' lines", ("text", "json"))
+    p.add_argument("job_id")
+
+    p = add("cancel", jobs.cmd_cancel, "cancel a queued or running job", ("text",))
+    p.add_argument("job_id")
+
+    p = add("jobs", jobs.cmd_jobs, "list jobs, newest first", ("table", "csv", "json"))
+    p.add_argument("--status", choices=["queued", "running", "succeeded", "failed",
+                                        "cancelled"], help="only jobs in this status")
+    p.add_argument("--limit", type=_positive(int), default=50, help="at most this many")
+
+    p = add("board", jobs.cmd_board, "show a job's leaderboard, best trial first",
+            ("table", "csv", "json"))
+    p.add_argument("job_id")
+    p.add_argument("--limit", type=_positive(int), help="only the best N trials")
+
+    p = add("model", cmd_model, "show a model's report: scores, parameters, importance",
+            ("text", "json"))
+    p.add_argument("model_id")
+    p.add_argument("--top", type=_positive(int), default=10,
+                   help="features to list by importance (default 10)")
+    p.add_argument("--save-model", metavar="PATH", help="also write the LightGBM text model")
+    p.add_argument("--save-bundle", metavar="PATH",
+                   help="also write the hand-off zip (model, schema, predict.py, ...)")
+
+    p = add("predict", cmd_predict, "predict the rows of a CSV file; CSV to stdout",
+            ("csv",))
+    p.add_argument("model_id")
+    p.add_argument("file", help="CSV with the feature columns ('-' reads stdin)")
+    p.add_argument("-o", "--output", metavar="PATH", help="write the predictions here instead")
+    p.add_argument("--unseen", choices=["error", "missing"], default="error",
+                   help="categories not seen in training: refuse (default) or treat as "
+                        "missing")

@@ -1,0 +1,202 @@
+"""The client commands' bodies: datasets, jobs, leaderboard (parser: client_cli.py).
+
+Results go to stdout in a form a script can use (an id, a table, CSV, JSON); progress
+and notes go to stderr; failures raise ClientError with their exit code.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+from service import client
+from service.client import Api, ClientError, fmt, table
+from service.progress_view import ProgressView
+
+FINISHED = ("succeeded", "failed", "cancelled")
+
+
+def _api(args: argparse.Namespace) -> Api:
+    return Api(args.url, args.api_key, timeout=args.timeout)
+
+
+def _emit(data: Any) -> None:
+    sys.stdout.write(json.dumps(data, indent=2) + "\n")
+
+
+def _note(text: str) -> None:
+    print(text, file=sys.stderr)
+
+
+# -- datasets --------------------------------------------------------------------
+
+
+def cmd_upload(args: argparse.Namespace) -> int:
+    path = Path(args.file)
+    if not path.is_file():
+        raise ClientError(client.USAGE, f"no such file: {path}")
+    parquet = path.suffix.lower() in (".parquet", ".pq")
+    media = "application/vnd.apache.parquet" if parquet else "text/csv"
+    name = args.name or path.stem
+    with _api(args) as api, path.open("rb") as body:
+        dataset = api.post("/v1/datasets", params={"name": name}, content=body,
+                           headers={"Content-Type": media})
+    _note(f"uploaded {path.name}: {dataset['rows']} rows, {dataset['n_columns']} columns")
+    for warning in dataset.get("warnings", []):
+        _note(f"warning: {warning}")
+    _emit(dataset) if args.format == "json" else print(dataset["id"])
+    return client.OK
+
+
+def cmd_datasets(args: argparse.Namespace) -> int:
+    with _api(args) as api:
+        page = api.get("/v1/datasets", params={"limit": args.limit})
+        if args.format == "csv":
+            sys.stdout.write(api.request("GET", "/v1/datasets", params={
+                "limit": args.limit, "format": "csv"}).text)
+            return client.OK
+    if args.format == "json":
+        _emit(page)
+        return client.OK
+    header = ["id", "name", "rows", "n_columns", "created_at"]
+    sys.stdout.write(table(header, [[d[h] for h in header] for d in page["data"]]))
+    return client.OK
+
+
+# -- jobs ------------------------------------------------------------------------
+
+
+def _job_request(args: argparse.Namespace) -> dict[str, Any]:
+    body: dict[str, Any] = {"dataset_id": args.dataset_id, "target": args.target}
+    budget = {k: v for k, v in (("trials", args.trials), ("seconds", args.seconds))
+              if v is not None}
+    if budget:
+        body["budget"] = budget
+    for key in ("task", "metric", "seed", "priority"):
+        if getattr(args, key) is not None:
+            body[key] = getattr(args, key)
+    if args.holdout is not None:
+        body["holdout_fraction"] = args.holdout
+    if args.folds is not None:
+        body["cv"] = {"folds": args.folds}
+    if args.exclude:
+        body["exclude"] = args.exclude
+    return body
+
+
+def cmd_tune(args: argparse.Namespace) -> int:
+    with _api(args) as api:
+        job = api.post("/v1/jobs", json=_job_request(args))
+        _note(f"queued {job['id']}: {job['task']} on {job['target']!r}, "
+              f"metric {job['metric']}")
+        if not args.wait:
+            _emit(job) if args.format == "json" else print(job["id"])
+            return client.OK
+        job = _follow(api, job["id"], args.interval)
+    _emit(job) if args.format == "json" else print(job["id"])
+    return _final(job)
+
+
+def cmd_watch(args: argparse.Namespace) -> int:
+    with _api(args) as api:
+        job = _follow(api, args.job_id, args.interval)
+    _emit(job) if args.format == "json" else print(job["status"])
+    return _final(job)
+
+
+def _follow(api: Api, job_id: str, interval: float) -> dict[str, Any]:
+    view = ProgressView(sys.stderr)
+    try:
+        while True:
+            job = api.get(f"/v1/jobs/{job_id}")
+            view.update(job)
+            if job["status"] in FINISHED:
+                return job
+            time.sleep(interval)
+    except KeyboardInterrupt:
+        view.close()
+        raise ClientError(client.INTERRUPTED, f"stopped watching; {job_id} goes on "
+                          f"(cancel it with 'grovekeeper cancel {job_id}')") from None
+    finally:
+        view.close()
+
+
+def _final(job: dict[str, Any]) -> int:
+    if job["status"] == "succeeded":
+        _note(f"{job['id']} succeeded: best {job['metric']} "
+              f"{fmt(job['progress']['best_score'])}, model {job['model_id']}")
+        return client.OK
+    raise ClientError(client.JOB_FAILED, f"{job['id']} {job['status']}"
+                      + (f": {job['error']}" if job.get("error") else ""))
+
+
+def cmd_status(args: argparse.Namespace) -> int:
+    with _api(args) as api:
+        job = api.get(f"/v1/jobs/{args.job_id}")
+    if args.format == "json":
+        _emit(job)
+        return client.OK
+    p = job["progress"]
+    rows = [("id", job["id"]), ("status", job["status"]), ("dataset_id", job["dataset_id"]),
+            ("target", job["target"]), ("task", job["task"]), ("metric", job["metric"]),
+            *((k, p[k]) for k in ("trials_completed", "trials_pruned", "trials_failed",
+                                  "trials_budget", "best_score", "best_trial_number",
+                                  "elapsed_seconds", "eta_seconds")),
+            ("model_id", job["model_id"]), ("error", job["error"])]
+    width = max(len(k) for k, _ in rows)
+    for key, value in rows:
+        print(f"{key.ljust(width)}  {fmt(value) or '-'}")
+    return client.OK
+
+
+def cmd_cancel(args: argparse.Namespace) -> int:
+    with _api(args) as api:
+        job = api.post(f"/v1/jobs/{args.job_id}/cancel")
+    print(job["status"])
+    return client.OK
+
+
+def cmd_jobs(args: argparse.Namespace) -> int:
+    params: dict[str, Any] = {"limit": args.limit}
+    if args.status:
+        params["status"] = args.status
+    with _api(args) as api:
+        if args.format == "csv":
+            sys.stdout.write(api.request("GET", "/v1/jobs",
+                                         params={**params, "format": "csv"}).text)
+            return client.OK
+        page = api.get("/v1/jobs", params=params)
+    if args.format == "json":
+        _emit(page)
+        return client.OK
+    header = ["id", "status", "target", "metric", "done", "budget", "best", "model_id"]
+    rows = [[j["id"], j["status"], j["target"], j["metric"],
+             j["progress"]["trials_completed"] + j["progress"]["trials_pruned"],
+             j["progress"]["trials_budget"], j["progress"]["best_score"], j["model_id"]]
+            for j in page["data"]]
+    sys.stdout.write(table(header, rows))
+    return client.OK
+
+
+def cmd_board(args: argparse.Namespace) -> int:
+    params: dict[str, Any] = {} if args.limit is None else {"limit": args.limit}
+    with _api(args) as api:
+        if args.format == "csv":
+            sys.stdout.write(api.request("GET", f"/v1/jobs/{args.job_id}/leaderboard",
+                                         params={**params, "format": "csv"}).text)
+            return client.OK
+        board = api.get(f"/v1/jobs/{args.job_id}/leaderboard", params=params)
+    if args.format == "json":
+        _emit(board)
+        return client.OK
+    names = sorted({n for r in board["data"] for n in r["params"]})
+    header = ["rank", "trial", board["metric"], "std", "rounds", *names]
+    rows = [[r["rank"], r["number"], r["score"], r["score_std"], r["boosting_rounds"],
+             *(r["params"].get(n) for n in names)] for r in board["data"]]
+    sys.stdout.write(table(header, rows))
+    _note(f"{board['count']} finished trials, {board['direction']} {board['metric']}")
+    return client.OK
