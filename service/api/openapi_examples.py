@@ -150,13 +150,12 @@ def add_examples(doc: dict[str, Any]) -> dict[str, Any]:
                 for media, example in by_media.items():
                     _set(content, media, example)
             responses = op["responses"]
-            if "422" in responses:
-                # Errors are problem documents, not FastAPI's default shape.
-                responses["422"] = {"description": "Invalid request (RFC 9457 problem)",
-                                    "content": {PROBLEM: {"example": INVALID}}}
-            if "{" in path:
-                responses.setdefault("404", {"description": "No such resource (RFC 9457)",
-                                             "content": {PROBLEM: {"example": NOT_FOUND}}})
+            # Errors are problem documents (schema from problems.document); give the two
+            # commonest a realistic example, keeping the schema already there.
+            for status, example in (("422", INVALID), ("404", NOT_FOUND)):
+                if status in responses or (status == "404" and "{" in path):
+                    entry = responses.setdefault(status, {"description": "No such resource"})
+                    entry.setdefault("content", {}).setdefault(PROBLEM, {})["example"] = example
     return doc
 
 

@@ -187,6 +187,13 @@ _ERRORS = {
 _PUBLIC = ("/healthz", "/readyz")
 
 
+def _example(code: str) -> dict[str, Any]:
+    title = _ERRORS.get(code, "Database unreachable").split(" (")[0].split(";")[0]
+    slug = {"503": "not_ready"}.get(code, title.lower().replace(" ", "_").replace(",", ""))
+    return {"type": TYPE_BASE + slug, "title": title, "status": int(code),
+            "detail": title, "code": slug}
+
+
 def document(app: FastAPI) -> None:
     """Replace FastAPI's JSON 422 schema with problem documents on every operation."""
     build = app.openapi
@@ -209,7 +216,8 @@ def document(app: FastAPI) -> None:
                 for code in codes:
                     description = _ERRORS.get(code, "Database unreachable")
                     responses[code] = {"description": description,
-                                       "content": {PROBLEM: {"schema": ref}}}
+                                       "content": {PROBLEM: {"schema": ref,
+                                                             "example": _example(code)}}}
         app.openapi_schema = spec
         return spec
 

@@ -28,9 +28,12 @@ ROUTES = [
     ("GET", "/v1/jobs/{job}/leaderboard", "read", 200),
     ("GET", "/v1/models/{model}", "read", 200),
     ("GET", "/v1/models/{model}/file", "read", 200),
+    ("GET", "/v1/models/{model}/bundle", "read", 200),
+    ("GET", "/v1/jobs/{job}/events", "read", 200),
     ("POST", "/v1/models/{model}/predictions", "write", 200),
     ("GET", "/healthz", None, 200),
     ("GET", "/readyz", None, 200),
+    ("GET", "/metrics", None, 200),  # scrapers hold no key; see README
     ("GET", "/openapi.json", None, 200),
     ("GET", "/docs", None, 200),
 ]

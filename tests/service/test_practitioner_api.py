@@ -128,6 +128,8 @@ def test_readme_configuration_table_matches_the_settings() -> None:
         if info.default is None:
             # No value of its own: the README says what stands in (derived, or none).
             assert default == "(none)" or "$GROVEKEEPER_HOME" in default, (name, default)
+        elif info.default == "":
+            assert default == "(empty)", (name, default)
         elif isinstance(info.default, Path):
             assert Path(default) == info.default, name
         else:
