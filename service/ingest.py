@@ -18,6 +18,7 @@ from fastapi import Request
 from starlette.datastructures import UploadFile
 
 import tuner
+from tuner.datachecks import table_warnings
 from service.errors import PayloadTooLarge, Unprocessable, UnsupportedMediaType
 
 CSV_TYPES = {"text/csv", "application/csv", "text/plain"}
@@ -142,4 +143,4 @@ def parse(received: Received) -> tuple[Any, list[tuner.ColumnProfile], list[str]
     """Parse and profile the table; bad tables raise tuner.DatasetError (422)."""
     frame = tuner.read_table(received.path, received.fmt)
     profiles, warnings = tuner.profile_table(frame)
-    return frame, profiles, warnings
+    return frame, profiles, warnings + table_warnings(frame)

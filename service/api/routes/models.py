@@ -54,7 +54,20 @@ def _read_csv_rows(body: bytes) -> pd.DataFrame:
                             errors=[{"field": "body", "message": str(exc)}]) from exc
 
 
-def _predict_csv(predictor: tuner.Predictor, body: bytes, unseen: str, limit: int) -> Response:
+def _contribution_columns(predictor: tuner.Predictor, features: pd.DataFrame) -> pd.DataFrame:
+    rows = predictor.explain_frame(features)["contributions"]
+    names = [*predictor.schema.names, "bias"]
+    per_row = [[*r["features"].values(), r["bias"]] for r in rows]
+    if predictor.task != "multiclass":
+        return pd.DataFrame(per_row, columns=[f"contribution_{n}" for n in names])
+    classes = predictor.classes or []
+    flat = [[row[j][k] for k in range(len(classes)) for j in range(len(names))]
+            for row in per_row]
+    return pd.DataFrame(flat, columns=[f"contribution_{c}_{n}" for c in classes for n in names])
+
+
+def _predict_csv(predictor: tuner.Predictor, body: bytes, unseen: str, limit: int,
+                 explain: bool = False) -> Response:
     frame = _read_csv_rows(body)
     if len(frame) == 0:
         raise Unprocessable("the CSV body has no rows", errors=[{"field": "body",
@@ -68,6 +81,8 @@ def _predict_csv(predictor: tuner.Predictor, body: bytes, unseen: str, limit: in
         probs = pd.DataFrame(result["probabilities"],
                              columns=[f"probability_{c}" for c in predictor.classes or []])
         out = pd.concat([out, probs], axis=1)
+    if explain:
+        out = pd.concat([out, _contribution_columns(predictor, features)], axis=1)
     headers = {"X-Ignored-Columns": ",".join(ignored)} if ignored else None
     return Response(out.to_csv(index=False), media_type="text/csv; charset=utf-8",
                     headers=headers)
@@ -81,7 +96,9 @@ def _predict_csv(predictor: tuner.Predictor, body: bytes, unseen: str, limit: in
         "Missing feature columns and wrong types are a 422 naming row and column. Unseen "
         "categories are a 422 unless `unseen=missing`, which sends them down LightGBM's "
         "missing-value branch. Columns the model does not use are ignored and listed in "
-        "`ignored_columns` (CSV: the `X-Ignored-Columns` header)."
+        "`ignored_columns` (CSV: the `X-Ignored-Columns` header). `explain=true` adds "
+        "per-row TreeSHAP contributions (bias plus one value per feature, summing to the raw "
+        "score; CSV: `contribution_<feature>` columns)."
     ),
     openapi_extra={"requestBody": {"content": {
         "application/json": {"schema": PredictRequest.model_json_schema()},
@@ -95,6 +112,7 @@ async def predict(
     session: SessionDep,
     settings: SettingsDep,
     unseen: Annotated[Unseen, Query()] = "error",
+    explain: Annotated[bool, Query()] = False,
 ) -> PredictResponse | Response:
     model = repository.get_model(session, model_id)
     session.close()
@@ -103,17 +121,19 @@ async def predict(
     limit = settings.max_prediction_rows
     body = await request.body()
     if media == "text/csv":
-        return await run_in_threadpool(_predict_csv, predictor, body, unseen, limit)
+        return await run_in_threadpool(_predict_csv, predictor, body, unseen, limit, explain)
     if media not in ("application/json", ""):
         raise UnsupportedMediaType(f"send application/json or text/csv, not {media}")
     payload = PredictRequest.model_validate_json(body or b"{}")
     if len(payload.rows) > limit:
         raise PayloadTooLarge(f"at most {limit} rows per request; got {len(payload.rows)}")
-    result = predictor.predict_rows(payload.rows, unseen=unseen)
+    result = predictor.predict_rows(payload.rows, unseen=unseen, explain=explain)
     return PredictResponse(
         model_id=model_id,
         predictions=result["predictions"],
         classes=predictor.classes,
         probabilities=result.get("probabilities"),
         ignored_columns=result.get("ignored_columns", []),
+        contributions=result.get("contributions"),
+        contribution_scale=result.get("contribution_scale"),
     )
