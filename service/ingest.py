@@ -18,8 +18,8 @@ from fastapi import Request
 from starlette.datastructures import UploadFile
 
 import tuner
-from tuner.datachecks import table_warnings
 from service.errors import PayloadTooLarge, Unprocessable, UnsupportedMediaType
+from tuner.datachecks import table_warnings
 
 CSV_TYPES = {"text/csv", "application/csv", "text/plain"}
 PARQUET_TYPES = {"application/vnd.apache.parquet", "application/x-parquet", "application/parquet"}

@@ -11,6 +11,7 @@ from service.api import problems
 from service.api.predictors import PredictorCache
 from service.api.deps import AuthDep
 from service.api.routes import datasets, health, jobs, models
+from service.api.routes import report as report_routes
 from service.auth import KeyChecker
 from service.db import init_db
 from service.settings import Settings
@@ -41,4 +42,5 @@ def create_app(settings: Settings, *, init: bool = True) -> FastAPI:
     app.include_router(health.router)
     for router in (datasets.router, jobs.router, models.router):
         app.include_router(router, dependencies=[AuthDep])
+    app.include_router(report_routes.router, dependencies=[AuthDep])
     return app
