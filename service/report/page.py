@@ -17,8 +17,9 @@ CAPTIONS = {
     "history": "Each dot is one trial's mean CV score; the line is the best score so far.",
     "hyperparameters": "How much of the variation in CV score each tuned parameter explains.",
     "features": "Where the winner's trees found their gain.",
-    "learning": "Training vs validation score per round on one CV fold; the dashed line is "
-                "the round early stopping chose.",
+    "learning": "Training vs validation score per round on the first CV fold, refit as the "
+                "search fitted it; the dashed line is where early stopping settled on that "
+                "fold (the final model's tree count averages all folds).",
     "calibration": "Dots on the diagonal mean predicted probabilities can be taken at face "
                    "value.",
 }

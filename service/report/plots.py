@@ -17,11 +17,12 @@ matplotlib.use("Agg")  # headless; must precede any backend use
 
 from matplotlib.backends.backend_svg import FigureCanvasSVG  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
+from matplotlib.ticker import MaxNLocator  # noqa: E402
 
 # Process-wide, set once: text stays text (small, crisp, selectable), curves keep every
 # vertex (a learning curve with 300 rounds has 300 points), ids are stable across runs.
 matplotlib.rcParams.update({"svg.fonttype": "none", "path.simplify": False,
-                            "svg.hashsalt": "grovekeeper", "font.size": 9})
+                            "svg.hashsalt": "grovekeeper", "font.size": 10})
 
 INK, ACCENT, MUTED, WARM = "#1f2933", "#2f6f9f", "#9aa5b1", "#c8553d"
 NAMES = ("history", "hyperparameters", "features", "learning", "calibration")
@@ -69,6 +70,7 @@ def history(trials: Sequence[dict[str, Any]], *, metric: str, direction: str) ->
         running = y if running is None else pick(running, y)
         best.append(running)
     ax.step(xs, best, where="post", color=WARM, linewidth=1.6, label="best so far", gid="best")
+    ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     ax.set_xlabel("trial number")
     ax.set_ylabel(f"{metric} (mean over CV folds)")
     arrow = "higher is better" if direction == "maximize" else "lower is better"
@@ -132,7 +134,7 @@ def learning(curve: dict[str, Any] | None) -> bytes:
     ax.plot(rounds, curve["valid"], color=ACCENT, linewidth=1.6, label="validation rows",
             gid="valid")
     best = curve["best_round"]
-    ax.axvline(best, color=WARM, linewidth=1, linestyle="--", label=f"chosen: round {best}")
+    ax.axvline(best, color=WARM, linewidth=1, linestyle="--", label=f"early stop on this fold: round {best}")
     ax.set_xlabel("boosting round (trees)")
     better = "higher is better" if curve.get("higher_is_better") else "lower is better"
     ax.set_ylabel(f"{curve['metric']} ({better})")
