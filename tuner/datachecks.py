@@ -70,17 +70,22 @@ def _crossfit_explained(codes: np.ndarray, y: np.ndarray, regression: bool,
     nothing in the other, so memorising rows earns no credit.
     """
     half = rng.random(len(y)) < 0.5
+    if half.all() or not half.any():
+        return 0.0  # a table of a few rows: nothing to learn from on one side
+    size = int(codes.max()) + 1
     pred = np.empty(len(y))
     for learn in (half, ~half):
         use = ~learn
+        seen = np.bincount(codes[learn], minlength=size)
         if regression:
-            fallback = float(np.mean(y[learn]))
-            table = pd.Series(y[learn]).groupby(codes[learn]).mean()
+            sums = np.bincount(codes[learn], weights=y[learn], minlength=size)
+            table = np.where(seen > 0, sums / np.maximum(seen, 1), float(np.mean(y[learn])))
         else:
-            fallback = float(np.bincount(y[learn]).argmax())
-            table = pd.Series(y[learn]).groupby(codes[learn]).agg(lambda s: s.value_counts()
-                                                                   .index[0])
-        pred[use] = pd.Series(codes[use]).map(table).fillna(fallback).to_numpy()
+            k = int(y.max()) + 1
+            votes = np.bincount(codes[learn] * k + y[learn], minlength=size * k)
+            table = np.where(seen > 0, votes.reshape(size, k).argmax(axis=1),
+                             np.bincount(y[learn], minlength=k).argmax())
+        pred[use] = table[codes[use]]  # bins unseen in the learning half get the fallback
     if regression:
         total = float(np.sum((y - y.mean()) ** 2))
         return 0.0 if total == 0 else 1.0 - float(np.sum((y - pred) ** 2)) / total
@@ -94,8 +99,8 @@ def _rank_power(x: np.ndarray, y: np.ndarray, task: str) -> float:
     if ok.sum() < 3 or task == "multiclass":
         return 0.0
     rx = pd.Series(x[ok]).rank().to_numpy()
-    ry = pd.Series(y[ok]).rank().to_numpy()
     if task == "regression":
+        ry = pd.Series(y[ok]).rank().to_numpy()
         if rx.std() == 0 or ry.std() == 0:
             return 0.0
         return abs(float(np.corrcoef(rx, ry)[0, 1]))
@@ -140,6 +145,8 @@ def _is_copy(x: pd.Series, y: np.ndarray, task: str) -> bool:
         if v.std() == 0:
             return False
         return abs(float(np.corrcoef(v, y)[0, 1])) > 1 - 1e-9  # the target in other units
+    if x.nunique() != np.unique(y).size:
+        return False  # cheap test first: a relabelling has exactly one value per class
     pairs = pd.DataFrame({"x": x.astype(object).to_numpy(), "y": y}).drop_duplicates()
     return pairs["x"].is_unique and pairs["y"].is_unique  # a one-to-one relabelling
 

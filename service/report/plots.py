@@ -134,7 +134,8 @@ def learning(curve: dict[str, Any] | None) -> bytes:
     ax.plot(rounds, curve["valid"], color=ACCENT, linewidth=1.6, label="validation rows",
             gid="valid")
     best = curve["best_round"]
-    ax.axvline(best, color=WARM, linewidth=1, linestyle="--", label=f"early stop on this fold: round {best}")
+    ax.axvline(best, color=WARM, linewidth=1, linestyle="--",
+               label=f"early stop on this fold: round {best}")
     ax.set_xlabel("boosting round (trees)")
     better = "higher is better" if curve.get("higher_is_better") else "lower is better"
     ax.set_ylabel(f"{curve['metric']} ({better})")
