@@ -19,6 +19,7 @@ from starlette.datastructures import UploadFile
 
 import tuner
 from service.errors import PayloadTooLarge, Unprocessable, UnsupportedMediaType
+from tuner.datachecks import table_warnings
 
 CSV_TYPES = {"text/csv", "application/csv", "text/plain"}
 PARQUET_TYPES = {"application/vnd.apache.parquet", "application/x-parquet", "application/parquet"}
@@ -160,4 +161,4 @@ def parse(received: Received) -> tuple[Any, list[tuner.ColumnProfile], list[str]
     """Parse and profile the table; bad tables raise tuner.DatasetError (422)."""
     frame = tuner.read_table(received.path, received.fmt)
     profiles, warnings = tuner.profile_table(frame)
-    return frame, profiles, warnings
+    return frame, profiles, warnings + table_warnings(frame)

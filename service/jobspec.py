@@ -7,12 +7,14 @@ the same data, split and search configuration.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 from typing import Any
 
 import pandas as pd
 
 import tuner
+from tuner.datachecks import job_warnings
 from tuner.metrics import default_metric, get_metric
 from tuner.space import DEFAULT_SPACE, merge_overrides
 from tuner.validation import ValidationPlan, plan_validation
@@ -62,6 +64,8 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame) -> RunPlan:
         holdout_fraction=float(request.get("holdout_fraction", 0.2)),
         seed=seed,
     )
+    # Leaks, target copies, duplicates across the hold-out, imbalance, size: job warnings.
+    data = dataclasses.replace(data, warnings=(*data.warnings, *job_warnings(data, plan)))
     budget = request.get("budget") or {}
     config = tuner.SearchConfig(
         task=data.task,

@@ -194,3 +194,6 @@ class PredictResponse(BaseModel):
     classes: list[Any] | None = None
     probabilities: list[list[float]] | None = None
     ignored_columns: list[str] = []
+    # With ?explain=true: per row {"bias", "features": {name: value}} (TreeSHAP).
+    contributions: list[dict[str, Any]] | None = None
+    contribution_scale: str | None = None

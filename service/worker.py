@@ -23,6 +23,7 @@ import pandas as pd
 import tuner
 from service import queue, repository
 from service.db import init_db, session_scope
+from service.evaluation import evaluate_safely
 from service.jobspec import RunPlan, build_run
 from service.logs import log_context
 from service.schemas import as_utc
@@ -159,6 +160,7 @@ class Worker:
 
     def _fit_and_store(self, job_id: str, run: RunPlan, best: tuner.TrialRecord) -> str:
         fitted = tuner.fit_final(run.data, run.plan, run.config, best)
+        evaluation = evaluate_safely(fitted, run, self.url, job_id)
         model_id = repository.new_id("mdl")
         key = f"models/{model_id}.txt"
         path = self.store.path(key)
@@ -181,7 +183,7 @@ class Worker:
                     classes=fitted.classes,
                     target=run.data.target,
                     feature_importance=fitted.feature_importance,
-                    details={"manifest": run.effective},
+                    details={"manifest": run.effective, "evaluation": evaluation},
                     sha256=sha,
                     file_key=key,
                     size_bytes=path.stat().st_size,

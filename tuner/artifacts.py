@@ -15,6 +15,7 @@ import pandas as pd
 
 from tuner._lgb import predict
 from tuner.errors import ArtifactError
+from tuner.explain import contribution_scale, contributions
 from tuner.model import FittedModel
 from tuner.schema import FeatureSchema
 
@@ -127,14 +128,27 @@ class Predictor:
             "probabilities": [[float(p) for p in row] for row in probs],
         }
 
-    def predict_rows(self, rows: list[dict[str, Any]], unseen: str = "error") -> dict[str, Any]:
-        """Validate JSON-like rows and predict them.
+    def explain_frame(self, frame: pd.DataFrame) -> dict[str, Any]:
+        """Per-row TreeSHAP contributions for a frame in training form (see tuner.explain).
+
+        Returns:
+            ``{"contributions": [{"bias", "features": {name: value}}], "contribution_scale"}``;
+            per row, bias plus the feature values equal the raw score.
+        """
+        return {"contributions": contributions(self.booster, self.task, frame,
+                                               list(self.schema.names)),
+                "contribution_scale": contribution_scale(self.booster, self.task)}
+
+    def predict_rows(self, rows: list[dict[str, Any]], unseen: str = "error",
+                     explain: bool = False) -> dict[str, Any]:
+        """Validate JSON-like rows and predict them (``explain``: add contributions).
 
         Raises:
             PredictionInputError: The rows do not match the schema.
         """
         frame, ignored = self.schema.frame_from_rows(rows, unseen=unseen)
-        return {**self.predict_frame(frame), "ignored_columns": ignored}
+        out = {**self.predict_frame(frame), "ignored_columns": ignored}
+        return {**out, **self.explain_frame(frame)} if explain else out
 
     def predict_table(self, df: pd.DataFrame, unseen: str = "error") -> dict[str, Any]:
         """Validate a table (e.g. an uploaded CSV) and predict it.

@@ -12,6 +12,7 @@ from service.api import openapi_examples, problems
 from service.api.predictors import PredictorCache
 from service.api.deps import AuthDep
 from service.api.routes import bundle, datasets, events, health, jobs, metrics, models
+from service.api.routes import report as report_routes
 from service.auth import KeyChecker
 from service.db import init_db
 from service.settings import Settings
@@ -54,4 +55,5 @@ def create_app(settings: Settings, *, init: bool = True) -> FastAPI:
     app.include_router(metrics.router)
     metrics.install(app)
     openapi_examples.install(app)
+    app.include_router(report_routes.router, dependencies=[AuthDep])
     return app

@@ -30,6 +30,8 @@ ROUTES = [
     ("GET", "/v1/models/{model}/file", "read", 200),
     ("GET", "/v1/models/{model}/bundle", "read", 200),
     ("GET", "/v1/jobs/{job}/events", "read", 200),
+    ("GET", "/v1/jobs/{job}/report", "read", 200),
+    ("GET", "/v1/jobs/{job}/plots/history.svg", "read", 200),
     ("POST", "/v1/models/{model}/predictions", "write", 200),
     ("GET", "/healthz", None, 200),
     ("GET", "/readyz", None, 200),
@@ -95,7 +97,7 @@ def test_the_table_covers_every_route(keyed: Keyed) -> None:
     documented = {(m.upper(), p) for p, item in spec["paths"].items() for m in item}
     listed = {(m, p.replace("{ds}", "{dataset_id}").replace("{spare_ds}", "{dataset_id}")
                .replace("{queued_job}", "{job_id}").replace("{job}", "{job_id}")
-               .replace("{model}", "{model_id}"))
+               .replace("{model}", "{model_id}").replace("history.svg", "{name}.svg"))
               for m, p, _, _ in ROUTES}
     assert documented <= listed, documented - listed
 

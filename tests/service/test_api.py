@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import io
 
+import numpy as np
 import pandas as pd
 import pytest
 
@@ -157,3 +158,18 @@ def test_tables_read_back_identically(api: LiveApi) -> None:
     stored = pd.read_parquet(api.settings.home / "datasets" / f"{dataset['id']}.parquet")
     assert list(stored.columns) == list(frame.columns)
     assert len(stored) == len(frame)
+
+
+def test_upload_and_job_warnings_name_the_doubtful_data(api: LiveApi) -> None:
+    frame = kilns(n_rows=200, seed=4)
+    frame["inspected_defect"] = frame["defect"] + np.random.default_rng(0).normal(0, 0.01, 200)
+    doubled = pd.concat([frame, frame.head(10)], ignore_index=True)
+    with api.client() as client:
+        dataset = upload(client, doubled.to_csv(index=False).encode()).json()
+        job = client.post("/v1/jobs", json={"dataset_id": dataset["id"], "target": "defect",
+                                            "budget": {"trials": 1}}).json()
+    assert any("10 row(s) are exact duplicates" in w for w in dataset["warnings"])
+    leaks = [w for w in job["warnings"] if "leakage" in w]
+    assert len(leaks) == 1 and "'inspected_defect'" in leaks[0]
+    assert any("hold-out row(s) also appear among the search rows" in w
+               for w in job["warnings"])

@@ -54,8 +54,20 @@ def _read_csv_rows(store: LocalStore, body: bytes) -> pd.DataFrame:
         return tuner.read_table(tmp, "csv")
 
 
+def _contribution_columns(predictor: tuner.Predictor, features: pd.DataFrame) -> pd.DataFrame:
+    rows = predictor.explain_frame(features)["contributions"]
+    names = [*predictor.schema.names, "bias"]
+    per_row = [[*r["features"].values(), r["bias"]] for r in rows]
+    if predictor.task != "multiclass":
+        return pd.DataFrame(per_row, columns=[f"contribution_{n}" for n in names])
+    classes = predictor.classes or []
+    flat = [[row[j][k] for k in range(len(classes)) for j in range(len(names))]
+            for row in per_row]
+    return pd.DataFrame(flat, columns=[f"contribution_{c}_{n}" for c in classes for n in names])
+
+
 def _predict_csv(predictor: tuner.Predictor, store: LocalStore, body: bytes, unseen: str,
-                 limit: int) -> Response:
+                 limit: int, explain: bool = False) -> Response:
     if not body.strip():
         raise Unprocessable("the CSV body is empty; send a header row and at least one row",
                             errors=[{"field": "body", "message": "empty"}])
@@ -69,6 +81,8 @@ def _predict_csv(predictor: tuner.Predictor, store: LocalStore, body: bytes, uns
         probs = pd.DataFrame(result["probabilities"],
                              columns=[f"probability_{c}" for c in predictor.classes or []])
         out = pd.concat([out, probs], axis=1)
+    if explain:
+        out = pd.concat([out, _contribution_columns(predictor, features)], axis=1)
     headers = {"X-Ignored-Columns": ",".join(ignored)} if ignored else None
     return Response(out.to_csv(index=False), media_type="text/csv; charset=utf-8",
                     headers=headers)
@@ -84,7 +98,9 @@ def _predict_csv(predictor: tuner.Predictor, store: LocalStore, body: bytes, uns
         "missing-value branch. Columns the model does not use are ignored and listed in "
         "`ignored_columns` (CSV: the `X-Ignored-Columns` header). An empty batch is a 422; "
         "more rows than `GROVEKEEPER_MAX_PREDICTION_ROWS`, or a body over "
-        "`GROVEKEEPER_MAX_UPLOAD_MB`, is a 413."
+        "`GROVEKEEPER_MAX_UPLOAD_MB`, is a 413. "
+        "`explain=true` adds per-row TreeSHAP contributions (bias plus one value per "
+        "feature, summing to the raw score; CSV: `contribution_<feature>` columns)."
     ),
     openapi_extra={"requestBody": {"content": {
         "application/json": {"schema": PredictRequest.model_json_schema()},
@@ -100,6 +116,7 @@ async def predict(
     settings: SettingsDep,
     store: StoreDep,
     unseen: Annotated[Unseen, Query()] = "error",
+    explain: Annotated[bool, Query()] = False,
 ) -> PredictResponse | Response:
     model = repository.get_model(session, model_id)
     session.close()
@@ -108,7 +125,8 @@ async def predict(
     limit = settings.max_prediction_rows
     body = await ingest.read_body(request, limit=settings.max_upload_mb * (1 << 20))
     if media == "text/csv":
-        return await run_in_threadpool(_predict_csv, predictor, store, body, unseen, limit)
+        return await run_in_threadpool(_predict_csv, predictor, store, body, unseen, limit,
+                                       explain)
     if media not in ("application/json", ""):
         raise UnsupportedMediaType(f"send application/json or text/csv, not {media}")
     if not body.strip():
@@ -117,11 +135,13 @@ async def predict(
     payload = PredictRequest.model_validate_json(body)
     if len(payload.rows) > limit:
         raise PayloadTooLarge(f"at most {limit} rows per request; got {len(payload.rows)}")
-    result = predictor.predict_rows(payload.rows, unseen=unseen)
+    result = predictor.predict_rows(payload.rows, unseen=unseen, explain=explain)
     return PredictResponse(
         model_id=model_id,
         predictions=result["predictions"],
         classes=predictor.classes,
         probabilities=result.get("probabilities"),
         ignored_columns=result.get("ignored_columns", []),
+        contributions=result.get("contributions"),
+        contribution_scale=result.get("contribution_scale"),
     )

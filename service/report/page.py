@@ -1,0 +1,207 @@
+"""The job report: one server-rendered HTML page, no scripts, no external requests.
+
+Everything is inline (styles) or same-origin (the plot SVGs, as ``<img>``, so each plot is
+an isolated document whose ids cannot clash). While a job is queued or running the page
+reloads itself with ``<meta http-equiv="refresh">``.
+"""
+
+from __future__ import annotations
+
+from html import escape
+from typing import Any
+
+REFRESH_SECONDS = 5
+SHOWN_PARAMS = ("learning_rate", "num_leaves", "min_data_in_leaf", "feature_fraction",
+                "bagging_fraction", "lambda_l2")
+CAPTIONS = {
+    "history": "Each dot is one trial's mean CV score; the line is the best score so far.",
+    "hyperparameters": "How much of the variation in CV score each tuned parameter explains.",
+    "features": "Where the winner's trees found their gain.",
+    "learning": "Training vs validation score per round on the first CV fold, refit as the "
+                "search fitted it; the dashed line is where early stopping settled on that "
+                "fold (the final model's tree count averages all folds).",
+    "calibration": "Dots on the diagonal mean predicted probabilities can be taken at face "
+                   "value.",
+}
+
+CSS = """
+:root{--ink:#1f2933;--muted:#616e7c;--line:#e4e7eb;--accent:#2f6f9f;--warn:#8a5a00;
+--warnbg:#fff7e6;--bad:#b42318;--ok:#2e7d32}
+*{box-sizing:border-box}
+body{margin:0;font:15px/1.5 system-ui,-apple-system,"Segoe UI",Roboto,sans-serif;color:var(--ink);
+background:#f7f8fa}
+main{max-width:1080px;margin:0 auto;padding:24px 20px 48px}
+h1{font-size:22px;margin:0 0 4px}h2{font-size:17px;margin:28px 0 10px}
+.sub{color:var(--muted);margin:0 0 16px}.sub code{font-size:13px}
+.card{background:#fff;border:1px solid var(--line);border-radius:8px;padding:16px 18px;
+margin-bottom:14px}
+.status{display:inline-block;padding:1px 10px;border-radius:999px;font-size:13px;
+font-weight:600;vertical-align:middle;margin-left:8px;background:#e8eef5;color:var(--accent)}
+.status.succeeded{background:#e7f4e8;color:var(--ok)}
+.status.failed,.status.cancelled{background:#fdecea;color:var(--bad)}
+.facts{display:grid;grid-template-columns:repeat(auto-fit,minmax(170px,1fr));gap:10px 20px;
+margin:0}
+.facts dt{color:var(--muted);font-size:12px;text-transform:uppercase;letter-spacing:.04em}
+.facts dd{margin:0;font-size:17px;font-variant-numeric:tabular-nums}
+.bar{height:8px;background:var(--line);border-radius:4px;overflow:hidden;margin-top:12px}
+.bar span{display:block;height:100%;background:var(--accent)}
+.warnings{background:var(--warnbg);border-color:#f0d9a8;color:var(--warn)}
+.warnings ul{margin:6px 0 0;padding-left:20px}.warnings li{margin:3px 0}
+.error{background:#fdecea;border-color:#f5c2bd;color:var(--bad)}
+table{border-collapse:collapse;width:100%;font-variant-numeric:tabular-nums}
+th,td{text-align:left;padding:6px 10px;border-bottom:1px solid var(--line);vertical-align:top}
+th{font-size:12px;color:var(--muted);text-transform:uppercase;letter-spacing:.04em;
+font-weight:600}
+td.num,th.num{text-align:right}tr.win td{background:#f1f6fb}
+.params{color:var(--muted);font-size:12.5px}
+.plots{display:grid;grid-template-columns:repeat(auto-fit,minmax(460px,1fr));gap:14px}
+figure{margin:0}figure img{width:100%;height:auto;display:block}
+figcaption{color:var(--muted);font-size:13px;margin-top:6px}
+.note{color:var(--muted);font-size:13px}
+a{color:var(--accent)}
+"""
+
+
+def _num(value: Any, digits: int = 4) -> str:
+    if value is None:
+        return "–"
+    if isinstance(value, float):
+        return f"{value:.{digits}g}" if abs(value) < 1e4 else f"{value:,.0f}"
+    return escape(str(value))
+
+
+def _facts(job: dict[str, Any]) -> str:
+    p = job["progress"]
+    done = p["trials_completed"] + p["trials_pruned"]
+    budget = p.get("trials_budget")
+    items = [
+        ("trials", f"{done}" + (f" of {budget}" if budget else "")),
+        ("complete / pruned / failed",
+         f"{p['trials_completed']} / {p['trials_pruned']} / {p['trials_failed']}"),
+        (f"best CV {job['metric']}", _num(p.get("best_score"))),
+        ("elapsed", f"{p['elapsed_seconds']:.0f} s"),
+    ]
+    dl = "".join(f"<div><dt>{escape(k)}</dt><dd>{escape(v)}</dd></div>" for k, v in items)
+    share = min(1.0, done / budget) if budget else (1.0 if job["status"] == "succeeded" else 0)
+    return (f'<section class="card"><dl class="facts">{dl}</dl>'
+            f'<div class="bar" role="progressbar" aria-valuenow="{done}" '
+            f'aria-valuemax="{budget or done}"><span style="width:{share:.0%}"></span></div>'
+            "</section>")
+
+
+def _warnings(messages: list[str]) -> str:
+    if not messages:
+        return ""
+    items = "".join(f"<li>{escape(m)}</li>" for m in messages)
+    return (f'<section class="card warnings" id="warnings"><strong>{len(messages)} '
+            f"warning{'s' if len(messages) != 1 else ''}</strong><ul>{items}</ul></section>")
+
+
+def _winner(model: dict[str, Any]) -> str:
+    ev = (model.get("details") or {}).get("evaluation") or {}
+    cv = model["cv"]
+    intervals = ev.get("holdout_intervals") or {}
+    rows = []
+    for name, iv in intervals.items():
+        mark = " ◀ optimised" if name == model["metric"] else ""
+        rows.append(f"<tr><td>{escape(name)}{mark}</td><td class='num'>{_num(iv['estimate'])}"
+                    f"</td><td class='num'>{_num(iv['low'])} – {_num(iv['high'])}</td>"
+                    f"<td class='num'>{_num(iv['std_error'], 2)}</td></tr>")
+    held = model["holdout"].get("rows")
+    table = (
+        "<table><thead><tr><th>hold-out metric</th><th class='num'>score</th>"
+        "<th class='num'>95% interval</th><th class='num'>std. error</th></tr></thead>"
+        f"<tbody>{''.join(rows)}</tbody></table>"
+        f"<p class='note'>{held} hold-out rows, never seen by the search; percentile "
+        f"bootstrap with {ev.get('bootstrap_resamples', '?')} resamples (seed "
+        f"{ev.get('seed', '?')}).</p>"
+    ) if rows else "<p class='note'>No hold-out was set aside for this job.</p>"
+    gap = ev.get("optimism")
+    gap_text = ""
+    if gap:
+        verdict = ("more than chance explains" if gap["suspicious"]
+                   else "within what fold spread and hold-out noise explain")
+        gap_text = (f"<p>Optimism gap: hold-out is worse than CV by {_num(gap['worse_by'], 3)}"
+                    f" (allowed {_num(gap['allowed'], 3)}): {verdict}.</p>")
+    folds = ", ".join(_num(s) for s in cv.get("fold_scores") or [])
+    leaves = ev.get("leaves") or {}
+    cal = ev.get("calibration")
+    extra = []
+    if leaves.get("leaves"):
+        extra.append(f"{leaves['leaves']} leaves, median {_num(leaves['median'])} rows, "
+                     f"smallest {leaves['min']}")
+    if cal:
+        extra.append(f"Brier score {cal['brier']:.4f}")
+    return (
+        f'<section class="card" id="winner"><p>Model <code>{escape(model["id"])}</code>, '
+        f"trial {model['trial_number']}, {model['boosting_rounds']} trees. "
+        f"CV {escape(model['metric'])}: <strong>{_num(cv.get('mean'))}</strong> ± "
+        f"{_num(cv.get('std'), 2)} (folds: {folds}).</p>{gap_text}{table}"
+        + (f"<p class='note'>{escape('; '.join(extra))}.</p>" if extra else "")
+        + "</section>"
+    )
+
+
+def _leaderboard(rows: list[dict[str, Any]], count: int, winner: int | None) -> str:
+    if not rows:
+        return "<p class='note'>No trial has completed yet.</p>"
+    body = []
+    for r in rows:
+        params = ", ".join(f"{k}={_num(r['params'][k], 3)}" for k in SHOWN_PARAMS
+                           if k in r["params"])
+        cls = ' class="win"' if r["number"] == winner else ""
+        body.append(f"<tr{cls}><td class='num'>{r['rank']}</td><td class='num'>{r['number']}"
+                    f"</td><td class='num'>{_num(r['score'])}</td><td class='num'>"
+                    f"{_num(r['score_std'], 2)}</td><td class='num'>{_num(r['boosting_rounds'])}"
+                    f"</td><td class='params'>{escape(params)}</td></tr>")
+    more = (f"<p class='note'>Top {len(rows)} of {count} complete trials.</p>"
+            if count > len(rows) else "")
+    return ("<table id='leaderboard'><thead><tr><th class='num'>rank</th><th class='num'>"
+            "trial</th><th class='num'>CV score</th><th class='num'>± std</th><th class='num'>"
+            f"trees</th><th>parameters</th></tr></thead><tbody>{''.join(body)}</tbody></table>"
+            + more)
+
+
+def _plots(names: list[str]) -> str:
+    if not names:
+        return "<p class='note'>Plots appear once trials complete.</p>"
+    figures = "".join(
+        f'<figure class="card"><img src="plots/{n}.svg" alt="{n} plot" loading="lazy">'
+        f"<figcaption>{escape(CAPTIONS[n])}</figcaption></figure>" for n in names)
+    return f'<div class="plots">{figures}</div>'
+
+
+def render(job: dict[str, Any], board: list[dict[str, Any]], count: int,
+           model: dict[str, Any] | None, plots: list[str]) -> str:
+    """The whole page from plain dicts (``JobOut``, leaderboard rows, ``ModelOut``)."""
+    running = job["status"] in ("queued", "running")
+    refresh = f'<meta http-equiv="refresh" content="{REFRESH_SECONDS}">' if running else ""
+    ev = ((model or {}).get("details") or {}).get("evaluation") or {}
+    warnings = list(job.get("warnings") or []) + list(ev.get("warnings") or [])
+    if ev.get("error"):
+        warnings.append(ev["error"])
+    job_id = escape(job["id"])
+    error = (f'<section class="card error"><strong>Failed:</strong> {escape(job["error"])}'
+             "</section>" if job.get("error") else "")
+    live = (f"<p class='note'>This page reloads every {REFRESH_SECONDS} s while the job runs."
+            "</p>" if running else "")
+    winner = _winner(model) if model else ""
+    return f"""<!doctype html>
+<html lang="en"><head><meta charset="utf-8">
+<meta name="viewport" content="width=device-width,initial-scale=1">{refresh}
+<title>{job_id} · {escape(job['status'])} · Grovekeeper</title>
+<style>{CSS}</style></head>
+<body><main>
+<h1>Tuning job <code>{job_id}</code><span class="status {escape(job['status'])}">
+{escape(job['status'])}</span></h1>
+<p class="sub">Predicting <strong>{escape(job['target'])}</strong> ({escape(job['task'])}),
+scored by <strong>{escape(job['metric'])}</strong> · dataset
+<code>{escape(job['dataset_id'])}</code> · <a href="../{job_id}">JSON</a> ·
+<a href="leaderboard?format=csv">leaderboard CSV</a></p>
+{live}{_facts(job)}{error}{_warnings(warnings)}
+{'<h2>Winner</h2>' + winner if winner else ''}
+<h2>Plots</h2>{_plots(plots)}
+<h2>Leaderboard</h2><section class="card">{_leaderboard(board, count,
+    (model or {}).get('trial_number'))}</section>
+</main></body></html>
+"""

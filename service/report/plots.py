@@ -1,0 +1,204 @@
+"""SVG plots of a job, drawn with matplotlib's object API from what the database holds.
+
+Plots read our own rows (``gk_trials``, ``gk_models``), never Optuna objects, so drawing
+one is a couple of indexed queries. Every data series carries an SVG ``id`` (``trials``,
+``best``, ``bar-0``, ``train``, ``valid``, ``bins``) so tests and scripts can find it.
+"""
+
+from __future__ import annotations
+
+import io
+from collections.abc import Callable, Sequence
+from typing import Any
+
+import matplotlib
+
+matplotlib.use("Agg")  # headless; must precede any backend use
+
+from matplotlib.backends.backend_svg import FigureCanvasSVG  # noqa: E402
+from matplotlib.figure import Figure  # noqa: E402
+from matplotlib.ticker import MaxNLocator  # noqa: E402
+
+# Process-wide, set once: text stays text (small, crisp, selectable), curves keep every
+# vertex (a learning curve with 300 rounds has 300 points), ids are stable across runs.
+matplotlib.rcParams.update({"svg.fonttype": "none", "path.simplify": False,
+                            "svg.hashsalt": "grovekeeper", "font.size": 10})
+
+INK, ACCENT, MUTED, WARM = "#1f2933", "#2f6f9f", "#9aa5b1", "#c8553d"
+NAMES = ("history", "hyperparameters", "features", "learning", "calibration")
+TOP_BARS = 15
+
+
+class PlotUnavailable(Exception):
+    """The job has no data for this plot (yet, or for its task)."""
+
+
+def _figure(height: float = 3.4) -> tuple[Figure, Any]:
+    fig = Figure(figsize=(6.4, height), layout="constrained")
+    FigureCanvasSVG(fig)
+    ax = fig.add_subplot()
+    ax.spines[["top", "right"]].set_visible(False)
+    ax.grid(True, color="#e4e7eb", linewidth=0.6)
+    ax.set_axisbelow(True)
+    return fig, ax
+
+
+def _svg(fig: Figure) -> bytes:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="svg", metadata={"Date": None})
+    return buf.getvalue()
+
+
+def history(trials: Sequence[dict[str, Any]], *, metric: str, direction: str) -> bytes:
+    """Mean CV score per complete trial, pruned trials' partial means, and the best so far."""
+    complete = [t for t in trials if t["state"] == "complete" and t["score"] is not None]
+    if not complete:
+        raise PlotUnavailable("no trial has completed yet")
+    pick = max if direction == "maximize" else min
+    fig, ax = _figure()
+    pruned = [t for t in trials if t["state"] == "pruned" and t["fold_scores"]]
+    if pruned:
+        ax.scatter([t["number"] for t in pruned],
+                   [sum(t["fold_scores"]) / len(t["fold_scores"]) for t in pruned],
+                   marker="x", s=18, color=MUTED, label="pruned (mean of folds run)",
+                   gid="pruned")
+    xs = [t["number"] for t in complete]
+    ys = [t["score"] for t in complete]
+    ax.scatter(xs, ys, s=22, color=ACCENT, label="complete trial", gid="trials", zorder=3)
+    best, running = [], None
+    for y in ys:
+        running = y if running is None else pick(running, y)
+        best.append(running)
+    ax.step(xs, best, where="post", color=WARM, linewidth=1.6, label="best so far", gid="best")
+    ax.xaxis.set_major_locator(MaxNLocator(integer=True))
+    ax.set_xlabel("trial number")
+    ax.set_ylabel(f"{metric} (mean over CV folds)")
+    arrow = "higher is better" if direction == "maximize" else "lower is better"
+    ax.set_title(f"Search history: {len(complete)} complete, {len(pruned)} pruned ({arrow})",
+                 loc="left")
+    ax.legend(frameon=False, fontsize=8)
+    return _svg(fig)
+
+
+def _bars(labels: list[str], values: list[float], *, xlabel: str, title: str,
+          fmt: Callable[[float], str]) -> bytes:
+    labels, values = labels[:TOP_BARS][::-1], values[:TOP_BARS][::-1]  # largest on top
+    fig, ax = _figure(max(2.2, 0.62 + 0.26 * len(labels)))
+    bars = ax.barh(labels, values, color=ACCENT, height=0.65)
+    for i, patch in enumerate(reversed(bars.patches)):
+        patch.set_gid(f"bar-{i}")
+    for patch, value in zip(bars.patches, values, strict=True):
+        ax.annotate(fmt(value), (patch.get_width(), patch.get_y() + patch.get_height() / 2),
+                    xytext=(3, 0), textcoords="offset points", va="center", fontsize=8,
+                    color=INK)
+    ax.set_xlim(0, max(values) * 1.18 if max(values) > 0 else 1)
+    ax.grid(False, axis="y")
+    ax.set_xlabel(xlabel)
+    ax.set_title(title, loc="left")
+    return _svg(fig)
+
+
+def hyperparameters(importance: dict[str, Any] | None) -> bytes:
+    """fANOVA share of score variance per tuned parameter."""
+    found = (importance or {}).get("importances") or {}
+    if not found:
+        raise PlotUnavailable((importance or {}).get("note", "no hyperparameter importance"))
+    names = list(found)
+    return _bars(names, [100 * found[n] for n in names],
+                 xlabel="share of CV-score variance explained (%, fANOVA)",
+                 title=f"Which hyperparameters mattered ({importance['trials']} trials)",
+                 fmt=lambda v: f"{v:.0f}%")
+
+
+def features(importance: Sequence[dict[str, Any]]) -> bytes:
+    """Total split gain per feature as a share of all gain, top features first."""
+    total = sum(r["gain"] for r in importance)
+    if not importance or total <= 0:
+        raise PlotUnavailable("the model made no splits")
+    rows = sorted(importance, key=lambda r: -r["gain"])
+    more = f", top {TOP_BARS} of {len(rows)}" if len(rows) > TOP_BARS else ""
+    return _bars([r["feature"] for r in rows], [100 * r["gain"] / total for r in rows],
+                 xlabel="share of total split gain (%)",
+                 title=f"Feature importance (gain{more})",
+                 fmt=lambda v: f"{v:.1f}%")
+
+
+def learning(curve: dict[str, Any] | None) -> bytes:
+    """Training and validation metric per boosting round for the winner's first fold."""
+    if not curve or not curve.get("valid"):
+        raise PlotUnavailable("no learning curve recorded")
+    fig, ax = _figure()
+    rounds = list(range(1, len(curve["valid"]) + 1))
+    ax.plot(rounds, curve["train"], color=MUTED, linewidth=1.4, label="training rows",
+            gid="train")
+    ax.plot(rounds, curve["valid"], color=ACCENT, linewidth=1.6, label="validation rows",
+            gid="valid")
+    best = curve["best_round"]
+    ax.axvline(best, color=WARM, linewidth=1, linestyle="--",
+               label=f"early stop on this fold: round {best}")
+    ax.set_xlabel("boosting round (trees)")
+    better = "higher is better" if curve.get("higher_is_better") else "lower is better"
+    ax.set_ylabel(f"{curve['metric']} ({better})")
+    ax.set_title(f"Learning curve of the winner, CV fold {curve['fold'] + 1}", loc="left")
+    ax.legend(frameon=False, fontsize=8)
+    return _svg(fig)
+
+
+def calibration(cal: dict[str, Any] | None) -> bytes:
+    """Reliability curve: observed frequency of class 1 per bin of predicted probability."""
+    if not cal or not cal.get("counts"):
+        raise PlotUnavailable("calibration is drawn for binary tasks with a hold-out")
+    fig, ax = _figure(3.8)
+    ax.plot([0, 1], [0, 1], color=MUTED, linewidth=1, linestyle=":", label="perfectly calibrated")
+    ax.plot(cal["mean_predicted"], cal["observed"], color=ACCENT, linewidth=1.2,
+            marker="o", markersize=4, label="hold-out rows", gid="bins")
+    ax.set_xlim(0, 1)
+    ax.set_ylim(0, 1)
+    ax.set_xlabel("mean predicted probability of class 1 (per bin)")
+    ax.set_ylabel("observed share of class 1")
+    ax.set_title(f"Calibration on the hold-out (Brier score {cal['brier']:.4f})", loc="left")
+    ax.legend(frameon=False, fontsize=8, loc="upper left")
+    return _svg(fig)
+
+
+def render(name: str, *, trials: Sequence[dict[str, Any]], job: dict[str, Any],
+           model: dict[str, Any] | None) -> bytes:
+    """Draw plot ``name`` (one of :data:`NAMES`) from plain dicts of our rows.
+
+    Raises:
+        KeyError: Unknown plot name.
+        PlotUnavailable: The job has nothing to draw for it (yet).
+    """
+    if name == "history":
+        return history(trials, metric=job["metric"], direction=job["direction"])
+    if name not in NAMES:
+        raise KeyError(name)
+    if model is None:
+        raise PlotUnavailable("this plot is drawn once the job has a model")
+    evaluation = (model.get("details") or {}).get("evaluation") or {}
+    if name == "hyperparameters":
+        return hyperparameters(evaluation.get("hyperparameter_importance"))
+    if name == "features":
+        return features(model["feature_importance"])
+    if name == "learning":
+        return learning(evaluation.get("learning_curve"))
+    return calibration(evaluation.get("calibration"))
+
+
+def available(*, trials: Sequence[dict[str, Any]], model: dict[str, Any] | None) -> list[str]:
+    """Names of the plots :func:`render` can draw from this data, without drawing them."""
+    names = []
+    if any(t["state"] == "complete" and t["score"] is not None for t in trials):
+        names.append("history")
+    if model is None:
+        return names
+    evaluation = (model.get("details") or {}).get("evaluation") or {}
+    if ((evaluation.get("hyperparameter_importance") or {}).get("importances")):
+        names.append("hyperparameters")
+    if sum(r["gain"] for r in model["feature_importance"]) > 0:
+        names.append("features")
+    if (evaluation.get("learning_curve") or {}).get("valid"):
+        names.append("learning")
+    if (evaluation.get("calibration") or {}).get("counts"):
+        names.append("calibration")
+    return names

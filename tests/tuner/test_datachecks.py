@@ -1,0 +1,89 @@
+"""Data warnings: leaks, target copies, duplicates across the hold-out, imbalance, size."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import tuner
+from examples.demo_data import greenhouse, kilns
+from tuner.datachecks import job_warnings, single_feature_power, table_warnings
+
+
+def _warnings(frame: pd.DataFrame, target: str, **kw) -> list[str]:
+    data = tuner.prepare(frame, target=target, **kw)
+    return job_warnings(data, tuner.plan_validation(data, n_folds=5, seed=0))
+
+
+@pytest.mark.parametrize("make,target", [(kilns, "defect"), (greenhouse, "yield_kg_per_m2")])
+def test_silent_on_the_demo_tables(make, target: str) -> None:
+    frame = make()  # the sizes the demo uses
+    assert _warnings(frame, target) == []
+    assert table_warnings(frame) == []
+
+
+@pytest.mark.parametrize("make,target", [(kilns, "defect"), (greenhouse, "yield_kg_per_m2")])
+def test_leak_fires_on_target_plus_tiny_noise(make, target: str) -> None:
+    frame = make(n_rows=500, seed=3)
+    y = frame[target].astype("float64")
+    frame["sensor_after"] = y + np.random.default_rng(0).normal(0, 0.01 * y.std(), len(y))
+    found = _warnings(frame, target)
+    assert len(found) == 1 and "'sensor_after'" in found[0] and "leakage" in found[0]
+
+
+def test_strong_but_honest_feature_is_not_a_leak() -> None:
+    rng = np.random.default_rng(1)
+    x = rng.normal(size=600)
+    frame = pd.DataFrame({"x": x, "other": rng.normal(size=600),
+                          "y": x + rng.normal(0, 0.4, 600)})  # |Spearman| about 0.92
+    data = tuner.prepare(frame, target="y")
+    assert 0.85 < single_feature_power(data)["x"] < tuner.datachecks.LEAK_SHARE
+    assert job_warnings(data, tuner.plan_validation(data, seed=0)) == []
+
+
+def test_copies_of_the_target() -> None:
+    frame = kilns(n_rows=400, seed=1)
+    frame["verdict"] = np.where(frame["defect"] == 1, "reject", "keep")
+    found = _warnings(frame, "defect")
+    assert any("'verdict' is a copy of the target" in w for w in found)
+    green = greenhouse(n_rows=300, seed=1)
+    green["yield_g"] = green["yield_kg_per_m2"] * 1000
+    assert any("'yield_g' is a copy" in w for w in _warnings(green, "yield_kg_per_m2"))
+
+
+def test_identifiers_earn_no_credit() -> None:
+    frame = kilns(n_rows=400, seed=1)
+    data = tuner.prepare(frame, target="defect", features=["firing_id", "kiln"])
+    assert single_feature_power(data)["firing_id"] < 0.2
+
+
+def test_duplicates_straddling_the_holdout() -> None:
+    frame = greenhouse(n_rows=300, seed=2)
+    doubled = pd.concat([frame, frame.iloc[:60]], ignore_index=True)
+    data = tuner.prepare(doubled, target="yield_kg_per_m2")
+    plan = tuner.plan_validation(data, n_folds=5, seed=0)
+    found = [w for w in job_warnings(data, plan) if "hold-out row" in w]
+    # Count by hand: hold-out rows whose twin (position +-300) is among the search rows.
+    train = set(plan.train_idx.tolist())
+    twin = {i: i + 300 for i in range(60)} | {i + 300: i for i in range(60)}
+    expected = sum(1 for i in plan.holdout_idx.tolist() if twin.get(i) in train)
+    assert expected > 0 and found == [found[0]] and found[0].startswith(f"{expected} of ")
+    assert "60 row(s) are exact duplicates" in table_warnings(doubled)[0]
+
+
+def test_imbalance_lists_class_counts() -> None:
+    rng = np.random.default_rng(0)
+    frame = pd.DataFrame({"x": rng.normal(size=1000),
+                          "z": rng.normal(size=1000),
+                          "rare": np.r_[np.ones(30, dtype=int), np.zeros(970, dtype=int)]})
+    found = [w for w in _warnings(frame, "rare") if "imbalanced" in w]
+    assert found and "0: 970" in found[0] and "1: 30" in found[0]
+
+
+def test_too_few_rows_for_the_columns() -> None:
+    rng = np.random.default_rng(0)
+    frame = pd.DataFrame(rng.normal(size=(60, 12)), columns=[f"c{i}" for i in range(12)])
+    found = _warnings(frame, "c0")
+    assert any("48 search rows for 11 feature column(s)" in w for w in found), found
+    assert any("60 rows for 11 feature column(s)" in w for w in table_warnings(frame))
