@@ -25,6 +25,9 @@ class Settings(BaseSettings):
     # How often an idle worker looks for queued jobs.
     poll_seconds: float = Field(default=1.0, gt=0)
     log_format: str = Field(default="text", pattern="^(text|json)$")
+    # Where datasets and model files live: a local folder (default: the home) or any fsspec
+    # URL every process can reach (a shared mount, ``s3://bucket/prefix`` with s3fs, ...).
+    artifacts: str | None = None
     # Set by ``serve`` for the workers it starts, so they stop when it is gone.
     parent_pid: int | None = None
 
@@ -45,6 +48,10 @@ class Settings(BaseSettings):
         if self.database_url:
             return self.database_url
         return f"sqlite:///{(self.home / 'grovekeeper.db').resolve()}"
+
+    @property
+    def artifacts_url(self) -> str:
+        return self.artifacts or str(self.home.resolve())
 
     @property
     def datasets_dir(self) -> Path:
