@@ -100,9 +100,9 @@ def join_next(session: Session, *, worker_id: str) -> str | None:
             sa.select(sa.literal(job_id), sa.literal(worker_id), sa.literal(now, stamp),
                       sa.literal(now, stamp))
             .where(_participants(job_id) < limit),
-        )
-    )
-    return job_id if inserted.rowcount == 1 else None  # type: ignore[attr-defined]
+        ).returning(JobWorker.worker_id)
+    ).first()
+    return job_id if inserted is not None else None
 
 
 def leave(session: Session, *, job_id: str, worker_id: str) -> None:

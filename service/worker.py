@@ -273,7 +273,8 @@ class Worker:
             # Several workers record trials of one job: lock its row first (PostgreSQL;
             # SQLite writes one at a time anyway) so the counts below see every commit.
             session.get(Job, job_id, with_for_update={"key_share": True})
-            repository.upsert_trial(session, job_id=job_id, record=record.to_dict())
+            repository.upsert_trial(session, job_id=job_id,
+                                    record={**record.to_dict(), "worker_id": self.worker_id})
             _refresh_progress(session, job_id)
 
     def _resync_trials(self, job_id: str, study_name: str) -> None:
