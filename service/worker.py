@@ -213,6 +213,8 @@ class Worker:
         log.info("worker %s joined job %s", self.worker_id, job_id)
         try:
             run, config, study_name, _ = self._load(job_id)
+            if config.timeout is not None and config.timeout <= 1.0:
+                return  # the job's wall-clock limit is (nearly) spent: nothing to add
             salt = int(hashlib.sha256(self.worker_id.encode()).hexdigest()[:8], 16) | 1
             tuner.run_search(
                 run.data, run.plan, config, storage_url=self.url, study_name=study_name,

@@ -338,9 +338,13 @@ def close_search(storage_url: str, study_name: str, *, direction: str) -> Search
     worker does, after its joiners left): whatever is still RUNNING belongs to a process
     that died before its heartbeat went stale.
     """
-    study = optuna.load_study(study_name=study_name, storage=_storage(storage_url))
-    _fail_running(study)
-    return _result(study, direction)
+    storage = _storage(storage_url)
+    try:
+        study = optuna.load_study(study_name=study_name, storage=storage)
+        _fail_running(study)
+        return _result(study, direction)
+    finally:
+        storage.engine.dispose()  # one-shot: leave no pooled connection behind
 
 
 def _result(study: optuna.Study, direction: str) -> SearchResult:
@@ -367,7 +371,9 @@ def load_trial_records(storage_url: str, study_name: str) -> list[TrialRecord]:
     storage = _storage(storage_url)
     try:
         study = optuna.load_study(study_name=study_name, storage=storage)
+        return [record_from_frozen(t) for t in study.get_trials(deepcopy=False)
+                if t.state != TrialState.WAITING]
     except KeyError:
         return []
-    return [record_from_frozen(t) for t in study.get_trials(deepcopy=False)
-            if t.state != TrialState.WAITING]
+    finally:
+        storage.engine.dispose()  # one-shot: leave no pooled connection behind

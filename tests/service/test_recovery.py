@@ -144,3 +144,20 @@ def test_sigterm_hands_the_job_back_and_a_new_worker_resumes(db_url: str,
     assert all(after[n] == v for n, v in kept.items())
     # The interrupted trial was pruned (it counts as finished), so the budget holds.
     assert len(after) == 6
+
+
+def test_wall_clock_limit_ends_the_search_and_refits(db_url: str, tmp_path: Path) -> None:
+    from service.schemas import as_utc
+
+    home = tmp_path / "home"
+    job_id = add_job(db_url, home, add_dataset(db_url, home), budget={"seconds": 4})
+    with workers(home, db_url) as pool:
+        pool.start(1)
+        job = wait_until(lambda: (j := job_row(db_url, job_id)).status == "succeeded" and j,
+                         120, "the time-limited job to succeed", pool.logs)
+    done = finished(db_url, job_id)
+    last = max(as_utc(t.finished_at) for t in done)
+    slowest = max(t.duration_seconds or 0 for t in done)
+    # Optuna checks the timeout between trials: the last trial may start just before it.
+    assert (last - as_utc(job.started_at)).total_seconds() < 4 + slowest + 5
+    assert len(done) >= 1 and job.model_id is not None
