@@ -8,6 +8,14 @@ LightGBM) before the job is queued; the rate is finished trials over the time fr
 job's claim to its last finished trial, so process start-up and the final refit are not
 counted. Target on 2 cores: 2 workers reach >= 1.6x the rate of 1. The ratio is what to
 read: other work on the machine moves the absolute numbers.
+
+The CPU seconds the workers used during the job are printed too: ``cpu/wall`` near the
+number of workers means they ran in parallel, and trials per CPU-minute that stays flat
+from 1 to 2 workers means sharing a study costs no extra work. On a busy machine with
+Linux's autogroup scheduling (``/proc/sys/kernel/sched_autogroup_enabled``) all processes
+of one session share one CPU share, so a second worker started in the same session gains
+little; ``--sessions`` starts each worker in a session of its own, as separate machines or
+containers would be.
 """
 
 from __future__ import annotations
@@ -81,7 +89,13 @@ def queue_job(url: str, home: Path, frame: pd.DataFrame, trials: int, workers: i
     return job_id
 
 
-def start_workers(n: int, home: Path, url: str) -> list[subprocess.Popen[bytes]]:
+def cpu_seconds(pid: int) -> float:
+    fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
+def start_workers(n: int, home: Path, url: str,
+                  sessions: bool = False) -> list[subprocess.Popen[bytes]]:
     env = dict(os.environ, PYTHONPATH=str(ROOT), GROVEKEEPER_HOME=str(home),
                GROVEKEEPER_DATABASE_URL=url, OMP_WAIT_POLICY="passive",
                GROVEKEEPER_POLL_SECONDS="0.2", GROVEKEEPER_HEARTBEAT_SECONDS="1")
@@ -89,7 +103,8 @@ def start_workers(n: int, home: Path, url: str) -> list[subprocess.Popen[bytes]]
     for i in range(n):
         log = open(home / f"worker-{i}.log", "ab")  # noqa: SIM115 - closed right below
         procs.append(subprocess.Popen([sys.executable, "-m", "service", "worker"], env=env,
-                                      stdout=log, stderr=subprocess.STDOUT, cwd=ROOT))
+                                      stdout=log, stderr=subprocess.STDOUT, cwd=ROOT,
+                                      start_new_session=sessions))
         log.close()
     deadline = time.monotonic() + 120
     while time.monotonic() < deadline:  # wait until each has imported and started polling
@@ -100,15 +115,16 @@ def start_workers(n: int, home: Path, url: str) -> list[subprocess.Popen[bytes]]
 
 
 def one_run(kind: str, n_workers: int, frame: pd.DataFrame, trials: int,
-            pg_admin: str) -> tuple[float, int, int]:
-    """Returns (trials per minute, finished trials, workers that contributed)."""
+            pg_admin: str, sessions: bool) -> tuple[float, int, int, float, float]:
+    """Returns (trials/min, finished trials, contributors, worker CPU s, wall s)."""
     with tempfile.TemporaryDirectory() as folder:
         home = Path(folder) / "home"
         home.mkdir()
         with database(kind, Path(folder), pg_admin) as url:
             init_db(url)
-            procs = start_workers(n_workers, home, url)
+            procs = start_workers(n_workers, home, url, sessions)
             try:
+                cpu0 = sum(cpu_seconds(p.pid) for p in procs)
                 job_id = queue_job(url, home, frame, trials, n_workers)
                 while True:
                     with session_scope(url) as session:
@@ -119,6 +135,7 @@ def one_run(kind: str, n_workers: int, frame: pd.DataFrame, trials: int,
                     time.sleep(0.5)
                 if status != "succeeded":
                     raise RuntimeError(f"job {status}")
+                cpu = sum(cpu_seconds(p.pid) for p in procs) - cpu0  # includes the refit
                 with session_scope(url) as session:
                     rows = session.execute(
                         sa.select(Trial.finished_at, Trial.worker_id)
@@ -131,7 +148,7 @@ def one_run(kind: str, n_workers: int, frame: pd.DataFrame, trials: int,
                     proc.wait(timeout=60)
                 dispose_engines()
     span = (max(as_utc(r[0]) for r in rows) - as_utc(started)).total_seconds()
-    return len(rows) / span * 60, len(rows), len({r[1] for r in rows})
+    return len(rows) / span * 60, len(rows), len({r[1] for r in rows}), cpu, span
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -140,19 +157,24 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--pg", default="postgresql://127.0.0.1:5432/test",
                         help="an existing PostgreSQL database to create throw-away ones from")
     parser.add_argument("--backends", default="sqlite,postgres")
+    parser.add_argument("--sessions", action="store_true",
+                        help="start each worker in its own session (own autogroup)")
     args = parser.parse_args(argv)
     rows, trials = (1000, 12) if args.quick else (3000, 30)
     frame = kilns(n_rows=rows, seed=11)
     print(f"one job, {trials} trials, {rows} rows, 5-fold CV; {os.cpu_count()} cores "
           f"(load average {os.getloadavg()[0]:.2f} at start)")
-    print(f"{'backend':10} {'workers':>7} {'trials':>6} {'contrib':>7} {'trials/min':>10}")
+    print(f"{'backend':10} {'workers':>7} {'trials':>6} {'contrib':>7} {'trials/min':>10} "
+          f"{'cpu/wall':>8} {'trials/cpu-min':>14}")
     ratios = {}
     for kind in args.backends.split(","):
         rates = {}
         for n in (1, 2):
-            rate, done, contrib = one_run(kind, n, frame, trials, args.pg)
+            rate, done, contrib, cpu, wall = one_run(kind, n, frame, trials, args.pg,
+                                                     args.sessions)
             rates[n] = rate
-            print(f"{kind:10} {n:>7} {done:>6} {contrib:>7} {rate:>10.1f}", flush=True)
+            print(f"{kind:10} {n:>7} {done:>6} {contrib:>7} {rate:>10.1f} {cpu / wall:>8.2f} "
+                  f"{done / cpu * 60:>14.1f}", flush=True)
         ratios[kind] = rates[2] / rates[1]
     for kind, ratio in ratios.items():
         print(f"{kind}: 2 workers / 1 worker = {ratio:.2f}x (target >= 1.6x on 2 cores)")
