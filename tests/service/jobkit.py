@@ -86,7 +86,7 @@ class Workers:
         for _ in range(n):
             log = open(self.home.parent / f"worker-{len(self.procs)}.log", "ab")  # noqa: SIM115
             proc = subprocess.Popen([sys.executable, "-m", "service", "worker"],
-                                    env=child_env(self.home, self.url, **FAST, **self.env),
+                                    env=child_env(self.home, self.url, **{**FAST, **self.env}),
                                     stdout=log, stderr=subprocess.STDOUT, cwd=ROOT)
             log.close()
             self.procs.append(proc)

@@ -100,7 +100,8 @@ def test_two_workers_many_jobs_each_claimed_once(db_url: str, tmp_path: Path) ->
 def test_cancel_reaches_cancelled_within_one_trial(db_url: str, tmp_path: Path) -> None:
     home = tmp_path / "home"
     job_id = add_job(db_url, home, add_dataset(db_url, home), budget={"trials": 500})
-    with workers(home, db_url) as pool:
+    # The cancel flag travels with the heartbeat; beat often, as trials here are short.
+    with workers(home, db_url, GROVEKEEPER_HEARTBEAT_SECONDS="0.2") as pool:
         pool.start(1)
         wait_until(lambda: len(finished(db_url, job_id)) >= 2, 120, "2 finished trials",
                    pool.logs)
@@ -112,13 +113,13 @@ def test_cancel_reaches_cancelled_within_one_trial(db_url: str, tmp_path: Path) 
                          60, "the job to be cancelled", pool.logs)
         took = time.monotonic() - asked
         slowest = max(t.duration_seconds or 0 for t in finished(db_url, job_id))
-    # The trial in flight finishes or is pruned at its next fold; a trial that started
-    # before the next heartbeat brought the flag is pruned after its first fold. Nothing
-    # more runs: at most two more trials are recorded, whatever the budget.
-    assert len(finished(db_url, job_id)) <= at_cancel + 2
+    # The flag arrives with the next heartbeat (0.2 s); the trial running then is pruned
+    # at its next fold. Trials here can be as short as 0.2 s (pruned ones), so a few may
+    # finish before the flag arrives, but nothing like the 500 of the budget.
+    assert len(finished(db_url, job_id)) <= at_cancel + 4
     # One trial's time plus a heartbeat, with slack for a shared machine; 500 trials would
     # take minutes.
-    assert took < slowest + 0.5 + 10, (took, slowest)
+    assert took < slowest + 0.2 + 10, (took, slowest)
     assert job.model_id is None  # cancelled jobs are not refit (README)
     assert participants(db_url, job_id) == []
 
