@@ -155,6 +155,30 @@ def cmd_demo(args: argparse.Namespace) -> int:
     return run_demo(trials=args.trials, keep=args.keep)
 
 
+def cmd_migrate(args: argparse.Namespace) -> int:
+    """Create or upgrade the schema (ours and Optuna's); the containers' prestart step."""
+    import time
+
+    from service.db import init_db, ping
+    from service.migrations import SCHEMA_VERSION
+
+    settings = _settings(args)
+    settings.ensure_dirs()
+    deadline = time.monotonic() + args.wait
+    while True:  # a database container may still be starting
+        try:
+            ping(settings.db_url)
+            break
+        except Exception as exc:  # noqa: BLE001 - retried until the deadline
+            if time.monotonic() > deadline:
+                print(f"grovekeeper: database not reachable: {exc}", file=sys.stderr)
+                return 1
+            time.sleep(1)
+    init_db(settings.db_url)
+    print(f"schema at revision {SCHEMA_VERSION}", file=sys.stderr)
+    return 0
+
+
 def cmd_keys_create(args: argparse.Namespace) -> int:
     from service.auth import create_key
     from service.db import init_db
@@ -197,6 +221,12 @@ def build_parser() -> argparse.ArgumentParser:
     demo.add_argument("--trials", type=int, default=30, help="trial budget per job")
     demo.add_argument("--keep", action="store_true", help="keep the temporary home")
     demo.set_defaults(func=cmd_demo)
+
+    migrate = sub.add_parser("migrate", help="create or upgrade the database schema")
+    common(migrate)
+    migrate.add_argument("--wait", type=float, default=0,
+                         help="seconds to wait for the database to accept connections")
+    migrate.set_defaults(func=cmd_migrate)
 
     keys = sub.add_parser("keys", help="manage API keys")
     keys_sub = keys.add_subparsers(dest="keys_command", required=True)

@@ -12,8 +12,6 @@ from sqlalchemy import event
 from sqlalchemy.engine import Engine
 from sqlalchemy.orm import Session, sessionmaker
 
-from service.tables import Base
-
 # Long enough that a writer waiting behind a trial commit never gives up; see
 # LIBRARIES.md §2 (lock waits show up as stalls, not errors, at 30 s and more).
 SQLITE_BUSY_TIMEOUT_S = 60
@@ -91,7 +89,7 @@ def session_scope(url: str) -> Iterator[Session]:
 
 
 def init_db(url: str, *, attempts: int = 5) -> None:
-    """Create the service tables and Optuna's schema once.
+    """Create or upgrade the service tables (service/migrations.py) and Optuna's schema.
 
     Several processes starting against a fresh database race on CREATE TABLE
     (LIBRARIES.md §2, start-up race); a retry after a short pause sees the tables
@@ -99,9 +97,11 @@ def init_db(url: str, *, attempts: int = 5) -> None:
     """
     import optuna
 
+    from service.migrations import migrate
+
     for attempt in range(attempts):
         try:
-            Base.metadata.create_all(get_engine(url))
+            migrate(get_engine(url))
             engine_kwargs = (
                 {"connect_args": {"timeout": SQLITE_BUSY_TIMEOUT_S}} if is_sqlite(url) else {}
             )

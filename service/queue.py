@@ -5,16 +5,23 @@ Claiming is one guarded ``UPDATE … WHERE id = (SELECT … LIMIT 1) AND status 
 on PostgreSQL the subquery takes its row with ``FOR UPDATE SKIP LOCKED``. Both
 measured with zero double claims (LIBRARIES.md §6); the outer status check is
 what keeps PostgreSQL from double-claiming under READ COMMITTED.
+
+Several workers on one job: the worker that claims a queued job is its *lead* (it opens
+the study, refits the winner and finishes the job). While the job runs, other workers may
+*join* it (``join_next``) up to its ``max_workers``; every participant, lead included, has
+a row in ``gk_job_workers`` with its own heartbeat. A stale lead sends the job back to the
+queue (the next claimer becomes lead; live joiners carry on); a stale joiner only loses
+its row. Optuna's own trial heartbeat fails the dead worker's trials in flight.
 """
 
 from __future__ import annotations
 
-from datetime import timedelta
+from datetime import datetime, timedelta
 
 import sqlalchemy as sa
 from sqlalchemy.orm import Session
 
-from service.tables import Job, JobStatus, utcnow
+from service.tables import Job, JobStatus, JobWorker, utcnow
 
 QUEUED = JobStatus.QUEUED.value
 RUNNING = JobStatus.RUNNING.value
@@ -44,21 +51,115 @@ def claim_next(session: Session, *, worker_id: str) -> str | None:
         .returning(Job.id)
         .execution_options(synchronize_session=False)
     )
-    return session.execute(stmt).scalar_one_or_none()
+    job_id = session.execute(stmt).scalar_one_or_none()
+    if job_id is not None:
+        _add_participant(session, job_id=job_id, worker_id=worker_id, now=now)
+    return job_id
+
+
+def _add_participant(session: Session, *, job_id: str, worker_id: str, now: datetime) -> None:
+    # A live joiner row of the same worker cannot exist (one job per worker at a time),
+    # but a row left by an earlier life of this worker id may.
+    session.execute(sa.delete(JobWorker).where(JobWorker.job_id == job_id,
+                                               JobWorker.worker_id == worker_id))
+    session.add(JobWorker(job_id=job_id, worker_id=worker_id, joined_at=now, heartbeat_at=now))
+    session.flush()
+
+
+def _participants(job_id: object) -> sa.ScalarSelect[int]:
+    return (sa.select(sa.func.count()).select_from(JobWorker)
+            .where(JobWorker.job_id == job_id).scalar_subquery())
+
+
+def join_next(session: Session, *, worker_id: str) -> str | None:
+    """Join a running job that has room for another worker; None when there is none.
+
+    Queued jobs go first (``claim_next``): a waiting job gets a worker before a running
+    one gets an extra. The job row is locked (PostgreSQL, SKIP LOCKED) while the
+    participants are counted, and the insert itself re-checks the count in the same
+    statement (one write transaction on SQLite), so ``max_workers`` is never exceeded.
+    """
+    now = utcnow()
+    candidate = session.execute(
+        sa.select(Job.id, Job.max_workers)
+        .where(Job.status == RUNNING, Job.joinable.is_(True), Job.max_workers > 1,
+               Job.cancel_requested.is_(False), Job.max_workers > _participants(Job.id),
+               ~sa.exists().where(JobWorker.job_id == Job.id,
+                                  JobWorker.worker_id == worker_id))
+        .order_by(Job.priority.desc(), Job.created_at, Job.id)
+        .limit(1)
+        .with_for_update(skip_locked=True)
+    ).first()
+    if candidate is None:
+        return None
+    job_id, limit = candidate
+    stamp = sa.DateTime(timezone=True)
+    inserted = session.execute(
+        sa.insert(JobWorker).from_select(
+            ["job_id", "worker_id", "joined_at", "heartbeat_at"],
+            sa.select(sa.literal(job_id), sa.literal(worker_id), sa.literal(now, stamp),
+                      sa.literal(now, stamp))
+            .where(_participants(job_id) < limit),
+        ).returning(JobWorker.worker_id)
+    ).first()
+    return job_id if inserted is not None else None
+
+
+def leave(session: Session, *, job_id: str, worker_id: str) -> None:
+    """A joiner is done with a job (budget reached, cancel, shutdown or error)."""
+    session.execute(sa.delete(JobWorker).where(JobWorker.job_id == job_id,
+                                               JobWorker.worker_id == worker_id))
+
+
+def participants(session: Session, *, job_id: str) -> list[str]:
+    return list(session.scalars(sa.select(JobWorker.worker_id).where(JobWorker.job_id == job_id)
+                                .order_by(JobWorker.joined_at)))
+
+
+def set_joinable(session: Session, *, job_id: str, worker_id: str) -> None:
+    session.execute(sa.update(Job).where(Job.id == job_id, Job.worker_id == worker_id)
+                    .values(joinable=True).execution_options(synchronize_session=False))
 
 
 def heartbeat(session: Session, *, job_id: str, worker_id: str) -> tuple[bool, bool]:
-    """Refresh the claim. Returns (still ours, cancel requested)."""
+    """Refresh the lead's claim. Returns (still ours, cancel requested)."""
+    now = utcnow()
     result = session.execute(
         sa.update(Job)
         .where(Job.id == job_id, Job.worker_id == worker_id, Job.status == RUNNING)
-        .values(heartbeat_at=utcnow())
+        .values(heartbeat_at=now)
         .returning(Job.cancel_requested)
         .execution_options(synchronize_session=False)
     ).all()
     if not result:
         return False, False
+    _beat_participant(session, job_id=job_id, worker_id=worker_id, now=now)
     return True, bool(result[0][0])
+
+
+def _beat_participant(session: Session, *, job_id: str, worker_id: str, now: datetime) -> bool:
+    result = session.execute(
+        sa.update(JobWorker)
+        .where(JobWorker.job_id == job_id, JobWorker.worker_id == worker_id)
+        .values(heartbeat_at=now)
+        .execution_options(synchronize_session=False)
+    )
+    return result.rowcount == 1  # type: ignore[attr-defined]
+
+
+def heartbeat_joiner(session: Session, *, job_id: str, worker_id: str) -> tuple[bool, bool]:
+    """Refresh a joiner's row. Returns (still taking part, cancel requested).
+
+    A joiner carries on while its lead is replaced (the job is briefly queued), and stops
+    once the job is finished or its own row was swept as stale.
+    """
+    if not _beat_participant(session, job_id=job_id, worker_id=worker_id, now=utcnow()):
+        return False, False
+    row = session.execute(sa.select(Job.status, Job.cancel_requested)
+                          .where(Job.id == job_id)).first()
+    if row is None or row[0] not in (QUEUED, RUNNING):
+        return False, bool(row and row[1])
+    return True, bool(row[1])
 
 
 def release(session: Session, *, job_id: str, worker_id: str) -> bool:
@@ -69,6 +170,7 @@ def release(session: Session, *, job_id: str, worker_id: str) -> bool:
         .values(status=QUEUED, worker_id=None, heartbeat_at=None)
         .execution_options(synchronize_session=False)
     )
+    leave(session, job_id=job_id, worker_id=worker_id)
     return result.rowcount == 1  # type: ignore[attr-defined]
 
 
@@ -88,12 +190,21 @@ def finish(
         .values(status=status.value, error=error, model_id=model_id, finished_at=utcnow())
         .execution_options(synchronize_session=False)
     )
+    if result.rowcount == 1:  # type: ignore[attr-defined]
+        # Joiners still beating see the job finished and stop; their rows go now.
+        session.execute(sa.delete(JobWorker).where(JobWorker.job_id == job_id))
     return result.rowcount == 1  # type: ignore[attr-defined]
 
 
 def requeue_stale(session: Session, *, stale_after_seconds: float) -> list[str]:
-    """Return jobs whose worker stopped heart-beating to the queue; they resume there."""
+    """Return jobs whose lead stopped heart-beating to the queue; they resume there.
+
+    Participants (leads and joiners) whose own heartbeat is stale lose their rows, so
+    they no longer count against ``max_workers``.
+    """
     cutoff = utcnow() - timedelta(seconds=stale_after_seconds)
+    session.execute(sa.delete(JobWorker).where(JobWorker.heartbeat_at < cutoff)
+                    .execution_options(synchronize_session=False))
     rows = session.execute(
         sa.update(Job)
         .where(Job.status == RUNNING, Job.heartbeat_at < cutoff)

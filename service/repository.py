@@ -120,6 +120,8 @@ def upsert_trial(session: Session, *, job_id: str, record: dict[str, Any]) -> No
         "duration_seconds": record["duration_seconds"],
         "train_seconds": record.get("train_seconds"),
     }
+    if record.get("worker_id") is not None:
+        values["worker_id"] = record["worker_id"]
     if existing is None:
         session.add(Trial(job_id=job_id, number=record["number"], **values))
     else:

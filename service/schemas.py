@@ -66,6 +66,8 @@ class JobCreate(Strict):
     search_space: dict[str, Any] | None = None
     seed: int = Field(default=0, ge=0, le=2**31 - 1)
     priority: int = Field(default=0, ge=-1000, le=1000)
+    # Worker processes that may run trials of this job at once (one study, one budget).
+    max_workers: int = Field(default=1, ge=1, le=256)
 
 
 class ColumnOut(BaseModel):
@@ -125,6 +127,7 @@ class JobOut(BaseModel):
     warnings: list[str]
     cancel_requested: bool
     attempts: int
+    max_workers: int = 1
     created_at: datetime
     started_at: datetime | None
     finished_at: datetime | None

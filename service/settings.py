@@ -27,6 +27,9 @@ class Settings(BaseSettings):
     log_format: str = Field(default="text", pattern="^(text|json)$")
     # Browser origins allowed to call the API (comma-separated); empty keeps CORS closed.
     cors_origins: str = ""
+    # Where datasets and model files live: a local folder (default: the home) or any fsspec
+    # URL every process can reach (a shared mount, ``s3://bucket/prefix`` with s3fs, ...).
+    artifacts: str | None = None
     # Set by ``serve`` for the workers it starts, so they stop when it is gone.
     parent_pid: int | None = None
 
@@ -47,6 +50,10 @@ class Settings(BaseSettings):
         if self.database_url:
             return self.database_url
         return f"sqlite:///{(self.home / 'grovekeeper.db').resolve()}"
+
+    @property
+    def artifacts_url(self) -> str:
+        return self.artifacts or str(self.home.resolve())
 
     @property
     def datasets_dir(self) -> Path:

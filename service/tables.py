@@ -67,13 +67,40 @@ class Job(Base):
     cancel_requested: Mapped[bool] = mapped_column(default=False)
     error: Mapped[str | None] = mapped_column(sa.Text)
     model_id: Mapped[str | None] = mapped_column(sa.String(40))
+    # The lead worker: it created or resumed the study and finishes the job (refit, status).
     worker_id: Mapped[str | None] = mapped_column(sa.String(120))
+    # Worker processes allowed on this job at once (lead included); see queue.join_next.
+    max_workers: Mapped[int] = mapped_column(default=1, server_default="1")
+    # Set by the lead once the study is open and its enqueued trial 0 has been taken, so
+    # that joiners never race for a WAITING trial (unsafe on SQLite, LIBRARIES.md §2).
+    joinable: Mapped[bool] = mapped_column(default=False, server_default=sa.false())
     attempts: Mapped[int] = mapped_column(default=0)
     warnings: Mapped[list[Any]] = mapped_column(default=list)
     created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
     started_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
     heartbeat_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
     finished_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
+
+
+class JobWorker(Base):
+    """One worker process taking part in a running job: the lead and any joiners."""
+
+    __tablename__ = "gk_job_workers"
+
+    job_id: Mapped[str] = mapped_column(sa.ForeignKey("gk_jobs.id"), primary_key=True)
+    worker_id: Mapped[str] = mapped_column(sa.String(120), primary_key=True)
+    joined_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+    heartbeat_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+
+
+class SchemaVersion(Base):
+    """One row: the schema revision this database was last migrated to (service/db.py)."""
+
+    __tablename__ = "gk_schema"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    version: Mapped[int]
+    migrated_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
 
 
 class Trial(Base):
@@ -91,6 +118,8 @@ class Trial(Base):
     boosting_rounds: Mapped[int | None]
     duration_seconds: Mapped[float | None]
     train_seconds: Mapped[float | None]
+    # The worker that recorded the trial (None for trials re-synced after a crash).
+    worker_id: Mapped[str | None] = mapped_column(sa.String(120))
     finished_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
 
 

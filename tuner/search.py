@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
 from typing import Any
@@ -97,12 +98,25 @@ def record_from_frozen(ft: FrozenTrial) -> TrialRecord:
     )
 
 
-def _storage(storage_url: str) -> optuna.storages.RDBStorage:
+def _storage(storage_url: str, heartbeat_seconds: int | None = None,
+             grace_seconds: int | None = None) -> optuna.storages.RDBStorage:
     engine_kwargs: dict[str, Any] = {}
     if storage_url.startswith("sqlite"):
         # Waiting for a lock beats failing: SQLite's default 5 s is short on a busy disk.
         engine_kwargs = {"connect_args": {"timeout": 60}}
-    return optuna.storages.RDBStorage(storage_url, engine_kwargs=engine_kwargs)
+    if heartbeat_seconds is None:
+        return optuna.storages.RDBStorage(storage_url, engine_kwargs=engine_kwargs)
+    # Optuna's trial heartbeat (experimental, works with optimize()): a trial whose process
+    # stopped beating for grace_seconds is failed by the next trial any worker starts.
+    # No heartbeat_stale_trial_callback: a retry enqueues a WAITING copy, which SQLite
+    # cannot hand out safely to several workers (LIBRARIES.md §2), and a configuration
+    # that got its worker killed (out of memory) would kill the next one. Only finished
+    # trials count against the budget, so a failed one is simply replaced by a new draw.
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", optuna.exceptions.ExperimentalWarning)
+        return optuna.storages.RDBStorage(
+            storage_url, engine_kwargs=engine_kwargs, heartbeat_interval=heartbeat_seconds,
+            grace_period=grace_seconds)
 
 
 def init_storage(storage_url: str) -> None:
@@ -132,6 +146,9 @@ def open_study(
     n_startup_trials: int = 8,
     n_warmup_steps: int = 0,
     initial_params: dict[str, Any] | None = None,
+    heartbeat_seconds: int | None = None,
+    grace_seconds: int | None = None,
+    seed_salt: int = 0,
 ) -> optuna.Study:
     """Open a study with the tuner's sampler and pruner.
 
@@ -147,6 +164,10 @@ def open_study(
         n_startup_trials: Random trials before TPE starts modelling.
         n_warmup_steps: Folds reported before pruning is allowed, minus one.
         initial_params: Trial 0's parameters; defaults to :data:`LIGHTGBM_DEFAULTS`.
+        heartbeat_seconds: Optuna trial heartbeat interval (``None``: no heartbeat).
+        grace_seconds: Seconds without a heartbeat after which a running trial is failed.
+        seed_salt: Mixed into the sampler seed, so that several processes sampling one
+            study at once do not draw the same configurations (0 for a single process).
 
     Returns:
         The study.
@@ -154,10 +175,11 @@ def open_study(
     Raises:
         KeyError: ``create`` is false and the study does not exist.
     """
-    storage = _storage(storage_url)
+    storage = _storage(storage_url, heartbeat_seconds, grace_seconds)
     existing = _count_trials(storage, study_name)
-    sampler_seed = seed if existing == 0 else int(
-        np.random.SeedSequence([seed, existing]).generate_state(1)[0]
+    entropy = [seed, existing] + ([seed_salt] if seed_salt else [])
+    sampler_seed = seed if existing == 0 and not seed_salt else int(
+        np.random.SeedSequence(entropy).generate_state(1)[0]
     )
     sampler = optuna.samplers.TPESampler(seed=sampler_seed, n_startup_trials=n_startup_trials)
     pruner = optuna.pruners.MedianPruner(n_startup_trials=5, n_warmup_steps=n_warmup_steps)
@@ -196,13 +218,26 @@ def run_search(
     study_name: str,
     on_trial: Callable[[TrialRecord], None] | None = None,
     should_stop: Callable[[], bool] | None = None,
+    heartbeat_seconds: int | None = None,
+    grace_seconds: int | None = None,
+    join: bool = False,
+    seed_salt: int = 0,
+    on_started: Callable[[], None] | None = None,
 ) -> SearchResult:
-    """Run (or resume) a search until its budget, timeout or a stop request.
+    """Run (or resume, or join) a search until its budget, timeout or a stop request.
 
     The study is created on first use, with trial 0 set to LightGBM's defaults. When it
     already holds trials (a resumed job), complete and pruned trials count against
-    ``n_trials``; trials left RUNNING by a crashed worker are marked failed, which assumes
-    one worker per study. Trials run one at a time.
+    ``n_trials``. Trials run one at a time in this process; other processes may run
+    trials of the same study at once (``join=True``), and the budget then holds for all
+    of them together: a process stops once ``n_trials`` trials of the study are finished,
+    so at most one trial per other process overshoots it.
+
+    Trials left RUNNING by a crashed process: without a heartbeat they are marked failed
+    at the start, which assumes this is the only process on the study. With
+    ``heartbeat_seconds`` Optuna's heartbeat fails them once they are ``grace_seconds``
+    stale, and live trials of other processes are left alone; :func:`close_search` fails
+    the rest once every process is done.
 
     Args:
         data: Prepared data.
@@ -214,6 +249,13 @@ def run_search(
             exceptions it raises end the search.
         should_stop: Polled before each fold and after each trial; ``True`` ends the
             search (the running trial is recorded as pruned).
+        heartbeat_seconds: Optuna trial heartbeat interval; ``None`` for none.
+        grace_seconds: Heartbeat age after which a running trial counts as dead.
+        join: Load an existing study (never create it, never enqueue trial 0) and run
+            trials beside the process that created it.
+        seed_salt: See :func:`open_study`; give each process on one study its own.
+        on_started: Called once, when this process starts its first trial (by then an
+            enqueued trial 0 has been taken, so other processes may join safely).
 
     Returns:
         Counts for the whole study and the best complete trial (``None`` if none).
@@ -224,14 +266,15 @@ def run_search(
     _check_config(data, config)
     metric = get_metric(config.metric, data.task)
     study = open_study(
-        storage_url, study_name, direction=metric.direction, seed=config.seed, create=True,
-        n_startup_trials=config.n_startup_trials,
+        storage_url, study_name, direction=metric.direction, seed=config.seed,
+        create=not join, n_startup_trials=config.n_startup_trials,
         n_warmup_steps=max(0, config.pruner_warmup_folds - 1),
         initial_params=initial_params(config.space, n_train_rows=plan.min_fit_rows),
+        heartbeat_seconds=heartbeat_seconds, grace_seconds=grace_seconds, seed_salt=seed_salt,
     )
-    for ft in study.get_trials(deepcopy=False, states=(TrialState.RUNNING,)):
-        study.tell(ft.number, state=TrialState.FAIL)
-    objective = CVObjective(
+    if heartbeat_seconds is None and not join:
+        _fail_running(study)
+    cv_objective = CVObjective(
         data, plan, metric,
         params_base=base_params(data.task, num_class=len(data.classes or ()),
                                 metric=metric.name, seed=config.seed,
@@ -239,6 +282,15 @@ def run_search(
         space=config.space, max_rounds=config.max_rounds,
         early_stopping_rounds=config.early_stopping_rounds, should_stop=should_stop,
     )
+    started = False
+
+    def objective(trial: optuna.Trial) -> float:
+        nonlocal started
+        if not started and on_started is not None:
+            on_started()
+        started = True
+        return cv_objective(trial)
+
     done = len(study.get_trials(deepcopy=False, states=_BUDGET_STATES))
     failure_cap = max(_MIN_FAILURE_CAP, config.n_trials or 0)
     failures = 0
@@ -271,6 +323,30 @@ def run_search(
     return _result(study, metric.direction)
 
 
+def _fail_running(study: optuna.Study) -> None:
+    for ft in study.get_trials(deepcopy=False, states=(TrialState.RUNNING,)):
+        try:
+            study.tell(ft.number, state=TrialState.FAIL)
+        except optuna.exceptions.UpdateFinishedTrialError:
+            pass  # it finished meanwhile: nothing to fail
+
+
+def close_search(storage_url: str, study_name: str, *, direction: str) -> SearchResult:
+    """Fail trials still RUNNING and return the study's final counts and best trial.
+
+    Call it once no process is running trials of the study any more (the service's lead
+    worker does, after its joiners left): whatever is still RUNNING belongs to a process
+    that died before its heartbeat went stale.
+    """
+    storage = _storage(storage_url)
+    try:
+        study = optuna.load_study(study_name=study_name, storage=storage)
+        _fail_running(study)
+        return _result(study, direction)
+    finally:
+        storage.engine.dispose()  # one-shot: leave no pooled connection behind
+
+
 def _result(study: optuna.Study, direction: str) -> SearchResult:
     trials = study.get_trials(deepcopy=False)
     complete = [t for t in trials if t.state == TrialState.COMPLETE and t.value is not None]
@@ -295,7 +371,9 @@ def load_trial_records(storage_url: str, study_name: str) -> list[TrialRecord]:
     storage = _storage(storage_url)
     try:
         study = optuna.load_study(study_name=study_name, storage=storage)
+        return [record_from_frozen(t) for t in study.get_trials(deepcopy=False)
+                if t.state != TrialState.WAITING]
     except KeyError:
         return []
-    return [record_from_frozen(t) for t in study.get_trials(deepcopy=False)
-            if t.state != TrialState.WAITING]
+    finally:
+        storage.engine.dispose()  # one-shot: leave no pooled connection behind

@@ -16,7 +16,7 @@ from service.api.routes import report as report_routes
 from service.auth import KeyChecker
 from service.db import init_db
 from service.settings import Settings
-from service.storage import LocalStore
+from service.storage import ArtifactStore
 
 
 def create_app(settings: Settings, *, init: bool = True) -> FastAPI:
@@ -36,7 +36,7 @@ def create_app(settings: Settings, *, init: bool = True) -> FastAPI:
         lifespan=lifespan,
     )
     app.state.settings = settings
-    app.state.store = LocalStore(settings.home, settings.tmp_dir)
+    app.state.store = ArtifactStore(settings.artifacts_url, settings.tmp_dir)
     app.state.predictors = PredictorCache(app.state.store)
     app.state.keys = KeyChecker(settings.db_url)
     problems.install(app)

@@ -92,3 +92,101 @@ def test_four_processes_claim_each_job_exactly_once(db_url: str) -> None:
         owners = dict(session.execute(sa.select(Job.id, Job.worker_id)).all())
     for worker, got in results:
         assert all(owners[j] == worker for j in got)
+
+
+def test_joiners_respect_max_workers_and_joinable(db_url: str) -> None:
+    init_db(db_url)
+    _add_jobs(db_url, 2)
+    with session_scope(db_url) as session:
+        session.get(Job, "job_0000").max_workers = 3
+    with session_scope(db_url) as session:
+        assert queue.claim_next(session, worker_id="lead") == "job_0000"
+        assert queue.claim_next(session, worker_id="other") == "job_0001"  # max_workers 1
+    with session_scope(db_url) as session:
+        # Not joinable until the lead has taken the enqueued trial 0.
+        assert queue.join_next(session, worker_id="w2") is None
+        queue.set_joinable(session, job_id="job_0000", worker_id="lead")
+    with session_scope(db_url) as session:
+        assert queue.join_next(session, worker_id="w2") == "job_0000"
+        assert queue.join_next(session, worker_id="w2") is None  # already in
+        assert queue.join_next(session, worker_id="w3") == "job_0000"
+        assert queue.join_next(session, worker_id="w4") is None  # 3 of 3
+        assert queue.participants(session, job_id="job_0000") == ["lead", "w2", "w3"]
+    with session_scope(db_url) as session:
+        assert queue.heartbeat_joiner(session, job_id="job_0000", worker_id="w2") == (True,
+                                                                                       False)
+        assert queue.heartbeat_joiner(session, job_id="job_0000", worker_id="w4") == (False,
+                                                                                       False)
+        queue.leave(session, job_id="job_0000", worker_id="w3")
+    with session_scope(db_url) as session:
+        assert queue.join_next(session, worker_id="w4") == "job_0000"
+
+
+def test_stale_lead_requeues_while_joiners_carry_on(db_url: str) -> None:
+    from service.tables import JobWorker
+
+    init_db(db_url)
+    _add_jobs(db_url, 1)
+    with session_scope(db_url) as session:
+        session.get(Job, "job_0000").max_workers = 2
+    with session_scope(db_url) as session:
+        queue.claim_next(session, worker_id="lead")
+        queue.set_joinable(session, job_id="job_0000", worker_id="lead")
+    with session_scope(db_url) as session:
+        queue.join_next(session, worker_id="joiner")
+    old = utcnow() - timedelta(seconds=120)
+    with session_scope(db_url) as session:
+        session.get(Job, "job_0000").heartbeat_at = old
+        session.get(JobWorker, ("job_0000", "lead")).heartbeat_at = old
+    with session_scope(db_url) as session:
+        assert queue.requeue_stale(session, stale_after_seconds=60) == ["job_0000"]
+    with session_scope(db_url) as session:
+        assert queue.participants(session, job_id="job_0000") == ["joiner"]
+        # The joiner keeps going while the job waits for a new lead ...
+        assert queue.heartbeat_joiner(session, job_id="job_0000", worker_id="joiner") == (
+            True, False)
+        # ... the old lead has lost it ...
+        assert queue.heartbeat(session, job_id="job_0000", worker_id="lead") == (False, False)
+        assert queue.claim_next(session, worker_id="lead2") == "job_0000"
+    with session_scope(db_url) as session:
+        assert queue.finish(session, job_id="job_0000", worker_id="lead2",
+                            status=JobStatus.SUCCEEDED)
+    with session_scope(db_url) as session:
+        # ... and stops once the job is finished.
+        assert queue.participants(session, job_id="job_0000") == []
+        assert queue.heartbeat_joiner(session, job_id="job_0000", worker_id="joiner")[0] is False
+
+
+def _join_all(url: str, worker: str, out: mp.Queue) -> None:
+    dispose_engines(close=False)
+    with session_scope(url) as session:
+        out.put((worker, queue.join_next(session, worker_id=worker)))
+
+
+def test_concurrent_joiners_never_exceed_max_workers(db_url: str) -> None:
+    init_db(db_url)
+    _add_jobs(db_url, 1)
+    with session_scope(db_url) as session:
+        session.get(Job, "job_0000").max_workers = 3
+    with session_scope(db_url) as session:
+        queue.claim_next(session, worker_id="lead")
+        queue.set_joinable(session, job_id="job_0000", worker_id="lead")
+    dispose_engines()
+    ctx = mp.get_context("fork")
+    out: mp.Queue = ctx.Queue()
+    procs = [ctx.Process(target=_join_all, args=(db_url, f"w{i}", out)) for i in range(6)]
+    for p in procs:
+        p.start()
+    results = [out.get(timeout=60) for _ in procs]
+    for p in procs:
+        p.join(timeout=30)
+    joined = sorted(w for w, job in results if job == "job_0000")
+    with session_scope(db_url) as session:
+        members = queue.participants(session, job_id="job_0000")
+    # A joiner that finds the row locked (SKIP LOCKED) tries again at its next poll, so
+    # fewer may get in at once, never more.
+    assert 1 <= len(joined) <= 2 and sorted(members) == sorted(["lead", *joined])
+    with session_scope(db_url) as session:
+        for i in range(6, 9):
+            queue.join_next(session, worker_id=f"w{i}")
+        assert len(queue.participants(session, job_id="job_0000")) == 3

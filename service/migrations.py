@@ -1,0 +1,88 @@
+"""Schema creation and upgrades for the service's own tables, without Alembic.
+
+The story, kept deliberately small:
+
+1. ``create_all`` creates every missing table (a fresh database gets the whole schema).
+2. Additive changes need no hand-written step: every column the models declare but the
+   database lacks is added with ``ALTER TABLE … ADD COLUMN`` and its default, so an older
+   database keeps its rows and gains the new columns. This covers new tables, new
+   nullable columns and new columns with a scalar default.
+3. Anything else (a rename, a type change, a dropped column, a data rewrite) is a step in
+   ``STEPS``, keyed by the revision it produces and run once, in order, inside one
+   transaction; ``gk_schema`` records the revision reached. There are none yet.
+
+Optuna's own tables are managed by Optuna (its ``RDBStorage`` runs its Alembic revisions).
+Every step must be safe to run by several processes at once; ``init_db`` retries on the
+start-up race (LIBRARIES.md §2).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import sqlalchemy as sa
+from sqlalchemy.engine import Connection, Engine
+
+from service.tables import Base, SchemaVersion, utcnow
+
+# Revision 1: the foundation. Revision 2: gk_job_workers, gk_jobs.max_workers/joinable.
+SCHEMA_VERSION = 2
+STEPS: dict[int, Callable[[Connection], None]] = {}
+
+
+def _default_sql(column: sa.Column, conn: Connection) -> str | None:
+    if column.server_default is not None:
+        arg = column.server_default.arg  # type: ignore[attr-defined]
+        if isinstance(arg, str):
+            return arg
+        return str(arg.compile(dialect=conn.dialect))
+    default = column.default
+    if default is not None and getattr(default, "is_scalar", False):
+        literal = sa.literal(default.arg, type_=column.type)  # type: ignore[attr-defined]
+        return str(literal.compile(dialect=conn.dialect, compile_kwargs={"literal_binds": True}))
+    return None
+
+
+def add_missing_columns(conn: Connection) -> list[str]:
+    """ALTER TABLE … ADD COLUMN for each declared column the database lacks."""
+    inspector = sa.inspect(conn)
+    added = []
+    for table in Base.metadata.sorted_tables:
+        if not inspector.has_table(table.name):
+            continue
+        present = {c["name"] for c in inspector.get_columns(table.name)}
+        for column in table.columns:
+            if column.name in present:
+                continue
+            kind = column.type.compile(dialect=conn.dialect)
+            default = _default_sql(column, conn)
+            clause = f" DEFAULT {default}" if default is not None else ""
+            # NOT NULL only with a default, so existing rows get a value.
+            clause += " NOT NULL" if (not column.nullable and default is not None) else ""
+            conn.execute(sa.text(f'ALTER TABLE {table.name} ADD COLUMN "{column.name}" '
+                                 f"{kind}{clause}"))
+            added.append(f"{table.name}.{column.name}")
+    return added
+
+
+def migrate(engine: Engine) -> int:
+    """Bring the service schema to :data:`SCHEMA_VERSION`; returns the revision found."""
+    Base.metadata.create_all(engine)
+    with engine.begin() as conn:
+        add_missing_columns(conn)
+        row = conn.execute(sa.select(SchemaVersion.version).where(SchemaVersion.id == 1)).first()
+        found = row[0] if row else (1 if _has_jobs(conn) else SCHEMA_VERSION)
+        for version in sorted(v for v in STEPS if v > found):
+            STEPS[version](conn)
+        if row is None:
+            conn.execute(sa.insert(SchemaVersion).values(id=1, version=SCHEMA_VERSION,
+                                                         migrated_at=utcnow()))
+        elif found < SCHEMA_VERSION:
+            conn.execute(sa.update(SchemaVersion).where(SchemaVersion.id == 1)
+                         .values(version=SCHEMA_VERSION, migrated_at=utcnow()))
+    return found
+
+
+def _has_jobs(conn: Connection) -> bool:
+    # A database without gk_schema but with rows predates revision 2.
+    return conn.execute(sa.text("SELECT 1 FROM gk_jobs LIMIT 1")).first() is not None

@@ -1,0 +1,164 @@
+"""Crashes, shared jobs and cancellation with real worker processes, on SQLite and on the
+real PostgreSQL (db_url runs each test on both)."""
+
+from __future__ import annotations
+
+import signal
+import time
+from pathlib import Path
+
+import pytest
+
+import tuner
+from service import repository
+from service.db import session_scope
+from tests.service.jobkit import (
+    add_dataset,
+    add_job,
+    finished,
+    job_row,
+    participants,
+    trials,
+    wait_until,
+    workers,
+)
+
+pytestmark = pytest.mark.e2e
+
+
+def _optuna_trials(url: str, job_id: str) -> dict[int, tuner.TrialRecord]:
+    return {r.number: r for r in tuner.load_trial_records(url, f"grovekeeper-{job_id}")}
+
+
+def test_kill9_then_a_fresh_worker_completes_the_full_budget(db_url: str,
+                                                             tmp_path: Path) -> None:
+    home = tmp_path / "home"
+    job_id = add_job(db_url, home, add_dataset(db_url, home), budget={"trials": 8})
+    with workers(home, db_url) as pool:
+        (first,) = pool.start(1)
+        wait_until(lambda: len(finished(db_url, job_id)) >= 3, 120, "3 finished trials",
+                   pool.logs)
+        first.send_signal(signal.SIGKILL)
+        first.wait()
+        before = {r.number: r for r in _optuna_trials(db_url, job_id).values()
+                  if r.state in ("complete", "pruned")}
+        assert len(before) >= 3 and job_row(db_url, job_id).status == "running"
+
+        pool.start(1)
+        job = wait_until(lambda: (j := job_row(db_url, job_id)).status == "succeeded" and j,
+                         180, "the job to succeed after the crash", pool.logs)
+    assert job.attempts == 2  # the job went back to the queue once and was claimed again
+    after = _optuna_trials(db_url, job_id)
+    done = [r for r in after.values() if r.state in ("complete", "pruned")]
+    assert len(done) == 8  # one worker at the end: exactly the budget of finished trials
+    assert "running" not in {r.state for r in after.values()}  # the killed trial was failed
+    for number, record in before.items():
+        assert after[number].params == record.params and after[number].score == record.score
+    ours = trials(db_url, job_id)
+    numbers = [t.number for t in ours]
+    assert len(numbers) == len(set(numbers))
+    assert {t.number: t.state for t in ours} == {r.number: r.state for r in after.values()}
+    assert job.model_id is not None and participants(db_url, job_id) == []
+
+
+def test_two_workers_share_one_job_within_the_budget_bound(db_url: str,
+                                                           tmp_path: Path) -> None:
+    home = tmp_path / "home"
+    budget = 10
+    job_id = add_job(db_url, home, add_dataset(db_url, home), budget={"trials": budget},
+                     max_workers=2)
+    with workers(home, db_url) as pool:
+        pool.start(2)
+        job = wait_until(lambda: (j := job_row(db_url, job_id)).status == "succeeded" and j,
+                         240, "the shared job to succeed", pool.logs)
+    done = finished(db_url, job_id)
+    # Each of the other (workers - 1) workers may have one trial in flight when the
+    # budget is reached: budget <= finished <= budget + 1 (README, several workers).
+    assert budget <= len(done) <= budget + 1
+    contributors = {t.worker_id for t in done}
+    assert len(contributors) == 2, contributors
+    numbers = [t.number for t in trials(db_url, job_id)]
+    assert sorted(numbers) == list(range(len(numbers)))  # unique, none skipped
+    assert job.attempts == 1 and job.model_id is not None
+    assert participants(db_url, job_id) == []
+
+
+def test_two_workers_many_jobs_each_claimed_once(db_url: str, tmp_path: Path) -> None:
+    home = tmp_path / "home"
+    dataset_id = add_dataset(db_url, home, n_rows=200)
+    ids = [add_job(db_url, home, dataset_id, budget={"trials": 2}) for _ in range(5)]
+    with workers(home, db_url) as pool:
+        pool.start(2)
+        wait_until(lambda: all(job_row(db_url, j).status == "succeeded" for j in ids), 240,
+                   "every job to succeed", pool.logs)
+    for job_id in ids:
+        job = job_row(db_url, job_id)
+        assert job.attempts == 1  # claimed exactly once
+        assert {t.worker_id for t in trials(db_url, job_id)} == {job.worker_id}
+
+
+def test_cancel_reaches_cancelled_within_one_trial(db_url: str, tmp_path: Path) -> None:
+    home = tmp_path / "home"
+    job_id = add_job(db_url, home, add_dataset(db_url, home), budget={"trials": 500})
+    # The cancel flag travels with the heartbeat; beat often, as trials here are short.
+    with workers(home, db_url, GROVEKEEPER_HEARTBEAT_SECONDS="0.2") as pool:
+        pool.start(1)
+        wait_until(lambda: len(finished(db_url, job_id)) >= 2, 120, "2 finished trials",
+                   pool.logs)
+        at_cancel = len(finished(db_url, job_id))
+        with session_scope(db_url) as session:
+            repository.request_cancel(session, job_id)
+        asked = time.monotonic()
+        job = wait_until(lambda: (j := job_row(db_url, job_id)).status == "cancelled" and j,
+                         60, "the job to be cancelled", pool.logs)
+        took = time.monotonic() - asked
+        slowest = max(t.duration_seconds or 0 for t in finished(db_url, job_id))
+    # The flag arrives with the next heartbeat (0.2 s); the trial running then is pruned
+    # at its next fold. Trials here can be as short as 0.2 s (pruned ones), so a few may
+    # finish before the flag arrives, but nothing like the 500 of the budget.
+    assert len(finished(db_url, job_id)) <= at_cancel + 4
+    # One trial's time plus a heartbeat, with slack for a shared machine; 500 trials would
+    # take minutes.
+    assert took < slowest + 0.2 + 10, (took, slowest)
+    assert job.model_id is None  # cancelled jobs are not refit (README)
+    assert participants(db_url, job_id) == []
+
+
+def test_sigterm_hands_the_job_back_and_a_new_worker_resumes(db_url: str,
+                                                             tmp_path: Path) -> None:
+    home = tmp_path / "home"
+    job_id = add_job(db_url, home, add_dataset(db_url, home), budget={"trials": 6})
+    with workers(home, db_url) as pool:
+        (first,) = pool.start(1)
+        wait_until(lambda: len(finished(db_url, job_id)) >= 2, 120, "2 finished trials",
+                   pool.logs)
+        first.send_signal(signal.SIGTERM)
+        assert first.wait(timeout=60) == 0
+        job = job_row(db_url, job_id)
+        assert job.status == "queued" and job.worker_id is None  # released at once
+        assert participants(db_url, job_id) == []
+        kept = {t.number: (t.params, t.score) for t in finished(db_url, job_id)}
+        pool.start(1)
+        wait_until(lambda: job_row(db_url, job_id).status == "succeeded", 180,
+                   "the resumed job to succeed", pool.logs)
+    after = {t.number: (t.params, t.score) for t in finished(db_url, job_id)}
+    assert all(after[n] == v for n, v in kept.items())
+    # The interrupted trial was pruned (it counts as finished), so the budget holds.
+    assert len(after) == 6
+
+
+def test_wall_clock_limit_ends_the_search_and_refits(db_url: str, tmp_path: Path) -> None:
+    from service.schemas import as_utc
+
+    home = tmp_path / "home"
+    job_id = add_job(db_url, home, add_dataset(db_url, home), budget={"seconds": 4})
+    with workers(home, db_url) as pool:
+        pool.start(1)
+        job = wait_until(lambda: (j := job_row(db_url, job_id)).status == "succeeded" and j,
+                         120, "the time-limited job to succeed", pool.logs)
+    done = finished(db_url, job_id)
+    last = max(as_utc(t.finished_at) for t in done)
+    slowest = max(t.duration_seconds or 0 for t in done)
+    # Optuna checks the timeout between trials: the last trial may start just before it.
+    assert (last - as_utc(job.started_at)).total_seconds() < 4 + slowest + 5
+    assert len(done) >= 1 and job.model_id is not None
