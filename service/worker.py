@@ -121,10 +121,15 @@ class Worker:
             dataset = repository.get_dataset(session, job.dataset_id)
             request, study_name = job.spec["request"], job.study_name
             file_key, file_sha = dataset.file_key, dataset.file_sha256
+            dataset_sha = dataset.sha256
             started_at = job.started_at
         frame = pd.read_parquet(self.store.local_path(file_key, file_sha))
-        run = build_run(request, frame)
-        config = run.config
+        run = build_run(request, frame, dataset_sha256=dataset_sha)
+        # Parallel trials share this worker's cores: never more trials than cores, one
+        # LightGBM thread each (tuner divides num_threads among the trials).
+        parallel = max(1, min(run.config.max_parallel_trials, os.cpu_count() or 1))
+        config = dataclasses.replace(run.config, max_parallel_trials=parallel,
+                                     num_threads=parallel)
         if config.timeout is not None and started_at is not None:
             # A resumed job gets what is left of its wall-clock budget, not a fresh one.
             used = (utcnow() - as_utc(started_at)).total_seconds()
@@ -150,9 +155,11 @@ class Worker:
             return JobStatus.CANCELLED, None, None
         if self.shutdown.is_set():
             return None, None, None
-        if result.best is None:
+        if result.chosen is None:
             return JobStatus.FAILED, "no trial completed; see the failed trials", None
-        model_id = self._fit_and_store(job_id, run, result.best)
+        run = dataclasses.replace(run, effective={**run.effective,
+                                                  "selection_report": result.selection})
+        model_id = self._fit_and_store(job_id, run, result.chosen)
         return JobStatus.SUCCEEDED, None, model_id
 
     def _fit_and_store(self, job_id: str, run: RunPlan, best: tuner.TrialRecord) -> str:
@@ -179,7 +186,9 @@ class Worker:
                     classes=fitted.classes,
                     target=run.data.target,
                     feature_importance=fitted.feature_importance,
-                    details={"manifest": run.effective},
+                    details={"manifest": run.effective,
+                             "selection": run.effective.get("selection_report"),
+                             "final_refit": fitted.refit},
                     sha256=sha,
                     file_key=key,
                     size_bytes=path.stat().st_size,
