@@ -126,7 +126,8 @@ class CVObjective:
                 seconds += spent
                 trained += rounds
                 trial.report(float(np.mean(scores)), step=k)
-                if trial.should_prune():
+                # After the last fold nothing is left to save: keep the finished trial.
+                if k < len(self.plan.folds) - 1 and trial.should_prune():
                     raise optuna.TrialPruned(f"pruned after fold {k}")
         finally:
             # Written once per trial, whatever its outcome: each attribute is a DB write.
