@@ -38,8 +38,9 @@ class CVObjective:
     Folds run one after another. After each fold the running mean is reported to the trial
     so the pruner can stop unpromising configurations early. Trial user attributes:
     ``params`` (every LightGBM parameter sampled or fixed), ``fold_scores``,
-    ``best_iterations``, ``train_seconds``, ``rounds_trained`` and, for completed trials, ``score_std`` and
-    ``boosting_rounds`` (see :func:`refit_rounds`).
+    ``best_iterations``, ``train_seconds``, ``rounds_trained`` (rounds boosted, patience
+    included) and, for completed trials, ``score_std`` and ``boosting_rounds`` (see
+    :func:`refit_rounds`).
     """
 
     def __init__(
