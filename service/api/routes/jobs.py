@@ -5,6 +5,7 @@ from __future__ import annotations
 from typing import Annotated, Literal
 
 import pandas as pd
+from sqlalchemy.orm import Session
 from fastapi import APIRouter, Query, Request, Response
 from fastapi.concurrency import run_in_threadpool
 
@@ -67,7 +68,7 @@ def to_out(job: Job) -> JobOut:
     )
 
 
-def _warm_start(session: object, job_id: str) -> tuple[dict, str]:
+def _warm_start(session: Session, job_id: str) -> tuple[dict, str]:
     """The earlier job's best trials, to enqueue first; and that job's task."""
     def bad(message: str) -> Unprocessable:
         return Unprocessable(message, errors=[{"field": "warm_start_job_id",
