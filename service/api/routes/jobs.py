@@ -5,9 +5,9 @@ from __future__ import annotations
 from typing import Annotated, Literal
 
 import pandas as pd
-from sqlalchemy.orm import Session
 from fastapi import APIRouter, Query, Request, Response
 from fastapi.concurrency import run_in_threadpool
+from sqlalchemy.orm import Session
 
 from service import repository
 from service.api.deps import SessionDep, SettingsDep, StoreDep
