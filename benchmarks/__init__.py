@@ -1,0 +1,1 @@
+"""Speed and quality measurements, as ratios against baselines measured in the same run."""

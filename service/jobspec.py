@@ -8,17 +8,25 @@ the same data, split and search configuration.
 from __future__ import annotations
 
 import dataclasses
+import platform
 from dataclasses import dataclass
 from typing import Any
 
+import lightgbm
+import numpy
+import optuna
 import pandas as pd
 
 import tuner
+from tuner.config import check_config
 from tuner.datachecks import job_warnings
+from tuner.losses import default_metric_for, resolve_objective
 from tuner.metrics import default_metric, get_metric
-from tuner.space import DEFAULT_SPACE, merge_overrides
+from tuner.space import DEFAULT_SPACE, effective_space, merge_overrides
 from tuner.validation import ValidationPlan, plan_validation
 
+#: How many of an earlier job's best trials a warm start enqueues.
+WARM_START_TRIALS = 3
 
 
 @dataclass(frozen=True)
@@ -33,8 +41,19 @@ def _prefixed(errors: list[dict[str, Any]], prefix: str) -> list[dict[str, Any]]
     return [{**e, "field": f"{prefix}{e['field']}"} for e in errors]
 
 
-def build_run(request: dict[str, Any], frame: pd.DataFrame) -> RunPlan:
+def versions() -> dict[str, str]:
+    """Library versions that decide what a search and its model come out as."""
+    return {"lightgbm": lightgbm.__version__, "optuna": optuna.__version__,
+            "numpy": numpy.__version__, "pandas": pd.__version__,
+            "python": platform.python_version()}
+
+
+def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
+              dataset_sha256: str | None = None) -> RunPlan:
     """Validate ``request`` (a ``JobCreate`` dump) against ``frame``; raise on bad input.
+
+    ``request["warm_start"]`` (``{"job_id", "trials", "params"}``), when present, was
+    resolved by the API from the earlier job's trials at submission.
 
     Raises the tuner's ValueError subclasses, each with ``.errors`` naming the field.
     """
@@ -49,7 +68,9 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame) -> RunPlan:
         group_column=cv.get("group_column"),
         time_column=cv.get("time_column"),
     )
-    metric_name = request.get("metric") or default_metric(data.task)
+    objective = request.get("objective")
+    metric_name = (request.get("metric") or default_metric_for(data.task, objective)
+                   or default_metric(data.task))
     metric = get_metric(metric_name, data.task)
     try:
         space = merge_overrides(DEFAULT_SPACE, request.get("search_space") or {})
@@ -67,6 +88,7 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame) -> RunPlan:
     # Leaks, target copies, duplicates across the hold-out, imbalance, size: job warnings.
     data = dataclasses.replace(data, warnings=(*data.warnings, *job_warnings(data, plan)))
     budget = request.get("budget") or {}
+    warm = request.get("warm_start") or {}
     config = tuner.SearchConfig(
         task=data.task,
         metric=metric.name,
@@ -74,21 +96,31 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame) -> RunPlan:
         timeout=budget.get("seconds"),
         seed=seed,
         space=space,
+        objective=objective,
+        pruner=request.get("pruner") or "median",
+        max_parallel_trials=int(request.get("max_parallel_trials") or 1),
+        selection=request.get("selection") or "best",
+        final_refit=request.get("final_refit") or "train",
+        warm_start=tuple(dict(p) for p in warm.get("params", [])),
     )
+    check_config(data, config)  # the checks run_search repeats, here so they are 422s
+    sampled = effective_space(space, n_train_rows=plan.min_fit_rows).to_dict()
+    cv_scheme = {
+        "folds": len(plan.folds),
+        "strategy": plan.strategy,
+        "group_column": cv.get("group_column"),
+        "time_column": cv.get("time_column"),
+    }
     effective = {
         "target": data.target,
         "task": data.task,
         "metric": metric.name,
         "direction": metric.direction,
+        "objective": resolve_objective(data.task, metric.name, objective),
         "features": list(data.schema.names),
         "weight_column": request.get("weight_column"),
         "budget": {"trials": config.n_trials, "seconds": config.timeout},
-        "cv": {
-            "folds": len(plan.folds),
-            "strategy": plan.strategy,
-            "group_column": cv.get("group_column"),
-            "time_column": cv.get("time_column"),
-        },
+        "cv": cv_scheme,
         "holdout_fraction": request.get("holdout_fraction", 0.2),
         "rows": {
             "used": int(len(data.y)),
@@ -96,7 +128,22 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame) -> RunPlan:
             "holdout": int(len(plan.holdout_idx)),
         },
         "seed": seed,
-        "search_space": space.to_dict(),
+        "search_space": sampled,
+        "pruner": config.pruner,
+        "max_parallel_trials": config.max_parallel_trials,
+        "selection": config.selection,
+        "final_refit": config.final_refit,
+        "warm_start": ({"job_id": warm.get("job_id"), "trials": warm.get("trials", []),
+                        "params": list(config.warm_start)} if warm else None),
         "classes": data.classes,
+        # What it takes to repeat this job: same bytes, space, seed, folds and libraries
+        # (LightGBM documents that results may differ across versions and systems).
+        "manifest": {
+            "dataset_sha256": dataset_sha256,
+            "search_space": sampled,
+            "seed": seed,
+            "cv": cv_scheme,
+            "versions": versions(),
+        },
     }
     return RunPlan(data=data, plan=plan, config=config, effective=effective)

@@ -68,6 +68,13 @@ class JobCreate(Strict):
     priority: int = Field(default=0, ge=-1000, le=1000)
     # Worker processes that may run trials of this job at once (one study, one budget).
     max_workers: int = Field(default=1, ge=1, le=256)
+    # Regression loss: regression (squared error), poisson, tweedie, huber, quantile.
+    objective: str | None = None
+    pruner: Literal["median", "halving", "none"] = "median"
+    max_parallel_trials: int = Field(default=1, ge=1, le=64)
+    selection: Literal["best", "one_se"] = "best"
+    final_refit: Literal["train", "all"] = "train"
+    warm_start_job_id: str | None = Field(default=None, min_length=1, max_length=64)
 
 
 class ColumnOut(BaseModel):

@@ -137,10 +137,15 @@ class Worker:
             dataset = repository.get_dataset(session, job.dataset_id)
             request, study_name = job.spec["request"], job.study_name
             file_key, file_sha = dataset.file_key, dataset.file_sha256
+            dataset_sha = dataset.sha256
             started_at, max_workers = job.started_at, job.max_workers
         frame = pd.read_parquet(self.store.local_path(file_key, file_sha))
-        run = build_run(request, frame)
-        config = run.config
+        run = build_run(request, frame, dataset_sha256=dataset_sha)
+        # Parallel trials share this worker's cores: never more trials than cores, one
+        # LightGBM thread each (tuner divides num_threads among the trials).
+        parallel = max(1, min(run.config.max_parallel_trials, os.cpu_count() or 1))
+        config = dataclasses.replace(run.config, max_parallel_trials=parallel,
+                                     num_threads=parallel)
         if config.timeout is not None and started_at is not None:
             # budget.seconds is the job's wall-clock limit from its first start: a resumed
             # job, or a worker joining late, gets what is left of it, not a fresh one.
@@ -184,11 +189,14 @@ class Worker:
             return JobStatus.CANCELLED, None, None
         if self.shutdown.is_set():
             return None, None, None
-        result = tuner.close_search(self.url, study_name, direction=run.effective["direction"])
+        result = tuner.close_search(self.url, study_name, direction=run.effective["direction"],
+                                     selection=config.selection)
         self._resync_trials(job_id, study_name)
-        if result.best is None:
+        if result.chosen is None:
             return JobStatus.FAILED, "no trial completed; see the failed trials", None
-        model_id = self._fit_and_store(job_id, run, result.best)
+        run = dataclasses.replace(run, effective={**run.effective,
+                                                  "selection_report": result.selection})
+        model_id = self._fit_and_store(job_id, run, result.chosen)
         return JobStatus.SUCCEEDED, None, model_id
 
     def _wait_for_joiners(self, job_id: str, should_stop: Any) -> None:
@@ -263,7 +271,9 @@ class Worker:
                     classes=fitted.classes,
                     target=run.data.target,
                     feature_importance=fitted.feature_importance,
-                    details={"manifest": run.effective, "evaluation": evaluation},
+                    details={"manifest": run.effective, "evaluation": evaluation,
+                             "selection": run.effective.get("selection_report"),
+                             "final_refit": fitted.refit},
                     sha256=sha,
                     file_key=key,
                     size_bytes=size,

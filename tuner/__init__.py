@@ -18,6 +18,7 @@ Typical flow (the service's worker does this)::
 from __future__ import annotations
 
 from tuner.artifacts import Predictor, load_booster, model_metadata, save_model
+from tuner.config import FINAL_REFITS, PRUNERS, check_config, make_pruner
 from tuner.data import (
     KINDS,
     MAX_CLASSES,
@@ -39,6 +40,7 @@ from tuner.errors import (
     SearchSpaceError,
     TunerError,
 )
+from tuner.losses import REGRESSION_OBJECTIVES
 from tuner.metrics import (
     METRICS,
     Metric,
@@ -60,6 +62,7 @@ from tuner.search import (
     record_from_frozen,
     run_search,
 )
+from tuner.selection import SELECTION_RULES, select
 from tuner.space import (
     DEFAULT_SPACE,
     LIGHTGBM_DEFAULTS,
@@ -69,6 +72,7 @@ from tuner.space import (
     ParamRange,
     SearchSpace,
     effective_space,
+    fit_into_space,
     initial_params,
     merge_overrides,
     suggest,
@@ -87,4 +91,6 @@ __all__ = [
     "model_metadata", "open_study", "plan_validation", "predict", "prepare", "profile_table",
     "read_table", "record_from_frozen", "refit_rounds", "run_search", "save_model",
     "score_all", "suggest",
+    "FINAL_REFITS", "PRUNERS", "REGRESSION_OBJECTIVES", "SELECTION_RULES", "check_config",
+    "fit_into_space", "make_pruner", "select",
 ]

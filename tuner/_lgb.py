@@ -9,9 +9,10 @@ import lightgbm as lgb
 import numpy as np
 import pandas as pd
 
+from tuner.losses import resolve_objective
+
 # LightGBM refuses feature names containing JSON punctuation and rewrites whitespace.
 _UNSAFE = re.compile(r'[\s",:\[\]{}]')
-_OBJECTIVES = {"binary": "binary", "multiclass": "multiclass", "regression": "regression"}
 
 
 def lgb_names(names: list[str]) -> list[str]:
@@ -35,15 +36,16 @@ def lgb_frame(frame: pd.DataFrame) -> pd.DataFrame:
 
 
 def base_params(task: str, *, num_class: int | None, metric: str, seed: int,
-                num_threads: int) -> dict[str, Any]:
+                num_threads: int, objective: str | None = None) -> dict[str, Any]:
     """Parameters every model of a search shares, whatever the trial.
 
     ``deterministic`` plus ``force_col_wise`` is what LightGBM documents as needed for
     repeatable models; ``verbosity=-1`` keeps its C++ logging out of worker output.
+    ``objective`` is a regression loss of :data:`tuner.losses.REGRESSION_OBJECTIVES`
+    (``None``: the task's default, see :func:`tuner.losses.resolve_objective`).
     """
     params: dict[str, Any] = {
-        # A Poisson metric needs positive predictions, which the L2 objective cannot promise.
-        "objective": "poisson" if metric == "poisson_deviance" else _OBJECTIVES[task],
+        "objective": resolve_objective(task, metric, objective),
         "verbosity": -1,
         "num_threads": num_threads,
         "seed": seed,

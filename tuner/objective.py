@@ -38,8 +38,9 @@ class CVObjective:
     Folds run one after another. After each fold the running mean is reported to the trial
     so the pruner can stop unpromising configurations early. Trial user attributes:
     ``params`` (every LightGBM parameter sampled or fixed), ``fold_scores``,
-    ``best_iterations``, ``train_seconds`` and, for completed trials, ``score_std`` and
-    ``boosting_rounds`` (see :func:`refit_rounds`).
+    ``best_iterations``, ``train_seconds``, ``rounds_trained`` (rounds boosted, patience
+    included) and, for completed trials, ``score_std`` and ``boosting_rounds`` (see
+    :func:`refit_rounds`).
     """
 
     def __init__(
@@ -82,7 +83,7 @@ class CVObjective:
         self._w = None if data.weight is None else data.weight[plan.train_idx]
 
     def _fit_fold(self, params: dict[str, Any],
-                  fold: tuple[np.ndarray, np.ndarray]) -> tuple[float, int, float]:
+                  fold: tuple[np.ndarray, np.ndarray]) -> tuple[float, int, float, int]:
         fit, valid = fold
         w_fit = None if self._w is None else self._w[fit]
         w_val = None if self._w is None else self._w[valid]
@@ -99,7 +100,9 @@ class CVObjective:
         seconds = time.perf_counter() - started
         best = int(booster.best_iteration or booster.current_iteration())
         pred = predict(booster, self.task, X_val, num_iteration=best)
-        return self.metric(y_val, pred, w_val), best, seconds
+        # Early stopping fires after `patience` rounds without gain, else the cap ends it.
+        trained = min(self.max_rounds, best + self.early_stopping_rounds)
+        return self.metric(y_val, pred, w_val), best, seconds, trained
 
     def __call__(self, trial: optuna.Trial) -> float:
         """Run the folds for one trial and return the mean score.
@@ -113,22 +116,26 @@ class CVObjective:
         scores: list[float] = []
         iterations: list[int] = []
         seconds = 0.0
+        trained = 0  # rounds actually boosted, early-stopping patience included
         try:
             for k, fold in enumerate(self.plan.folds):
                 if self.should_stop is not None and self.should_stop():
                     raise optuna.TrialPruned("the search was asked to stop")
-                score, best, spent = self._fit_fold(full, fold)
+                score, best, spent, rounds = self._fit_fold(full, fold)
                 scores.append(float(score))
                 iterations.append(best)
                 seconds += spent
+                trained += rounds
                 trial.report(float(np.mean(scores)), step=k)
-                if trial.should_prune():
+                # After the last fold nothing is left to save: keep the finished trial.
+                if k < len(self.plan.folds) - 1 and trial.should_prune():
                     raise optuna.TrialPruned(f"pruned after fold {k}")
         finally:
             # Written once per trial, whatever its outcome: each attribute is a DB write.
             trial.set_user_attr("fold_scores", scores)
             trial.set_user_attr("best_iterations", iterations)
             trial.set_user_attr("train_seconds", seconds)
+            trial.set_user_attr("rounds_trained", trained)
         trial.set_user_attr("score_std", float(np.std(scores)))
         trial.set_user_attr(
             "boosting_rounds", refit_rounds(iterations, self.plan.n_folds, self.plan.strategy)

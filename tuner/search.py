@@ -13,11 +13,14 @@ import optuna
 from optuna.trial import FrozenTrial, TrialState
 
 from tuner._lgb import base_params
+from tuner._optimize import optimize_budgeted, threads_per_trial
+from tuner.config import SearchConfig, check_config, make_pruner
 from tuner.data import PreparedData
-from tuner.errors import ConfigError, TunerError
+from tuner.errors import TunerError
 from tuner.metrics import get_metric
 from tuner.objective import CVObjective
-from tuner.space import DEFAULT_SPACE, LIGHTGBM_DEFAULTS, SearchSpace, initial_params
+from tuner.selection import select
+from tuner.space import LIGHTGBM_DEFAULTS, fit_into_space, initial_params
 from tuner.validation import ValidationPlan
 
 # The only global the tuner sets: Optuna logs every trial at INFO, which floods workers.
@@ -30,23 +33,6 @@ _STATES = {
 _BUDGET_STATES = (TrialState.COMPLETE, TrialState.PRUNED)
 # Failures that stop a search, at least: an error in every trial is not worth repeating.
 _MIN_FAILURE_CAP = 5
-
-
-@dataclass(frozen=True)
-class SearchConfig:
-    """What to search and how long; ``n_trials`` counts complete and pruned trials."""
-
-    task: str
-    metric: str
-    n_trials: int | None = 40
-    timeout: float | None = None
-    seed: int = 0
-    space: SearchSpace = DEFAULT_SPACE
-    max_rounds: int = 1000
-    early_stopping_rounds: int = 50
-    num_threads: int = 1
-    pruner_warmup_folds: int = 1
-    n_startup_trials: int = 8
 
 
 @dataclass(frozen=True)
@@ -78,6 +64,10 @@ class SearchResult:
     n_pruned: int
     n_failed: int
     direction: str
+    #: The trial the selection rule picked (``best`` unless ``selection="one_se"``).
+    chosen: TrialRecord | None = None
+    #: How it was picked: see :func:`tuner.selection.select`.
+    selection: dict[str, Any] = field(default_factory=dict)
 
 
 def record_from_frozen(ft: FrozenTrial) -> TrialRecord:
@@ -146,6 +136,8 @@ def open_study(
     n_startup_trials: int = 8,
     n_warmup_steps: int = 0,
     initial_params: dict[str, Any] | None = None,
+    pruner: str = "median",
+    warm_start: tuple[dict[str, Any], ...] = (),
     heartbeat_seconds: int | None = None,
     grace_seconds: int | None = None,
     seed_salt: int = 0,
@@ -164,6 +156,9 @@ def open_study(
         n_startup_trials: Random trials before TPE starts modelling.
         n_warmup_steps: Folds reported before pruning is allowed, minus one.
         initial_params: Trial 0's parameters; defaults to :data:`LIGHTGBM_DEFAULTS`.
+        pruner: One of :data:`tuner.config.PRUNERS` (see :func:`make_pruner`).
+        warm_start: Parameter sets enqueued after trial 0 in a new study (duplicates of
+            trial 0 or of each other are skipped).
         heartbeat_seconds: Optuna trial heartbeat interval (``None``: no heartbeat).
         grace_seconds: Seconds without a heartbeat after which a running trial is failed.
         seed_salt: Mixed into the sampler seed, so that several processes sampling one
@@ -181,32 +176,25 @@ def open_study(
     sampler_seed = seed if existing == 0 and not seed_salt else int(
         np.random.SeedSequence(entropy).generate_state(1)[0]
     )
-    sampler = optuna.samplers.TPESampler(seed=sampler_seed, n_startup_trials=n_startup_trials)
-    pruner = optuna.pruners.MedianPruner(n_startup_trials=5, n_warmup_steps=n_warmup_steps)
+    # Constant liar (the optuna 5 default, spelled out so it survives a default change):
+    # trials still running count as bad results, so parallel trials spread out.
+    sampler = optuna.samplers.TPESampler(seed=sampler_seed, n_startup_trials=n_startup_trials,
+                                         constant_liar=True)
+    chosen_pruner = make_pruner(pruner, n_warmup_steps=n_warmup_steps)
     if not create:
         return optuna.load_study(study_name=study_name, storage=storage, sampler=sampler,
-                                 pruner=pruner)
+                                 pruner=chosen_pruner)
     study = optuna.create_study(storage=storage, study_name=study_name, direction=direction,
-                                sampler=sampler, pruner=pruner, load_if_exists=True)
+                                sampler=sampler, pruner=chosen_pruner, load_if_exists=True)
     if not study.get_trials(deepcopy=False):
-        study.enqueue_trial(dict(LIGHTGBM_DEFAULTS if initial_params is None else initial_params))
+        first = dict(LIGHTGBM_DEFAULTS if initial_params is None else initial_params)
+        queued = [first]
+        for params in warm_start:
+            if params not in queued:
+                queued.append(dict(params))
+        for params in queued:
+            study.enqueue_trial(params)
     return study
-
-
-def _check_config(data: PreparedData, config: SearchConfig) -> None:
-    errors = []
-    if config.task != data.task:
-        errors.append({"field": "task", "message": f"config task '{config.task}' differs from "
-                       f"the data's task '{data.task}'"})
-    if config.n_trials is not None and config.n_trials < 1:
-        errors.append({"field": "n_trials", "message": "must be at least 1"})
-    if config.timeout is not None and config.timeout <= 0:
-        errors.append({"field": "timeout", "message": "must be positive"})
-    if config.metric == "poisson_deviance" and (data.y < 0).any():
-        errors.append({"field": "metric", "message": "poisson_deviance needs a non-negative "
-                       "target"})
-    if errors:
-        raise ConfigError(f"invalid search settings: {errors[0]['message']}", errors)
 
 
 def run_search(
@@ -226,12 +214,13 @@ def run_search(
 ) -> SearchResult:
     """Run (or resume, or join) a search until its budget, timeout or a stop request.
 
-    The study is created on first use, with trial 0 set to LightGBM's defaults. When it
-    already holds trials (a resumed job), complete and pruned trials count against
-    ``n_trials``. Trials run one at a time in this process; other processes may run
-    trials of the same study at once (``join=True``), and the budget then holds for all
-    of them together: a process stops once ``n_trials`` trials of the study are finished,
-    so at most one trial per other process overshoots it.
+    The study is created on first use, with trial 0 set to LightGBM's defaults (and any
+    warm-start trials after it). When it already holds trials (a resumed job), complete
+    and pruned trials count against ``n_trials``. This process runs up to
+    ``config.max_parallel_trials`` trials at once; other processes may run trials of the
+    same study at once (``join=True``), and the budget then holds for all of them
+    together: a process stops once ``n_trials`` trials of the study are finished, so at
+    most the trials other processes have in flight overshoot it.
 
     Trials left RUNNING by a crashed process: without a heartbeat they are marked failed
     at the start, which assumes this is the only process on the study. With
@@ -242,11 +231,11 @@ def run_search(
     Args:
         data: Prepared data.
         plan: Validation plan; the search uses its train part only.
-        config: Budget, seed, space and LightGBM settings.
+        config: Budget, seed, space, selection rule and LightGBM settings.
         storage_url: Optuna storage URL.
         study_name: The study to create or resume.
-        on_trial: Called with each finished trial's record, in the worker's thread;
-            exceptions it raises end the search.
+        on_trial: Called with each finished trial's record (from several threads when
+            trials run in parallel); exceptions it raises end the search.
         should_stop: Polled before each fold and after each trial; ``True`` ends the
             search (the running trial is recorded as pruned).
         heartbeat_seconds: Optuna trial heartbeat interval; ``None`` for none.
@@ -258,18 +247,23 @@ def run_search(
             enqueued trial 0 has been taken, so other processes may join safely).
 
     Returns:
-        Counts for the whole study and the best complete trial (``None`` if none).
+        Counts for the whole study, its best complete trial and the trial the selection
+        rule chose (``None`` if none completed).
 
     Raises:
         ConfigError: The config does not fit the data (task, metric, budget).
     """
-    _check_config(data, config)
+    check_config(data, config)
     metric = get_metric(config.metric, data.task)
+    rows = plan.min_fit_rows
     study = open_study(
         storage_url, study_name, direction=metric.direction, seed=config.seed,
         create=not join, n_startup_trials=config.n_startup_trials,
         n_warmup_steps=max(0, config.pruner_warmup_folds - 1),
-        initial_params=initial_params(config.space, n_train_rows=plan.min_fit_rows),
+        initial_params=initial_params(config.space, n_train_rows=rows),
+        pruner=config.pruner,
+        warm_start=tuple(fit_into_space(p, config.space, n_train_rows=rows)
+                         for p in config.warm_start),
         heartbeat_seconds=heartbeat_seconds, grace_seconds=grace_seconds, seed_salt=seed_salt,
     )
     if heartbeat_seconds is None and not join:
@@ -278,7 +272,9 @@ def run_search(
         data, plan, metric,
         params_base=base_params(data.task, num_class=len(data.classes or ()),
                                 metric=metric.name, seed=config.seed,
-                                num_threads=config.num_threads),
+                                num_threads=threads_per_trial(config.num_threads,
+                                                              config.max_parallel_trials),
+                                objective=config.objective),
         space=config.space, max_rounds=config.max_rounds,
         early_stopping_rounds=config.early_stopping_rounds, should_stop=should_stop,
     )
@@ -294,13 +290,17 @@ def run_search(
     done = len(study.get_trials(deepcopy=False, states=_BUDGET_STATES))
     failure_cap = max(_MIN_FAILURE_CAP, config.n_trials or 0)
     failures = 0
+    stopped = False
 
     def after_trial(study: optuna.Study, ft: FrozenTrial) -> None:
-        nonlocal failures
+        # With parallel trials this runs in several threads; += on ints under the GIL
+        # may lose a count, which only delays the failure cap by a trial.
+        nonlocal failures, stopped
         failures += ft.state == TrialState.FAIL
         if on_trial is not None:
             on_trial(record_from_frozen(ft))
         if failures >= failure_cap or (should_stop is not None and should_stop()):
+            stopped = True
             study.stop()
 
     callbacks: list[Callable[[optuna.Study, FrozenTrial], None]] = [after_trial]
@@ -308,11 +308,13 @@ def run_search(
         callbacks.append(optuna.study.MaxTrialsCallback(config.n_trials, states=_BUDGET_STATES))
     budget_left = config.n_trials is None or done < config.n_trials
     if budget_left and not (should_stop is not None and should_stop()):
-        # n_trials=None: the budget callback counts only complete and pruned trials, so
-        # failed ones do not eat into it.
+        # Failed trials do not eat into the budget (see optimize_budgeted); the callback
+        # stops this worker when other processes on the same study filled it.
         try:
-            study.optimize(objective, n_trials=None, timeout=config.timeout,
-                           callbacks=callbacks, catch=(lgb.basic.LightGBMError, TunerError))
+            optimize_budgeted(study, objective, n_trials=config.n_trials,
+                              timeout=config.timeout, n_jobs=config.max_parallel_trials,
+                              callbacks=callbacks, catch=(lgb.basic.LightGBMError, TunerError),
+                              stopped=lambda: stopped)
         except optuna.exceptions.UpdateFinishedTrialError:
             # Another process resumed this study and failed our running trial (see above).
             # Expected only when this worker was told to stop because it lost the job.
@@ -320,7 +322,7 @@ def run_search(
                 raise TunerError(
                     f"study '{study_name}' is being run by another process"
                 ) from None
-    return _result(study, metric.direction)
+    return _result(study, metric.direction, config.selection)
 
 
 def _fail_running(study: optuna.Study) -> None:
@@ -331,8 +333,9 @@ def _fail_running(study: optuna.Study) -> None:
             pass  # it finished meanwhile: nothing to fail
 
 
-def close_search(storage_url: str, study_name: str, *, direction: str) -> SearchResult:
-    """Fail trials still RUNNING and return the study's final counts and best trial.
+def close_search(storage_url: str, study_name: str, *, direction: str,
+                 selection: str = "best") -> SearchResult:
+    """Fail trials still RUNNING and return the study's final counts and chosen trial.
 
     Call it once no process is running trials of the study any more (the service's lead
     worker does, after its joiners left): whatever is still RUNNING belongs to a process
@@ -342,24 +345,27 @@ def close_search(storage_url: str, study_name: str, *, direction: str) -> Search
     try:
         study = optuna.load_study(study_name=study_name, storage=storage)
         _fail_running(study)
-        return _result(study, direction)
+        return _result(study, direction, selection)
     finally:
         storage.engine.dispose()  # one-shot: leave no pooled connection behind
 
 
-def _result(study: optuna.Study, direction: str) -> SearchResult:
+def _result(study: optuna.Study, direction: str, selection: str = "best") -> SearchResult:
     trials = study.get_trials(deepcopy=False)
     complete = [t for t in trials if t.state == TrialState.COMPLETE and t.value is not None]
     best = None
     if complete:
         sign = -1.0 if direction == "maximize" else 1.0
         best = record_from_frozen(min(complete, key=lambda t: (sign * t.value, t.number)))
+    chosen, report = select([record_from_frozen(t) for t in complete], direction, selection)
     return SearchResult(
         best=best,
         n_complete=len(complete),
         n_pruned=sum(t.state == TrialState.PRUNED for t in trials),
         n_failed=sum(t.state == TrialState.FAIL for t in trials),
         direction=direction,
+        chosen=chosen,
+        selection=report,
     )
 
 

@@ -7,13 +7,14 @@ from typing import Annotated, Literal
 import pandas as pd
 from fastapi import APIRouter, Query, Request, Response
 from fastapi.concurrency import run_in_threadpool
+from sqlalchemy.orm import Session
 
 from service import repository
 from service.api.deps import SessionDep, SettingsDep, StoreDep
 from service.api.tabular import csv_response, wants_csv
 from service.db import session_scope
 from service.errors import NotFound, Unprocessable
-from service.jobspec import build_run
+from service.jobspec import WARM_START_TRIALS, build_run
 from service.progress import eta_seconds
 from service.schemas import (
     JobCreate,
@@ -74,6 +75,25 @@ def to_out(job: Job) -> JobOut:
     )
 
 
+def _warm_start(session: Session, job_id: str) -> tuple[dict, str]:
+    """The earlier job's best trials, to enqueue first; and that job's task."""
+    def bad(message: str) -> Unprocessable:
+        return Unprocessable(message, errors=[{"field": "warm_start_job_id",
+                                               "message": message}])
+    try:
+        earlier = repository.get_job(session, job_id)
+    except NotFound as exc:
+        raise bad(f"no job '{job_id}' to warm-start from") from exc
+    effective = earlier.spec["effective"]
+    top, _ = repository.leaderboard(session, job_id=job_id, direction=effective["direction"],
+                                    limit=WARM_START_TRIALS)
+    if not top:
+        raise bad(f"job '{job_id}' has no complete trial to start from")
+    warm = {"job_id": job_id, "trials": [t.number for t in top],
+            "params": [dict(t.params) for t in top]}
+    return warm, effective["task"]
+
+
 def _submit(settings: Settings, store: LocalStore, body: JobCreate) -> JobOut:
     request = body.model_dump(mode="json")
     with session_scope(settings.db_url) as session:
@@ -83,8 +103,19 @@ def _submit(settings: Settings, store: LocalStore, body: JobCreate) -> JobOut:
             raise Unprocessable(str(exc), errors=[{"field": "dataset_id",
                                                    "message": "no such dataset"}]) from exc
         key, sha = dataset.file_key, dataset.file_sha256
+        dataset_sha = dataset.sha256
+        warm_task = None
+        if body.warm_start_job_id is not None:
+            # Resolved now and stored in the request, so the worker enqueues exactly these.
+            request["warm_start"], warm_task = _warm_start(session, body.warm_start_job_id)
     frame = pd.read_parquet(store.local_path(key, sha))
-    run = build_run(request, frame)  # every problem with the request surfaces here as 422
+    # Every problem with the request surfaces here as a 422.
+    run = build_run(request, frame, dataset_sha256=dataset_sha)
+    if warm_task is not None and warm_task != run.data.task:
+        message = (f"job '{body.warm_start_job_id}' tuned a {warm_task} task; this job is "
+                   f"{run.data.task}")
+        raise Unprocessable(message, errors=[{"field": "warm_start_job_id",
+                                              "message": message}])
     job_id = repository.new_id("job")
     with session_scope(settings.db_url) as session:
         job = repository.add_job(

@@ -1,0 +1,80 @@
+"""The trial loop: an exact budget of finished trials, one or several at a time.
+
+Kept apart from :mod:`tuner.search` (which opens and resumes studies) so the loop can
+change without touching the study set-up.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable, Sequence
+from typing import Any
+
+import optuna
+from optuna.trial import FrozenTrial, TrialState
+
+_BUDGET_STATES = (TrialState.COMPLETE, TrialState.PRUNED)
+
+
+def threads_per_trial(num_threads: int, max_parallel_trials: int) -> int:
+    """LightGBM threads each of ``max_parallel_trials`` concurrent trials gets.
+
+    The thread budget is divided, never multiplied: k trials on k cores with one thread
+    each, rather than k trials each asking for every core. Idle OpenMP threads busy-wait
+    and starve their neighbours (LIBRARIES.md section 3, threads versus processes).
+    """
+    return max(1, num_threads // max(1, max_parallel_trials))
+
+
+def optimize_budgeted(
+    study: optuna.Study,
+    objective: Callable[[optuna.Trial], float],
+    *,
+    n_trials: int | None,
+    timeout: float | None,
+    n_jobs: int,
+    callbacks: Sequence[Callable[[optuna.Study, FrozenTrial], None]],
+    catch: tuple[type[Exception], ...],
+    stopped: Callable[[], bool],
+) -> None:
+    """Run trials until ``n_trials`` are complete or pruned, the timeout, or a stop.
+
+    Failed trials do not use up the budget: each round asks Optuna for exactly the
+    trials still missing, and a round that lost some to failures is followed by another.
+    Asking for an exact count (rather than stopping from a callback) matters with
+    ``n_jobs > 1``: a callback's ``study.stop()`` lets every other running trial finish,
+    which would overshoot the budget by up to ``n_jobs - 1`` trials.
+
+    Args:
+        study: The opened study (enqueued trials run first).
+        objective: The trial function.
+        n_trials: Complete plus pruned trials wanted in the whole study; ``None``: no cap.
+        timeout: Seconds for this call; ``None``: no limit.
+        n_jobs: Trials run at once, in threads of this process (LightGBM releases the
+            GIL while it trains, so threads use several cores).
+        callbacks: Passed to ``study.optimize``.
+        catch: Exceptions recorded as failed trials instead of ending the search.
+        stopped: ``True`` once a callback has stopped the study; ends the loop.
+    """
+    deadline = None if timeout is None else time.monotonic() + timeout
+    while not stopped():
+        remaining: int | None = None
+        if n_trials is not None:
+            done = len(study.get_trials(deepcopy=False, states=_BUDGET_STATES))
+            remaining = n_trials - done
+            if remaining <= 0:
+                return
+        left = None if deadline is None else deadline - time.monotonic()
+        if left is not None and left <= 0:
+            return
+        jobs, count = n_jobs, remaining
+        waiting = len(study.get_trials(deepcopy=False, states=(TrialState.WAITING,)))
+        if n_jobs > 1 and waiting:
+            # Enqueued trials (defaults, warm start) first, one at a time: without
+            # SELECT ... FOR UPDATE (SQLite) two threads can claim the same waiting trial
+            # and the second fails with "Cannot tell a COMPLETE trial" (LIBRARIES.md 2).
+            jobs, count = 1, waiting if remaining is None else min(waiting, remaining)
+        kwargs: dict[str, Any] = {"n_trials": count, "timeout": left, "n_jobs": jobs}
+        study.optimize(objective, callbacks=list(callbacks), catch=catch, **kwargs)
+        if remaining is None and jobs == n_jobs:
+            return  # no trial cap: only the timeout or a stop ends optimize()

@@ -1,0 +1,112 @@
+"""Search settings (:class:`SearchConfig`), their checks, and the pruners on offer."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import optuna
+
+from tuner.data import PreparedData
+from tuner.errors import ConfigError
+from tuner.losses import check_objective
+from tuner.selection import SELECTION_RULES
+from tuner.space import DEFAULT_SPACE, Choice, ParamRange, SearchSpace
+
+__all__ = ["FINAL_REFITS", "PRUNERS", "SearchConfig", "check_config", "make_pruner"]
+
+
+@dataclass(frozen=True)
+class SearchConfig:
+    """What to search and how long; ``n_trials`` counts complete and pruned trials."""
+
+    task: str
+    metric: str
+    n_trials: int | None = 40
+    timeout: float | None = None
+    seed: int = 0
+    space: SearchSpace = DEFAULT_SPACE
+    max_rounds: int = 1000
+    early_stopping_rounds: int = 50
+    num_threads: int = 1
+    pruner_warmup_folds: int = 1
+    n_startup_trials: int = 8
+    #: Regression loss (``tuner.losses.REGRESSION_OBJECTIVES``); ``None``: task default.
+    objective: str | None = None
+    #: ``median`` (per fold), ``halving`` (successive halving per fold) or ``none``.
+    pruner: str = "median"
+    #: Trials run at once in this process; ``num_threads`` is divided among them.
+    max_parallel_trials: int = 1
+    #: How the winner is chosen (``tuner.selection.SELECTION_RULES``).
+    selection: str = "best"
+    #: ``train``: serve the model fit on the search rows and scored on the hold-out;
+    #: ``all``: after scoring, refit on every row (hold-out included) and serve that.
+    final_refit: str = "train"
+    #: Parameter sets enqueued right after trial 0 (e.g. an earlier job's winners).
+    warm_start: tuple[dict[str, Any], ...] = ()
+
+
+#: ``median``: prune a trial whose running mean over its first folds is worse than the
+#: median of earlier trials after as many folds. ``halving``: successive halving with
+#: folds as the resource (keep the best half at 2 and 4 folds). ``none``: no pruning.
+PRUNERS = ("median", "halving", "none")
+
+
+def make_pruner(name: str, *, n_warmup_steps: int = 0) -> optuna.pruners.BasePruner:
+    """The pruner called ``name`` (see :data:`PRUNERS`); steps are folds (0-based).
+
+    Raises:
+        ConfigError: Unknown name (field ``pruner``).
+    """
+    if name == "median":
+        return optuna.pruners.MedianPruner(n_startup_trials=5, n_warmup_steps=n_warmup_steps)
+    if name == "halving":
+        return optuna.pruners.SuccessiveHalvingPruner(min_resource=1, reduction_factor=2)
+    if name == "none":
+        return optuna.pruners.NopPruner()
+    message = f"unknown pruner '{name}'; use one of {', '.join(PRUNERS)}"
+    raise ConfigError(message, [{"field": "pruner", "message": message}])
+
+
+FINAL_REFITS = ("train", "all")
+
+
+def check_config(data: PreparedData, config: SearchConfig) -> None:
+    """Reject settings that do not fit the data; every problem names its field.
+
+    Raises:
+        ConfigError: Task, budget, metric, objective, pruner, selection or refit problems.
+    """
+    check_objective(config.task, config.metric, config.objective, data.y)
+    errors = []
+    if config.task != data.task:
+        errors.append({"field": "task", "message": f"config task '{config.task}' differs from "
+                       f"the data's task '{data.task}'"})
+    if config.n_trials is not None and config.n_trials < 1:
+        errors.append({"field": "n_trials", "message": "must be at least 1"})
+    if config.timeout is not None and config.timeout <= 0:
+        errors.append({"field": "timeout", "message": "must be positive"})
+    if config.metric == "poisson_deviance" and (data.y < 0).any():
+        errors.append({"field": "metric", "message": "poisson_deviance needs a non-negative "
+                       "target"})
+    if config.max_parallel_trials < 1:
+        errors.append({"field": "max_parallel_trials", "message": "must be at least 1"})
+    if config.pruner not in PRUNERS:
+        errors.append({"field": "pruner", "message": f"use one of {', '.join(PRUNERS)}"})
+    if config.selection not in SELECTION_RULES:
+        errors.append({"field": "selection",
+                       "message": f"use one of {', '.join(SELECTION_RULES)}"})
+    if config.final_refit not in FINAL_REFITS:
+        errors.append({"field": "final_refit",
+                       "message": f"use one of {', '.join(FINAL_REFITS)}"})
+    alpha = config.space.get("alpha")
+    if config.objective == "quantile" and alpha is not None:
+        if isinstance(alpha, ParamRange):
+            bounds: tuple[Any, ...] = (alpha.low, alpha.high)
+        else:
+            bounds = alpha.values if isinstance(alpha, Choice) else (alpha.value,)
+        if not all(0 < float(a) < 1 for a in bounds):
+            errors.append({"field": "search_space.alpha",
+                           "message": "a quantile objective needs alpha within (0, 1)"})
+    if errors:
+        raise ConfigError(f"invalid search settings: {errors[0]['message']}", errors)
