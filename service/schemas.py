@@ -150,6 +150,7 @@ class TrialOut(BaseModel):
     best_iterations: list[int]
     boosting_rounds: int | None
     duration_seconds: float | None
+    train_seconds: float | None = None
 
 
 class LeaderboardRow(BaseModel):
