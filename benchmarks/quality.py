@@ -35,6 +35,7 @@ from sklearn.ensemble import HistGradientBoostingClassifier, HistGradientBoostin
 
 import tuner
 from examples.demo_data import greenhouse, kilns
+from tuner.search import trial_attrs
 from tuner._lgb import base_params, predict
 from tuner.selection import standard_error
 
@@ -116,7 +117,7 @@ def _search(data: tuner.PreparedData, plan: tuner.ValidationPlan, config: tuner.
     result = tuner.run_search(data, plan, config, storage_url=url, study_name=name)
     seconds = time.perf_counter() - started
     trials = optuna.load_study(study_name=name, storage=url).get_trials(deepcopy=False)
-    rounds = sum(int(t.user_attrs.get("rounds_trained", 0)) for t in trials)
+    rounds = sum(int(trial_attrs(t).get("rounds_trained", 0)) for t in trials)
     return {"result": result, "rounds": rounds, "seconds": seconds,
             "pruned": result.n_pruned}
 

@@ -77,8 +77,36 @@ def predict(booster: lgb.Booster, task: str, frame: pd.DataFrame,
         Binary: probability of class 1, shape ``(n,)``; multiclass: ``(n, K)``
         probabilities; regression: values.
     """
-    out = booster.predict(lgb_frame(frame), num_iteration=num_iteration)
+    out = booster.predict(frame_matrix(booster, frame), num_iteration=num_iteration)
     out = np.asarray(out, dtype="float64")
     if task == "multiclass" and out.ndim == 1:
         out = out.reshape(len(frame), -1)
+    return out
+
+
+def frame_matrix(booster: lgb.Booster, frame: pd.DataFrame) -> np.ndarray | pd.DataFrame:
+    """The float matrix LightGBM would build from ``frame``, built without its pandas path.
+
+    LightGBM turns a pandas frame into category codes (missing and unseen levels as NaN)
+    and float64 values on every call, which dominates the cost of predicting a few rows.
+    The codes only mean the same thing when the frame's levels are the ones the model was
+    trained with (its ``pandas_categorical``); otherwise the frame goes to LightGBM as it is
+    and LightGBM remaps the levels itself.
+    """
+    cats = [c for c in frame.columns if isinstance(frame[c].dtype, pd.CategoricalDtype)]
+    trained = booster.pandas_categorical or []
+    if len(trained) != len(cats) or any(
+        list(frame[c].cat.categories) != list(levels) for c, levels in zip(cats, trained,
+                                                                            strict=True)
+    ):
+        return lgb_frame(frame)
+    out = np.empty(frame.shape, dtype=np.float64)
+    for j, name in enumerate(frame.columns):
+        column = frame[name]
+        if isinstance(column.dtype, pd.CategoricalDtype):
+            codes = column.cat.codes.to_numpy(dtype=np.float64)
+            codes[codes < 0] = np.nan
+            out[:, j] = codes
+        else:
+            out[:, j] = column.to_numpy(dtype=np.float64, na_value=np.nan)
     return out

@@ -14,6 +14,7 @@ import optuna
 import pandas as pd
 
 from tuner._lgb import predict
+from tuner._rows import RowEncoder
 from tuner.errors import ArtifactError
 from tuner.explain import contribution_scale, contributions
 from tuner.model import FittedModel
@@ -101,6 +102,7 @@ class Predictor:
         self.schema = schema
         self.task = task
         self.classes = classes
+        self._rows = RowEncoder(schema, booster)
 
     @classmethod
     def from_metadata(cls, booster: lgb.Booster, metadata: dict[str, Any]) -> Predictor:
@@ -116,7 +118,11 @@ class Predictor:
             probability exceeds 0.5) or float values, plus ``"probabilities"`` for
             classification: one list per row, aligned with ``classes``.
         """
-        pred = predict(self.booster, self.task, frame)
+        return self._answer(predict(self.booster, self.task, frame))
+
+    def _answer(self, pred: np.ndarray) -> dict[str, Any]:
+        if self.task == "multiclass" and pred.ndim == 1:
+            pred = pred.reshape(-1, len(self.classes or ()) or 1)
         if self.task == "regression":
             return {"predictions": [float(v) for v in pred]}
         probs = np.column_stack([1.0 - pred, pred]) if pred.ndim == 1 else pred
@@ -146,6 +152,11 @@ class Predictor:
         Raises:
             PredictionInputError: The rows do not match the schema.
         """
+        fast = None if explain else self._rows.encode(rows)
+        if fast is not None:
+            matrix, ignored = fast
+            pred = np.asarray(self.booster.predict(matrix), dtype="float64")
+            return {**self._answer(pred), "ignored_columns": ignored}
         frame, ignored = self.schema.frame_from_rows(rows, unseen=unseen)
         out = {**self.predict_frame(frame), "ignored_columns": ignored}
         return {**out, **self.explain_frame(frame)} if explain else out

@@ -111,12 +111,12 @@ class CVObjective:
             optuna.TrialPruned: The pruner or ``should_stop`` ended the trial early.
         """
         params = suggest(trial, self.space, n_train_rows=self.plan.min_fit_rows)
-        trial.set_user_attr("params", params)
         full = {**self.params_base, **params}
         scores: list[float] = []
         iterations: list[int] = []
         seconds = 0.0
         trained = 0  # rounds actually boosted, early-stopping patience included
+        last = len(self.plan.folds) - 1
         try:
             for k, fold in enumerate(self.plan.folds):
                 if self.should_stop is not None and self.should_stop():
@@ -126,18 +126,21 @@ class CVObjective:
                 iterations.append(best)
                 seconds += spent
                 trained += rounds
-                trial.report(float(np.mean(scores)), step=k)
-                # After the last fold nothing is left to save: keep the finished trial.
-                if k < len(self.plan.folds) - 1 and trial.should_prune():
-                    raise optuna.TrialPruned(f"pruned after fold {k}")
+                # After the last fold nothing is left to save, so nothing is reported:
+                # every report is a storage write.
+                if k < last:
+                    trial.report(float(np.mean(scores)), step=k)
+                    if trial.should_prune():
+                        raise optuna.TrialPruned(f"pruned after fold {k}")
         finally:
-            # Written once per trial, whatever its outcome: each attribute is a DB write.
-            trial.set_user_attr("fold_scores", scores)
-            trial.set_user_attr("best_iterations", iterations)
-            trial.set_user_attr("train_seconds", seconds)
-            trial.set_user_attr("rounds_trained", trained)
-        trial.set_user_attr("score_std", float(np.std(scores)))
-        trial.set_user_attr(
-            "boosting_rounds", refit_rounds(iterations, self.plan.n_folds, self.plan.strategy)
-        )
+            # One attribute for everything, whatever the trial's outcome: each attribute
+            # is a storage write (see tuner.search.trial_attrs for the reading side).
+            record: dict[str, Any] = {"params": params, "fold_scores": scores,
+                                      "best_iterations": iterations,
+                                      "train_seconds": seconds, "rounds_trained": trained}
+            if len(scores) == len(self.plan.folds):
+                record["score_std"] = float(np.std(scores))
+                record["boosting_rounds"] = refit_rounds(iterations, self.plan.n_folds,
+                                                         self.plan.strategy)
+            trial.set_user_attr("record", record)
         return float(np.mean(scores))

@@ -70,9 +70,14 @@ class SearchResult:
     selection: dict[str, Any] = field(default_factory=dict)
 
 
+def trial_attrs(ft: FrozenTrial) -> dict[str, Any]:
+    """What the CV objective recorded on a trial (one ``record`` attribute per trial)."""
+    return {**ft.user_attrs, **ft.user_attrs.get("record", {})}
+
+
 def record_from_frozen(ft: FrozenTrial) -> TrialRecord:
     """Summarise an Optuna trial (``state`` is ``"waiting"`` for enqueued, unstarted ones)."""
-    attrs = ft.user_attrs
+    attrs = trial_attrs(ft)
     complete = ft.state == TrialState.COMPLETE
     return TrialRecord(
         number=ft.number,

@@ -1,4 +1,5 @@
-"""Loaded models kept in memory, so a prediction never re-reads the model file."""
+"""Loaded models kept in memory, so a prediction never re-reads the model file, nor
+(once loaded) its database row: a stored model is never changed."""
 
 from __future__ import annotations
 
@@ -19,12 +20,18 @@ class PredictorCache:
         self._items: OrderedDict[str, tuner.Predictor] = OrderedDict()
         self._lock = threading.Lock()
 
-    def get(self, model: Model) -> tuner.Predictor:
+    def cached(self, model_id: str) -> tuner.Predictor | None:
+        """The loaded predictor, without touching the database (models never change)."""
         with self._lock:
-            found = self._items.get(model.id)
+            found = self._items.get(model_id)
             if found is not None:
-                self._items.move_to_end(model.id)
-                return found
+                self._items.move_to_end(model_id)
+            return found
+
+    def get(self, model: Model) -> tuner.Predictor:
+        found = self.cached(model.id)
+        if found is not None:
+            return found
         path = self.store.local_path(model.file_key)
         booster = tuner.load_booster(path, expected_sha256=model.sha256)
         predictor = tuner.Predictor(

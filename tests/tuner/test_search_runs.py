@@ -21,6 +21,7 @@ from tuner import (
     run_search,
 )
 from tuner.metrics import get_metric
+from tuner.search import trial_attrs
 from tuner.objective import CVObjective, base_params
 
 
@@ -168,5 +169,5 @@ def test_pruned_trials_keep_their_fold_scores(setup) -> None:
     study.optimize(objective, n_trials=2)
     for trial in study.trials:
         assert trial.state == TrialState.PRUNED
-        assert len(trial.user_attrs["fold_scores"]) == 1
+        assert len(trial_attrs(trial)["fold_scores"]) == 1
         assert list(trial.intermediate_values) == [0]

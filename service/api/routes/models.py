@@ -118,9 +118,12 @@ async def predict(
     unseen: Annotated[Unseen, Query()] = "error",
     explain: Annotated[bool, Query()] = False,
 ) -> PredictResponse | Response:
-    model = repository.get_model(session, model_id)
+    predictors = request.app.state.predictors
+    predictor = predictors.cached(model_id)
+    if predictor is None:
+        model = repository.get_model(session, model_id)
+        predictor = await run_in_threadpool(predictors.get, model)
     session.close()
-    predictor = await run_in_threadpool(request.app.state.predictors.get, model)
     media = (request.headers.get("content-type") or "").split(";")[0].strip().lower()
     limit = settings.max_prediction_rows
     body = await ingest.read_body(request, limit=settings.max_upload_mb * (1 << 20))
@@ -135,7 +138,11 @@ async def predict(
     payload = PredictRequest.model_validate_json(body)
     if len(payload.rows) > limit:
         raise PayloadTooLarge(f"at most {limit} rows per request; got {len(payload.rows)}")
-    result = predictor.predict_rows(payload.rows, unseen=unseen, explain=explain)
+    if len(payload.rows) <= 64:  # a few rows: cheaper inline than a thread hop
+        result = predictor.predict_rows(payload.rows, unseen=unseen, explain=explain)
+    else:
+        result = await run_in_threadpool(predictor.predict_rows, payload.rows, unseen=unseen,
+                                         explain=explain)
     return PredictResponse(
         model_id=model_id,
         predictions=result["predictions"],
