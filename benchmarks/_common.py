@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import argparse
 import os
 import socket
 import statistics
@@ -77,11 +78,7 @@ def live_server(home: Path, *, workers: int = 0, bench_routes: bool = False,
                 env: dict[str, str] | None = None) -> Iterator[LiveServer]:
     """``grovekeeper serve`` (or the benchmark server with its echo route) on loopback."""
     port = free_port()
-    child = dict(os.environ)
-    child.update({"PYTHONPATH": str(ROOT), "GROVEKEEPER_HOME": str(home),
-                  "OMP_WAIT_POLICY": "passive"})
-    child.pop("GROVEKEEPER_DATABASE_URL", None)
-    child.update(env or {})
+    child = _child_env(home, **(env or {}))
     if bench_routes:
         cmd = [sys.executable, "-m", "benchmarks._server", str(port)]
     else:
@@ -106,11 +103,30 @@ def live_server(home: Path, *, workers: int = 0, bench_routes: bool = False,
     try:
         yield LiveServer(base=base, proc=proc)
     finally:
-        proc.terminate()
-        try:
-            proc.wait(timeout=60)
-        except subprocess.TimeoutExpired:
-            proc.kill()
+        _stop(proc)
+
+
+def _stop(proc: subprocess.Popen[bytes]) -> None:
+    proc.terminate()
+    try:
+        proc.wait(timeout=60)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+
+
+def _child_env(home: Path, **extra: str) -> dict[str, str]:
+    child = dict(os.environ)
+    child.update({"PYTHONPATH": str(ROOT), "GROVEKEEPER_HOME": str(home),
+                  "OMP_WAIT_POLICY": "passive", **extra})
+    child.pop("GROVEKEEPER_DATABASE_URL", None)
+    return child
+
+
+def part_main(run: Callable[[bool], list[Row]], doc: str | None) -> None:
+    """The command line of one benchmark part: ``--quick`` for a small smoke run."""
+    parser = argparse.ArgumentParser(description=doc)
+    parser.add_argument("--quick", action="store_true", help="small smoke run")
+    print_table(run(parser.parse_args().quick))
 
 
 def print_table(rows: list[Row], out: Callable[[str], None] = print) -> None:
@@ -134,20 +150,13 @@ def print_table(rows: list[Row], out: Callable[[str], None] = print) -> None:
 @contextmanager
 def worker_process(home: Path) -> Iterator[subprocess.Popen[bytes]]:
     """One ``grovekeeper worker`` on the same home as a live server."""
-    child = dict(os.environ)
-    child.update({"PYTHONPATH": str(ROOT), "GROVEKEEPER_HOME": str(home),
-                  "OMP_WAIT_POLICY": "passive", "GROVEKEEPER_POLL_SECONDS": "0.2"})
-    child.pop("GROVEKEEPER_DATABASE_URL", None)
+    child = _child_env(home, GROVEKEEPER_POLL_SECONDS="0.2")
     proc = subprocess.Popen([sys.executable, "-m", "service", "worker"], env=child, cwd=ROOT,
                             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     try:
         yield proc
     finally:
-        proc.terminate()
-        try:
-            proc.wait(timeout=60)
-        except subprocess.TimeoutExpired:
-            proc.kill()
+        _stop(proc)
 
 
 def upload_and_tune(client: httpx.Client, csv_bytes: bytes, target: str, trials: int,

@@ -2,15 +2,15 @@
 
 from __future__ import annotations
 
-import argparse
 import tempfile
 import time
+from functools import partial
 from pathlib import Path
 
 import httpx
 import pandas as pd
 
-from benchmarks._common import Row, live_server, median_time, print_table
+from benchmarks._common import Row, live_server, median_time, part_main
 from benchmarks.data import wide_table
 
 
@@ -29,10 +29,10 @@ def run(quick: bool = False) -> list[Row]:
         engine = min(engine_times, key=engine_times.get)  # type: ignore[arg-type]
         frame = read(engine)
         table_bytes = int(frame.memory_usage(deep=True).sum())
-        write = median_time(lambda: frame.to_parquet(folder / "out.parquet", index=False),
+        write = median_time(partial(frame.to_parquet, folder / "out.parquet", index=False),
                             repeat)
         floor = engine_times[engine] + write
-        del frame
+        del frame  # free it before the server parses its own copy
 
         uploads = []
         with live_server(folder / "home") as server:
@@ -58,11 +58,5 @@ def run(quick: bool = False) -> list[Row]:
     ]
 
 
-def main() -> None:
-    parser = argparse.ArgumentParser(description=__doc__)
-    parser.add_argument("--quick", action="store_true", help="small smoke run")
-    print_table(run(parser.parse_args().quick))
-
-
 if __name__ == "__main__":
-    main()
+    part_main(run, __doc__)

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import argparse
 import random
 import sqlite3
 import tempfile
@@ -10,7 +9,7 @@ from pathlib import Path
 
 import httpx
 
-from benchmarks._common import Row, live_server, median_time, print_table
+from benchmarks._common import Row, live_server, median_time, part_main
 from service import repository
 from service.db import dispose_engines, init_db, session_scope
 from service.tables import Trial
@@ -68,11 +67,5 @@ def run(quick: bool = False) -> list[Row]:
                 unit="ms", note=f"floor = one SQL query reading the {n:,} trial scores")]
 
 
-def main() -> None:
-    parser = argparse.ArgumentParser(description=__doc__)
-    parser.add_argument("--quick", action="store_true", help="small smoke run")
-    print_table(run(parser.parse_args().quick))
-
-
 if __name__ == "__main__":
-    main()
+    part_main(run, __doc__)

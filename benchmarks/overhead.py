@@ -8,18 +8,16 @@ minus the same search in memory.
 
 from __future__ import annotations
 
-import argparse
 import tempfile
 import time
 from datetime import datetime
 from pathlib import Path
 
 import httpx
-import numpy as np
 import optuna
 
 import tuner
-from benchmarks._common import Row, live_server, print_table, upload_and_tune, worker_process
+from benchmarks._common import Row, live_server, part_main, upload_and_tune, worker_process
 from benchmarks.data import wide_table
 from tuner.space import DEFAULT_SPACE, suggest
 
@@ -80,11 +78,5 @@ def run(quick: bool = False) -> list[Row]:
     return rows
 
 
-def main() -> None:
-    parser = argparse.ArgumentParser(description=__doc__)
-    parser.add_argument("--quick", action="store_true", help="small smoke run")
-    print_table(run(parser.parse_args().quick))
-
-
 if __name__ == "__main__":
-    main()
+    part_main(run, __doc__)

@@ -7,7 +7,6 @@ Batch: 100,000 CSV rows in and out vs read_csv + Booster.predict + to_csv in-pro
 
 from __future__ import annotations
 
-import argparse
 import io
 import statistics
 import tempfile
@@ -23,7 +22,7 @@ from benchmarks._common import (
     Row,
     live_server,
     median_time,
-    print_table,
+    part_main,
     upload_and_tune,
     worker_process,
 )
@@ -109,11 +108,5 @@ def run(quick: bool = False) -> list[Row]:
     ]
 
 
-def main() -> None:
-    parser = argparse.ArgumentParser(description=__doc__)
-    parser.add_argument("--quick", action="store_true", help="small smoke run")
-    print_table(run(parser.parse_args().quick))
-
-
 if __name__ == "__main__":
-    main()
+    part_main(run, __doc__)

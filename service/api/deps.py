@@ -8,7 +8,7 @@ from typing import Annotated
 from fastapi import Depends, Request
 from sqlalchemy.orm import Session
 
-from service.db import get_sessionmaker
+from service.db import session_scope
 from service.settings import Settings
 from service.storage import LocalStore
 
@@ -22,15 +22,8 @@ def get_store(request: Request) -> LocalStore:
 
 
 def get_session(settings: Annotated[Settings, Depends(get_settings_dep)]) -> Iterator[Session]:
-    session = get_sessionmaker(settings.db_url)()
-    try:
+    with session_scope(settings.db_url) as session:
         yield session
-        session.commit()
-    except BaseException:
-        session.rollback()
-        raise
-    finally:
-        session.close()
 
 
 SettingsDep = Annotated[Settings, Depends(get_settings_dep)]
