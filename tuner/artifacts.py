@@ -120,6 +120,24 @@ class Predictor:
         """
         return self._answer(predict(self.booster, self.task, frame))
 
+    def predict_columns(self, frame: pd.DataFrame) -> pd.DataFrame:
+        """A table answer for a frame in training form: ``prediction``, then one
+        ``probability_<class>`` column per class for classification.
+
+        Built from arrays, without the per-value Python objects of :meth:`predict_frame`,
+        which cost more than LightGBM's own predict on large batches.
+        """
+        pred = predict(self.booster, self.task, frame)
+        if self.task == "regression":
+            return pd.DataFrame({"prediction": pred})
+        probs = np.column_stack([1.0 - pred, pred]) if pred.ndim == 1 else pred
+        classes = self.classes or list(range(probs.shape[1]))
+        labels = np.asarray(classes, dtype=object)[np.argmax(probs, axis=1)]
+        out = pd.DataFrame({"prediction": labels})
+        for k, label in enumerate(classes):
+            out[f"probability_{label}"] = probs[:, k]
+        return out
+
     def _answer(self, pred: np.ndarray) -> dict[str, Any]:
         if self.task == "multiclass" and pred.ndim == 1:
             pred = pred.reshape(-1, len(self.classes or ()) or 1)

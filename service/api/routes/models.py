@@ -75,12 +75,7 @@ def _predict_csv(predictor: tuner.Predictor, store: LocalStore, body: bytes, uns
     if len(frame) > limit:
         raise PayloadTooLarge(f"at most {limit} rows per request; got {len(frame)}")
     features, ignored = predictor.schema.frame_from_table(frame, unseen=unseen)
-    result = predictor.predict_frame(features)
-    out = pd.DataFrame({"prediction": result["predictions"]})
-    if result.get("probabilities") is not None:
-        probs = pd.DataFrame(result["probabilities"],
-                             columns=[f"probability_{c}" for c in predictor.classes or []])
-        out = pd.concat([out, probs], axis=1)
+    out = predictor.predict_columns(features)
     if explain:
         out = pd.concat([out, _contribution_columns(predictor, features)], axis=1)
     headers = {"X-Ignored-Columns": ",".join(ignored)} if ignored else None
