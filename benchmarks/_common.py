@@ -16,6 +16,8 @@ from pathlib import Path
 
 import httpx
 
+from service.demo import wait_ready
+
 ROOT = Path(__file__).resolve().parents[1]
 
 
@@ -87,19 +89,11 @@ def live_server(home: Path, *, workers: int = 0, bench_routes: bool = False,
     proc = subprocess.Popen(cmd, env=child, cwd=ROOT, stdout=subprocess.DEVNULL,
                             stderr=subprocess.DEVNULL)
     base = f"http://127.0.0.1:{port}"
-    deadline = time.monotonic() + 60
-    while True:
-        if proc.poll() is not None:
-            raise RuntimeError(f"benchmark server exited with {proc.returncode}")
-        try:
-            if httpx.get(f"{base}/readyz", timeout=2).status_code == 200:
-                break
-        except httpx.HTTPError:
-            pass
-        if time.monotonic() > deadline:
-            proc.kill()
-            raise RuntimeError("benchmark server did not start")
-        time.sleep(0.1)
+    try:
+        wait_ready(base, proc)
+    except RuntimeError:
+        proc.kill()
+        raise
     try:
         yield LiveServer(base=base, proc=proc)
     finally:
