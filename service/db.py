@@ -72,6 +72,9 @@ def dispose_engines(*, close: bool = True) -> None:
             engine.dispose(close=close)
         _engines.clear()
         _makers.clear()
+    from tuner._journal import dispose_engines as dispose_journal
+
+    dispose_journal(close=close)
 
 
 @contextlib.contextmanager
@@ -89,24 +92,19 @@ def session_scope(url: str) -> Iterator[Session]:
 
 
 def init_db(url: str, *, attempts: int = 5) -> None:
-    """Create or upgrade the service tables (service/migrations.py) and Optuna's schema.
+    """Create or upgrade the service tables (service/migrations.py) and the trial journal's.
 
     Several processes starting against a fresh database race on CREATE TABLE
     (LIBRARIES.md §2, start-up race); a retry after a short pause sees the tables
     the winner created.
     """
-    import optuna
-
+    import tuner
     from service.migrations import migrate
 
     for attempt in range(attempts):
         try:
             migrate(get_engine(url))
-            engine_kwargs = (
-                {"connect_args": {"timeout": SQLITE_BUSY_TIMEOUT_S}} if is_sqlite(url) else {}
-            )
-            storage = optuna.storages.RDBStorage(url, engine_kwargs=engine_kwargs)
-            storage.engine.dispose()
+            tuner.init_storage(url)
             return
         except Exception:
             if attempt == attempts - 1:

@@ -11,7 +11,10 @@ The story, kept deliberately small:
    ``STEPS``, keyed by the revision it produces and run once, in order, inside one
    transaction; ``gk_schema`` records the revision reached. There are none yet.
 
-Optuna's own tables are managed by Optuna (its ``RDBStorage`` runs its Alembic revisions).
+The trial journal's two tables (``gk_trial_journal``, ``gk_trial_beats``) belong to the
+tuner, which creates them (``tuner.init_storage``); a study left in Optuna's own
+``RDBStorage`` tables by an older version is copied into the journal when its job is
+next led (``tuner/_journal.py``).
 Every step must be safe to run by several processes at once; ``init_db`` retries on the
 start-up race (LIBRARIES.md §2).
 """

@@ -116,9 +116,12 @@ def participants(session: Session, *, job_id: str) -> list[str]:
                                 .order_by(JobWorker.joined_at)))
 
 
-def set_joinable(session: Session, *, job_id: str, worker_id: str) -> None:
+def set_joinable(session: Session, *, job_id: str, worker_id: str,
+                 joinable: bool = True) -> None:
+    """Open the lead's job to joiners, or close it (its budget is spent: a joiner would
+    only load the study to find nothing left to run, again and again)."""
     session.execute(sa.update(Job).where(Job.id == job_id, Job.worker_id == worker_id)
-                    .values(joinable=True).execution_options(synchronize_session=False))
+                    .values(joinable=joinable).execution_options(synchronize_session=False))
 
 
 def heartbeat(session: Session, *, job_id: str, worker_id: str) -> tuple[bool, bool]:

@@ -179,6 +179,10 @@ class Worker:
             grace_seconds=self.trial_grace,
             on_started=open_to_joiners,
         )
+        if max_workers > 1:
+            with session_scope(self.url) as session:
+                queue.set_joinable(session, job_id=job_id, worker_id=self.worker_id,
+                                   joinable=False)
         if not should_stop():
             self._wait_for_joiners(job_id, should_stop)
         if flags.lost:

@@ -69,23 +69,30 @@ def make_dataset(X: pd.DataFrame, y: np.ndarray, weight: np.ndarray | None,
     )
 
 
-def predict(booster: lgb.Booster, task: str, frame: pd.DataFrame,
+def predict(booster: lgb.Booster, task: str, frame: pd.DataFrame | np.ndarray,
             num_iteration: int | None = None) -> np.ndarray:
     """Predict with the convention of :mod:`tuner.metrics`.
+
+    ``frame`` is a prepared frame, or a matrix :func:`frame_matrix` already built for it.
 
     Returns:
         Binary: probability of class 1, shape ``(n,)``; multiclass: ``(n, K)``
         probabilities; regression: values.
     """
-    out = booster.predict(frame_matrix(booster, frame), num_iteration=num_iteration)
+    matrix = frame if isinstance(frame, np.ndarray) else frame_matrix(booster, frame)
+    out = booster.predict(matrix, num_iteration=num_iteration)
     out = np.asarray(out, dtype="float64")
     if task == "multiclass" and out.ndim == 1:
         out = out.reshape(len(frame), -1)
     return out
 
 
-def frame_matrix(booster: lgb.Booster, frame: pd.DataFrame) -> np.ndarray | pd.DataFrame:
+def frame_matrix(booster: lgb.Booster | lgb.Dataset,
+                 frame: pd.DataFrame) -> np.ndarray | pd.DataFrame:
     """The float matrix LightGBM would build from ``frame``, built without its pandas path.
+
+    ``booster`` may also be the constructed Dataset it is (to be) trained on: both carry
+    the category levels seen in training (``pandas_categorical``).
 
     LightGBM turns a pandas frame into category codes (missing and unseen levels as NaN)
     and float64 values on every call, which dominates the cost of predicting a few rows.

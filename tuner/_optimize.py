@@ -67,14 +67,9 @@ def optimize_budgeted(
         left = None if deadline is None else deadline - time.monotonic()
         if left is not None and left <= 0:
             return
-        jobs, count = n_jobs, remaining
-        waiting = len(study.get_trials(deepcopy=False, states=(TrialState.WAITING,)))
-        if n_jobs > 1 and waiting:
-            # Enqueued trials (defaults, warm start) first, one at a time: without
-            # SELECT ... FOR UPDATE (SQLite) two threads can claim the same waiting trial
-            # and the second fails with "Cannot tell a COMPLETE trial" (LIBRARIES.md 2).
-            jobs, count = 1, waiting if remaining is None else min(waiting, remaining)
-        kwargs: dict[str, Any] = {"n_trials": count, "timeout": left, "n_jobs": jobs}
+        # Enqueued trials (defaults, warm start) may run in parallel too: the trial
+        # journal hands each to exactly one thread or process (tuner/_journal.py).
+        kwargs: dict[str, Any] = {"n_trials": remaining, "timeout": left, "n_jobs": n_jobs}
         study.optimize(objective, callbacks=list(callbacks), catch=catch, **kwargs)
-        if remaining is None and jobs == n_jobs:
+        if remaining is None:
             return  # no trial cap: only the timeout or a stop ends optimize()

@@ -11,7 +11,7 @@ import optuna
 from tuner._lgb import make_dataset
 from tuner.data import PreparedData
 from tuner.metrics import get_metric
-from tuner.search import SearchConfig, _storage
+from tuner.search import SearchConfig, load_study
 from tuner.validation import ValidationPlan
 
 __all__ = ["hyperparameter_importance", "leaf_sizes", "learning_curve"]
@@ -131,7 +131,7 @@ def hyperparameter_importance(storage_url: str, study_name: str, *,
         ``{"method": "fanova", "trials", "importances": {param: share}, "note"?}``,
         importances sorted descending and summing to about 1.
     """
-    study = optuna.load_study(study_name=study_name, storage=_storage(storage_url))
+    study = load_study(storage_url, study_name)
     complete = study.get_trials(deepcopy=False, states=(optuna.trial.TrialState.COMPLETE,))
     out: dict[str, Any] = {"method": "fanova", "trials": len(complete), "importances": {}}
     if len(complete) < 2:

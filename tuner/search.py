@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import warnings
 from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
 from typing import Any
@@ -12,6 +11,7 @@ import numpy as np
 import optuna
 from optuna.trial import FrozenTrial, TrialState
 
+from tuner._journal import TrialJournal, create_tables, import_rdb_study, rdb_has_study
 from tuner._lgb import base_params
 from tuner._optimize import optimize_budgeted, threads_per_trial
 from tuner.config import SearchConfig, check_config, make_pruner
@@ -93,37 +93,32 @@ def record_from_frozen(ft: FrozenTrial) -> TrialRecord:
     )
 
 
-def _storage(storage_url: str, heartbeat_seconds: int | None = None,
-             grace_seconds: int | None = None) -> optuna.storages.RDBStorage:
-    engine_kwargs: dict[str, Any] = {}
-    if storage_url.startswith("sqlite"):
-        # Waiting for a lock beats failing: SQLite's default 5 s is short on a busy disk.
-        engine_kwargs = {"connect_args": {"timeout": 60}}
-    if heartbeat_seconds is None:
-        return optuna.storages.RDBStorage(storage_url, engine_kwargs=engine_kwargs)
-    # Optuna's trial heartbeat (experimental, works with optimize()): a trial whose process
-    # stopped beating for grace_seconds is failed by the next trial any worker starts.
-    # No heartbeat_stale_trial_callback: a retry enqueues a WAITING copy, which SQLite
-    # cannot hand out safely to several workers (LIBRARIES.md §2), and a configuration
+def _storage(storage_url: str, study_name: str, heartbeat_seconds: int | None = None,
+             grace_seconds: int | None = None) -> TrialJournal:
+    # Optuna's trial heartbeat (works with optimize()): a trial whose process stopped
+    # beating for grace_seconds is failed by the next trial any process starts.
+    # No stale-trial callback: a retry would enqueue a WAITING copy, and a configuration
     # that got its worker killed (out of memory) would kill the next one. Only finished
     # trials count against the budget, so a failed one is simply replaced by a new draw.
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", optuna.exceptions.ExperimentalWarning)
-        return optuna.storages.RDBStorage(
-            storage_url, engine_kwargs=engine_kwargs, heartbeat_interval=heartbeat_seconds,
-            grace_period=grace_seconds)
+    return TrialJournal(storage_url, study_name, heartbeat_seconds=heartbeat_seconds,
+                        grace_seconds=grace_seconds)
 
 
 def init_storage(storage_url: str) -> None:
-    """Create Optuna's tables once, before several workers open studies concurrently.
+    """Create the trial journal's tables once, before several processes open studies.
 
     Concurrent first-time schema creation races ("table already exists"), so the service
     should call this at start-up, from one process.
     """
-    _storage(storage_url)
+    create_tables(storage_url)
 
 
-def _count_trials(storage: optuna.storages.RDBStorage, study_name: str) -> int:
+def load_study(storage_url: str, study_name: str) -> optuna.Study:
+    """Open an existing study for reading (``KeyError`` if there is none)."""
+    return optuna.load_study(study_name=study_name, storage=_storage(storage_url, study_name))
+
+
+def _count_trials(storage: TrialJournal, study_name: str) -> int:
     try:
         study_id = storage.get_study_id_from_name(study_name)
     except KeyError:
@@ -175,8 +170,11 @@ def open_study(
     Raises:
         KeyError: ``create`` is false and the study does not exist.
     """
-    storage = _storage(storage_url, heartbeat_seconds, grace_seconds)
+    storage = _storage(storage_url, study_name, heartbeat_seconds, grace_seconds)
     existing = _count_trials(storage, study_name)
+    if create and existing == 0 and rdb_has_study(storage_url, study_name):
+        import_rdb_study(storage_url, study_name, storage)
+        existing = _count_trials(storage, study_name)
     entropy = [seed, existing] + ([seed_salt] if seed_salt else [])
     sampler_seed = seed if existing == 0 and not seed_salt else int(
         np.random.SeedSequence(entropy).generate_state(1)[0]
@@ -346,13 +344,9 @@ def close_search(storage_url: str, study_name: str, *, direction: str,
     worker does, after its joiners left): whatever is still RUNNING belongs to a process
     that died before its heartbeat went stale.
     """
-    storage = _storage(storage_url)
-    try:
-        study = optuna.load_study(study_name=study_name, storage=storage)
-        _fail_running(study)
-        return _result(study, direction, selection)
-    finally:
-        storage.engine.dispose()  # one-shot: leave no pooled connection behind
+    study = load_study(storage_url, study_name)
+    _fail_running(study)
+    return _result(study, direction, selection)
 
 
 def _result(study: optuna.Study, direction: str, selection: str = "best") -> SearchResult:
@@ -379,12 +373,9 @@ def load_trial_records(storage_url: str, study_name: str) -> list[TrialRecord]:
 
     Enqueued trials that never started are left out.
     """
-    storage = _storage(storage_url)
     try:
-        study = optuna.load_study(study_name=study_name, storage=storage)
-        return [record_from_frozen(t) for t in study.get_trials(deepcopy=False)
-                if t.state != TrialState.WAITING]
+        study = load_study(storage_url, study_name)
     except KeyError:
         return []
-    finally:
-        storage.engine.dispose()  # one-shot: leave no pooled connection behind
+    return [record_from_frozen(t) for t in study.get_trials(deepcopy=False)
+            if t.state != TrialState.WAITING]

@@ -9,6 +9,8 @@ import pytest
 
 TUNER = Path(__file__).resolve().parents[2] / "tuner"
 FORBIDDEN = {"service", "fastapi", "sqlalchemy", "starlette", "uvicorn"}
+# The trial journal is Optuna storage on a SQL table: the one module that talks SQL.
+ALLOWED = {"_journal.py": {"sqlalchemy"}}
 
 
 def _imported_roots(path: Path) -> set[str]:
@@ -30,7 +32,7 @@ def test_tuner_package_found() -> None:
 
 @pytest.mark.parametrize("path", MODULES, ids=lambda p: p.name)
 def test_no_upward_imports(path: Path) -> None:
-    assert _imported_roots(path) & FORBIDDEN == set()
+    assert _imported_roots(path) & (FORBIDDEN - ALLOWED.get(path.name, set())) == set()
 
 
 @pytest.mark.parametrize("path", MODULES, ids=lambda p: p.name)

@@ -14,6 +14,7 @@ from tuner import (
     ConfigError,
     SearchConfig,
     fit_final,
+    load_study,
     load_trial_records,
     open_study,
     plan_validation,
@@ -112,7 +113,7 @@ def test_failures_stop_after_the_cap(setup, storage_url, monkeypatch) -> None:
     monkeypatch.setattr(CVObjective, "_fit_fold", broken)
     result = run_search(data, plan, config, storage_url=storage_url, study_name="s")
     assert result.best is None and result.n_failed == 5 and result.n_complete == 0
-    study = optuna.load_study(study_name="s", storage=storage_url)
+    study = load_study(storage_url, "s")
     assert all(t.state == TrialState.FAIL for t in study.trials)
 
 
