@@ -35,11 +35,16 @@ def _job_overhead(trials: int, n_rows: int) -> Row:
                                       trials=trials)
             rows = client.get(f"/v1/jobs/{job['id']}/trials").json()["data"]
     train = sum(r.get("train_seconds") or 0.0 for r in rows)
+    in_trials = sum(r.get("duration_seconds") or 0.0 for r in rows)
     wall = (datetime.fromisoformat(job["finished_at"])
             - datetime.fromisoformat(job["started_at"])).total_seconds()
-    per_trial = train / max(1, len(rows))
+    n = max(1, len(rows))
+    # Where the rest goes: inside trials (sampling, storage, predicting the fold) and
+    # outside them (loading the data, the refit, the evaluation, the model file).
     return Row(f"job of {trials} trials, wall vs training", wall, train, 1.10,
-               note=f"{len(rows)} trials, {per_trial:.2f} s of LightGBM training per trial")
+               note=f"{len(rows)} trials, {train / n:.2f} s of LightGBM training per trial; "
+               f"{(in_trials - train) / n * 1000:.0f} ms/trial more inside trials, "
+               f"{wall - in_trials:.1f} s outside them (start, refit, evaluation)")
 
 
 def _bookkeeping(n: int) -> tuple[float, float]:
