@@ -3,7 +3,9 @@
 Reference: LightGBM itself. A trial that reuses a fold must score exactly what a fresh
 ``lgb.train`` on freshly built Datasets scores (the binning is deterministic), scored by
 scikit-learn's ``roc_auc_score``; and a trial with other Dataset parameters (``max_bin``)
-must get Datasets of its own, not the cached ones.
+must get Datasets of its own, not the cached ones. The objective itself takes LightGBM's
+own AUC at the best round (unweighted binary AUC only), so this also holds that number
+to scikit-learn's.
 """
 
 from __future__ import annotations
