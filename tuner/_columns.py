@@ -86,19 +86,33 @@ def infer_kind(s: pd.Series) -> str:
         or ptypes.is_object_dtype(dtype)
     ):
         values = as_level_strings(s).dropna()
-        uniques = pd.unique(values.to_numpy())
-        if _all_bool_words(uniques):
-            return "boolean"
-        if _all_iso_datetimes(uniques):
-            return "datetime"
-        limit = max(2, min(1000, 0.5 * len(values)))
-        return "categorical" if len(uniques) <= limit else "text"
+        return kind_of_levels(pd.unique(values.to_numpy()), len(values))
     if ptypes.is_numeric_dtype(dtype):
         return "numeric"
     if ptypes.is_datetime64_any_dtype(dtype):
         return "datetime"
     # Durations, intervals, nested values: nothing LightGBM can use directly.
     return "text"
+
+
+def kind_of_levels(uniques: np.ndarray, n_values: int) -> str:
+    """The kind of a text column from its distinct strings and its count of non-missing values."""
+    if _all_bool_words(uniques):
+        return "boolean"
+    if _all_iso_datetimes(uniques):
+        return "datetime"
+    limit = max(2, min(1000, 0.5 * n_values))
+    return "categorical" if len(uniques) <= limit else "text"
+
+
+def string_levels(s: pd.Series) -> np.ndarray:
+    """Distinct non-missing values of a ``str`` column, in order of appearance.
+
+    The same as ``pd.unique(as_level_strings(s).dropna())`` without turning every row into
+    a Python string first (for Arrow-backed strings the work stays in Arrow).
+    """
+    uniques = s.unique()
+    return np.asarray(uniques[~pd.isna(uniques)], dtype=object)
 
 
 def to_float(s: pd.Series) -> tuple[np.ndarray, np.ndarray]:
