@@ -13,6 +13,7 @@ which names the line at fault.
 from __future__ import annotations
 
 import os
+from typing import Any
 
 import pandas as pd
 
@@ -24,6 +25,7 @@ NA_VALUES = sorted({"", "#N/A", "#N/A N/A", "#NA", "-1.#IND", "-1.#QNAN", "-NaN"
 _BOOL_WORDS = {"true", "false"}
 _SAMPLE = 1000  # text values looked at to rule out a column pandas would read as numbers
 _INT64_LIMIT = 2.0**63
+_BLOCK = 16 << 20  # bytes of text per streamed block (types are inferred from the first)
 _HUGE_INTEGER = r"^\s*[+-]?[0-9]{19,}\s*$"
 
 
@@ -35,21 +37,19 @@ def read_plain_csv(path: str | os.PathLike[str], header: list[str], *,
     ``plus_signs`` says whether the file holds a "+" anywhere.
     """
     import pyarrow as pa
-    import pyarrow.csv as pacsv
 
     convert = {"strings_can_be_null": True, "null_values": NA_VALUES,
                "true_values": ["True", "TRUE", "true"],
                "false_values": ["False", "FALSE", "false"]}
-    try:
-        table = pacsv.read_csv(path, convert_options=pacsv.ConvertOptions(**convert))
-        dated = [f.name for f in table.schema if _is_temporal(pa, f.type)]
-        if dated:  # pandas keeps dates as text: parse again with those columns as text
-            del table
-            forced = {name: pa.string() for name in dated}
-            table = pacsv.read_csv(path, convert_options=pacsv.ConvertOptions(
-                column_types=forced, **convert))
-    except (pa.ArrowException, OSError):
-        return None  # a ragged row, a cell pyarrow cannot convert, ...: the checked path
+    table = _parse(path, convert)
+    if table is None:
+        return None
+    dated = [f.name for f in table.schema if _is_temporal(pa, f.type)]
+    if dated:  # pandas keeps dates as text: parse again with those columns as text
+        del table
+        table = _parse(path, {**convert, "column_types": {n: pa.string() for n in dated}})
+        if table is None:
+            return None
     if table.column_names != header:
         return None
     columns = []
@@ -61,10 +61,33 @@ def read_plain_csv(path: str | os.PathLike[str], header: list[str], *,
             return None
         columns.append(column)
     table = pa.Table.from_arrays(columns, names=header)
-    del columns
+    del columns, column
     # One block per column and the Arrow buffers released as they are converted, so the
     # table is never held twice.
-    return table.to_pandas(split_blocks=True, self_destruct=True)
+    return table.to_pandas(split_blocks=True, self_destruct=True, use_threads=False)
+
+
+def _parse(path: str | os.PathLike[str], convert: dict[str, Any]) -> Any:
+    """The file as an Arrow table, or ``None`` when pyarrow refuses it.
+
+    The streaming reader holds one block of text at a time (measured: half the peak
+    memory of ``read_csv``, which buffers far ahead), but infers types from its first
+    block only; a later block that does not fit them is read again whole by ``read_csv``.
+    """
+    import pyarrow as pa
+    import pyarrow.csv as pacsv
+
+    options = pacsv.ConvertOptions(**convert)
+    try:
+        with pacsv.open_csv(path, read_options=pacsv.ReadOptions(block_size=_BLOCK),
+                            convert_options=options) as reader:
+            return reader.read_all()
+    except (pa.ArrowException, OSError):
+        pass
+    try:
+        return pacsv.read_csv(path, convert_options=options)
+    except (pa.ArrowException, OSError):
+        return None  # a ragged row, a cell pyarrow cannot convert, ...: the checked path
 
 
 def _is_temporal(pa: object, kind: object) -> bool:

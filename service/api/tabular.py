@@ -72,7 +72,7 @@ def _cells(s: pd.Series) -> list[str] | None:
         return cells
     if dtype in (np.int64, np.int32, np.bool_):
         return list(map(str, s.to_numpy().tolist()))
-    if dtype == object or isinstance(dtype, pd.StringDtype):
+    if pd.api.types.is_object_dtype(dtype) or isinstance(dtype, pd.StringDtype):
         codes, uniques = pd.factorize(s, use_na_sentinel=True)  # labels: a few distinct
         texts = [str(u) for u in uniques]
         if not _plain(texts):
