@@ -25,7 +25,6 @@ NA_VALUES = sorted({"", "#N/A", "#N/A N/A", "#NA", "-1.#IND", "-1.#QNAN", "-NaN"
 _BOOL_WORDS = {"true", "false"}
 _SAMPLE = 1000  # text values looked at to rule out a column pandas would read as numbers
 _INT64_LIMIT = 2.0**63
-_BLOCK = 16 << 20  # bytes of text per streamed block (types are inferred from the first)
 _HUGE_INTEGER = r"^\s*[+-]?[0-9]{19,}\s*$"
 
 
@@ -64,30 +63,42 @@ def read_plain_csv(path: str | os.PathLike[str], header: list[str], *,
     del columns, column
     # One block per column and the Arrow buffers released as they are converted, so the
     # table is never held twice.
-    return table.to_pandas(split_blocks=True, self_destruct=True, use_threads=False)
+    return table.to_pandas(split_blocks=True, self_destruct=True, use_threads=False,
+                           memory_pool=_pool())
 
 
 def _parse(path: str | os.PathLike[str], convert: dict[str, Any]) -> Any:
     """The file as an Arrow table, or ``None`` when pyarrow refuses it.
 
-    The streaming reader holds one block of text at a time (measured: half the peak
-    memory of ``read_csv``, which buffers far ahead), but infers types from its first
-    block only; a later block that does not fit them is read again whole by ``read_csv``.
+    ``read_csv`` parses blocks on every core and infers types from the whole file. Its
+    streaming reader held half the peak memory but took about twice as long (one
+    thread), so the whole-file reader is used, with a pool that returns memory at once.
     """
     import pyarrow as pa
     import pyarrow.csv as pacsv
 
-    options = pacsv.ConvertOptions(**convert)
     try:
-        with pacsv.open_csv(path, read_options=pacsv.ReadOptions(block_size=_BLOCK),
-                            convert_options=options) as reader:
-            return reader.read_all()
-    except (pa.ArrowException, OSError):
-        pass
-    try:
-        return pacsv.read_csv(path, convert_options=options)
+        return pacsv.read_csv(path, convert_options=pacsv.ConvertOptions(**convert),
+                              memory_pool=_pool())
     except (pa.ArrowException, OSError):
         return None  # a ragged row, a cell pyarrow cannot convert, ...: the checked path
+
+
+def _pool() -> Any:
+    """jemalloc told to hand freed pages back at once, when pyarrow has it.
+
+    pyarrow's default pool keeps freed memory for reuse, so the parse buffers and the
+    Arrow columns already converted stayed resident beside the frame (measured: about
+    70 MB more peak memory on a million rows).
+    """
+    import pyarrow as pa
+
+    try:
+        pool = pa.jemalloc_memory_pool()
+    except NotImplementedError:
+        return pa.default_memory_pool()
+    pa.jemalloc_set_decay_ms(0)
+    return pool
 
 
 def _is_temporal(pa: object, kind: object) -> bool:

@@ -60,7 +60,9 @@ def scan_bytes(path: str | os.PathLike[str]) -> ByteScan:
             block = chunk if isinstance(chunk, bytearray) else bytearray(chunk)
             quoted = quoted or b'"' in block
             plus = plus or b"+" in block
-            hex_prefix = hex_prefix or b"0x" in block or b"0X" in block
+            # memchr for the letter first: a two-byte search is slow in digit-heavy text.
+            hex_prefix = hex_prefix or (b"x" in block and b"0x" in block) or (
+                b"X" in block and b"0X" in block)
             nul = block.find(b"\x00")
             if nul >= 0:
                 where = f"line {_line_at(path, done + len(pending) + nul)}"
