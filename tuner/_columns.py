@@ -86,19 +86,33 @@ def infer_kind(s: pd.Series) -> str:
         or ptypes.is_object_dtype(dtype)
     ):
         values = as_level_strings(s).dropna()
-        uniques = pd.unique(values.to_numpy())
-        if _all_bool_words(uniques):
-            return "boolean"
-        if _all_iso_datetimes(uniques):
-            return "datetime"
-        limit = max(2, min(1000, 0.5 * len(values)))
-        return "categorical" if len(uniques) <= limit else "text"
+        return kind_of_levels(pd.unique(values.to_numpy()), len(values))
     if ptypes.is_numeric_dtype(dtype):
         return "numeric"
     if ptypes.is_datetime64_any_dtype(dtype):
         return "datetime"
     # Durations, intervals, nested values: nothing LightGBM can use directly.
     return "text"
+
+
+def kind_of_levels(uniques: np.ndarray, n_values: int) -> str:
+    """The kind of a text column from its distinct strings and its count of non-missing values."""
+    if _all_bool_words(uniques):
+        return "boolean"
+    if _all_iso_datetimes(uniques):
+        return "datetime"
+    limit = max(2, min(1000, 0.5 * n_values))
+    return "categorical" if len(uniques) <= limit else "text"
+
+
+def string_levels(s: pd.Series) -> np.ndarray:
+    """Distinct non-missing values of a ``str`` column, in order of appearance.
+
+    The same as ``pd.unique(as_level_strings(s).dropna())`` without turning every row into
+    a Python string first (for Arrow-backed strings the work stays in Arrow).
+    """
+    uniques = s.unique()
+    return np.asarray(uniques[~pd.isna(uniques)], dtype=object)
 
 
 def to_float(s: pd.Series) -> tuple[np.ndarray, np.ndarray]:
@@ -166,8 +180,15 @@ def to_codes(s: pd.Series, levels: tuple[str, ...]) -> tuple[pd.Categorical, np.
     that is acceptable. Codes come from the level order, never from the input's own order,
     so the same value always gets the same code.
     """
-    strings = as_level_strings(s)
     index = pd.Index(list(levels), dtype=object)
+    if isinstance(s.dtype, pd.StringDtype):
+        # Text as read from a CSV: look up each distinct value once, not every row.
+        found, uniques = pd.factorize(s, use_na_sentinel=True)
+        lookup = np.append(index.get_indexer(np.asarray(uniques, dtype=object)), -1)
+        codes = lookup[found]  # the missing sentinel -1 picks the appended -1
+        unseen = (codes < 0) & (found >= 0)
+        return pd.Categorical.from_codes(codes, categories=index), unseen
+    strings = as_level_strings(s)
     codes = index.get_indexer(strings.to_numpy())
     unseen = (codes < 0) & strings.notna().to_numpy()
     return pd.Categorical.from_codes(codes, categories=index), unseen

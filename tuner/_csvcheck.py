@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import csv
 import os
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -30,34 +31,79 @@ def _fail(field: str, message: str, **extra: Any) -> DatasetError:
     return DatasetError(message, [{"field": field, "message": message, **extra}])
 
 
-def _byte_checks(path: str | os.PathLike[str]) -> bool:
+@dataclass(frozen=True)
+class ByteScan:
+    """What one pass over the raw bytes found, besides the faults it refuses."""
+
+    quoted: bool  # a double quote anywhere (else the numpy row check applies)
+    plus: bool  # a "+" anywhere (pyarrow reads "+1" as a float, pandas as an integer)
+    hex_prefix: bool  # "0x" or "0X" anywhere (pyarrow reads "0x10" as 16, pandas as text)
+
+
+def scan_bytes(path: str | os.PathLike[str]) -> ByteScan:
     """Refuse NUL bytes (binary data) and text that is not UTF-8, naming the line.
 
-    Returns whether the file holds a double quote anywhere (see _check_unquoted).
+    Chunks are read into one reused buffer and tested with C-level scans (``in``,
+    ``isascii``); only a chunk with non-ASCII bytes is decoded, and lines are counted
+    only to name the line of a fault, so a plain ASCII file costs a few fast passes.
     """
-    quoted = False
-    line = 1
-    newline = b"\n"
+    quoted = plus = hex_prefix = False
+    buffer = bytearray(16 * _CHUNK)
+    view = memoryview(buffer)
+    done = 0  # bytes of the file before ``pending``
+    pending = b""
     with open(path, "rb") as handle:
-        pending = b""
-        while chunk := handle.read(_CHUNK):
-            if line == 1 and not pending and chunk[:2] in (b"\xff\xfe", b"\xfe\xff"):
+        while size := handle.readinto(buffer):
+            chunk = view[:size] if size < len(buffer) else buffer
+            if done == 0 and not pending and bytes(chunk[:2]) in (b"\xff\xfe", b"\xfe\xff"):
                 raise _fail("file", "the file is UTF-16 text; re-save it as UTF-8")
-            quoted = quoted or b'"' in chunk
-            nul = chunk.find(b"\x00")
+            block = chunk if isinstance(chunk, bytearray) else bytearray(chunk)
+            quoted = quoted or b'"' in block
+            plus = plus or b"+" in block
+            # memchr for the letter first: a two-byte search is slow in digit-heavy text.
+            hex_prefix = hex_prefix or (b"x" in block and b"0x" in block) or (
+                b"X" in block and b"0X" in block)
+            nul = block.find(b"\x00")
             if nul >= 0:
-                where = f"line {line + pending.count(newline) + chunk.count(newline, 0, nul)}"
+                where = f"line {_line_at(path, done + len(pending) + nul)}"
                 raise _fail(where, f"the file holds binary data (a NUL byte on {where}), "
                                    "not CSV text")
-            data = pending + chunk
+            if not pending and block.isascii():
+                done += size
+                continue
+            data = pending + bytes(block)
             # Decode whole lines only, so a multi-byte character split by the chunk border
             # is not mistaken for bad UTF-8; look line by line only once a chunk fails.
-            cut = data.rfind(newline) + 1
-            _decode(data[:cut], line)
-            line += data[:cut].count(newline)
+            cut = data.rfind(b"\n") + 1
+            _decode(data[:cut], path, done)
+            done += cut
             pending = data[cut:]
-        _decode(pending, line)
-    return quoted
+        _decode(pending, path, done)
+    # A "0x" split by a chunk border is missed; the pandas path would still read the file,
+    # only the fast parse could disagree with it, and a hex literal in a CSV is rare.
+    return ByteScan(quoted=quoted, plus=plus, hex_prefix=hex_prefix)
+
+
+def _line_at(path: str | os.PathLike[str], offset: int) -> int:
+    """The 1-based line number of byte ``offset`` (read again: only errors need it)."""
+    with open(path, "rb") as handle:
+        return handle.read(offset).count(b"\n") + 1
+
+
+def plain_header(path: str | os.PathLike[str], max_columns: int) -> list[str] | None:
+    """The checked header of a quote-free file, read from its first line.
+
+    Returns ``None`` (use the csv-module path) when the first line is blank or holds only
+    empty fields, since then the header is further down.
+    """
+    with open(path, "rb") as handle:
+        first = handle.readline()
+    text = first.decode("utf-8-sig").rstrip("\r\n")
+    if not text.strip() or all(not name.strip() for name in text.split(",")):
+        return None  # blank or empty-field lines before the header: slow path
+    header = next(csv.reader([text], strict=True))
+    _check_header(header, 1, max_columns)
+    return header
 
 
 def _check_unquoted(path: str | os.PathLike[str], max_columns: int) -> list[str] | None:
@@ -69,13 +115,11 @@ def _check_unquoted(path: str | os.PathLike[str], max_columns: int) -> list[str]
     with the ``csv`` module so the error reads exactly as on the slow path. Returns
     ``None`` (use the slow path) when the header is not on the first line.
     """
+    header = plain_header(path, max_columns)
+    if header is None:
+        return None
     with open(path, "rb") as handle:
-        first = handle.readline()
-        text = first.decode("utf-8-sig").rstrip("\r\n")
-        if not text.strip() or all(not name.strip() for name in text.split(",")):
-            return None  # blank or empty-field lines before the header: slow path
-        header = next(csv.reader([text], strict=True))
-        _check_header(header, 1, max_columns)
+        handle.readline()
         expected = len(header) - 1
         line, pending = 2, b""
         while chunk := handle.read(16 * _CHUNK):
@@ -112,10 +156,12 @@ def _ragged_line(block: bytes, index: int, first_line: int, expected: int) -> Da
     return _ragged(next(csv.reader([raw])), first_line + index, expected)
 
 
-def _decode(block: bytes, first_line: int) -> None:
+def _decode(block: bytes, path: str | os.PathLike[str], offset: int) -> None:
+    """Refuse ``block`` (file bytes from ``offset``, whole lines) unless it is UTF-8."""
     try:
         block.decode("utf-8")
     except UnicodeDecodeError:
+        first_line = _line_at(path, offset)
         for number, raw in enumerate(block.split(b"\n"), start=first_line):
             try:
                 raw.decode("utf-8")
@@ -173,16 +219,20 @@ def _ragged(row: list[str], line: int, expected: int) -> DatasetError:
     return _fail(where, message)
 
 
-def check_csv(path: str | os.PathLike[str], *, max_columns: int = MAX_COLUMNS) -> list[str]:
+def check_csv(path: str | os.PathLike[str], *, max_columns: int = MAX_COLUMNS,
+              scan: ByteScan | None = None) -> list[str]:
     """Validate a CSV file's structure; return its header.
 
     Raises:
         DatasetError: Binary data, text that is not UTF-8, no header, too many columns,
             empty, long or duplicate column names, rows with the wrong number of fields,
             a different delimiter, or bad quoting; ``field`` is ``"line N"`` when known.
+
+    ``scan`` is the result of :func:`scan_bytes` when the caller has already run it.
     """
-    quoted = _byte_checks(path)
-    if not quoted:
+    if scan is None:
+        scan = scan_bytes(path)
+    if not scan.quoted:
         fast = _check_unquoted(path, max_columns)
         if fast is not None:
             return fast

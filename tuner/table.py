@@ -7,11 +7,19 @@ import re
 from dataclasses import asdict, dataclass
 from typing import Any
 
+import numpy as np
 import pandas as pd
 from pandas.api import types as ptypes
 
-from tuner._columns import as_level_strings, infer_kind, to_bool_float
-from tuner._csvcheck import MAX_COLUMNS, MAX_NAME_LENGTH, check_csv
+from tuner._arrowcsv import read_plain_csv
+from tuner._columns import (
+    as_level_strings,
+    infer_kind,
+    kind_of_levels,
+    string_levels,
+    to_bool_float,
+)
+from tuner._csvcheck import MAX_COLUMNS, MAX_NAME_LENGTH, check_csv, plain_header, scan_bytes
 from tuner.errors import DatasetError
 
 KINDS = ("numeric", "categorical", "boolean", "datetime", "text")
@@ -41,7 +49,16 @@ def _fail(field: str, message: str) -> DatasetError:
 
 
 def _read_csv(path: str | os.PathLike[str], max_columns: int) -> pd.DataFrame:
-    check_csv(path, max_columns=max_columns)  # what pandas would silently repair
+    scan = scan_bytes(path)
+    if not scan.quoted and not scan.hex_prefix:
+        # A plain file: pyarrow's parser refuses ragged rows itself and uses both cores;
+        # whatever it cannot read exactly as pandas would goes down the checked path.
+        header = plain_header(path, max_columns)
+        if header is not None and len(header) > 1:  # one column: blank-line rules differ
+            frame = read_plain_csv(path, header, plus_signs=scan.plus)
+            if frame is not None:
+                return frame
+    check_csv(path, max_columns=max_columns, scan=scan)  # what pandas would silently repair
     try:
         # low_memory=False: chunked type inference would emit DtypeWarning on mixed columns.
         return pd.read_csv(path, engine="c", encoding="utf-8-sig", low_memory=False)
@@ -190,23 +207,45 @@ def read_table(
         raise _fail("file", "the file has no columns")
     if len(frame) == 0:
         raise _fail("file", "the file has a header but no data rows")
-    return pd.DataFrame({name: _normalise_column(name, frame[name]) for name in frame.columns})
+    columns, changed = {}, False
+    for name in frame.columns:
+        column = frame[name]
+        columns[name] = _normalise_column(name, column)
+        changed = changed or columns[name] is not column
+    # Nothing to convert (the usual case for CSV): keep the frame rather than copy it.
+    return pd.DataFrame(columns) if changed else frame
 
 
 def profile_column(s: pd.Series) -> ColumnProfile:
     """Profile one column (see :func:`profile_table` for the rules)."""
-    kind = infer_kind(s)
+    missing = int(s.isna().sum())
+    if isinstance(s.dtype, pd.StringDtype):
+        # Text read from a file: kind and count from the distinct values alone.
+        levels = string_levels(s)
+        kind = kind_of_levels(levels, len(s) - missing)
+        if kind != "boolean":
+            return ColumnProfile(name=str(s.name), kind=kind, missing=missing,
+                                 distinct=len(levels), dtype=str(s.dtype))
+    else:
+        kind = infer_kind(s)
     if kind == "boolean":
         # "TRUE" and "true" are one value once converted; count what the model sees.
         distinct = len(set(to_bool_float(s)[0][~s.isna().to_numpy()]))
     elif kind in ("categorical", "text") or ptypes.is_object_dtype(s.dtype):
         distinct = int(as_level_strings(s).nunique(dropna=True))
+    elif s.dtype == np.float64:
+        distinct = _distinct_floats(s.to_numpy())
     else:
         distinct = int(s.nunique(dropna=True))
-    return ColumnProfile(
-        name=str(s.name), kind=kind, missing=int(s.isna().sum()), distinct=distinct,
-        dtype=str(s.dtype),
-    )
+    return ColumnProfile(name=str(s.name), kind=kind, missing=missing, distinct=distinct,
+                         dtype=str(s.dtype))
+
+
+def _distinct_floats(values: np.ndarray) -> int:
+    """``nunique(dropna=True)`` of a float64 column, by sorting (measured a third faster
+    than pandas' hash table on a million floats); -0.0 and 0.0 count once, as there."""
+    ordered = np.sort(values[~np.isnan(values)])
+    return int(np.count_nonzero(ordered[1:] != ordered[:-1])) + int(len(ordered) > 0)
 
 
 def profile_table(df: pd.DataFrame) -> tuple[list[ColumnProfile], list[str]]:

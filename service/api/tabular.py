@@ -9,6 +9,8 @@ from collections.abc import Iterable, Sequence
 from datetime import datetime
 from typing import Any
 
+import numpy as np
+import pandas as pd
 from fastapi import Request
 from fastapi.responses import Response
 
@@ -37,3 +39,48 @@ def csv_response(header: Sequence[str], rows: Iterable[Sequence[Any]]) -> Respon
     for row in rows:
         writer.writerow([_cell(v) for v in row])
     return Response(buffer.getvalue(), media_type=CSV)
+
+
+_SPECIAL = (",", '"', "\n", "\r")
+
+
+def frame_csv(frame: pd.DataFrame) -> str:
+    """``frame.to_csv(index=False)``, faster for the columns a prediction answer holds.
+
+    pandas formats floats through NumPy's per-value string conversion, which costs more
+    than the predictions themselves on a large batch. Python's ``repr`` gives the same
+    shortest round-trip digits (checked to be identical, missing values empty as in
+    pandas), and text that needs no quoting is copied as it is. Any other column, or text
+    that would need quotes, goes to pandas.
+    """
+    header = [str(c) for c in frame.columns]
+    columns = [_cells(frame[c]) for c in frame.columns]
+    if any(c is None for c in columns) or not _plain(header) or (
+            len(columns) == 1 and "" in columns[0]):  # pandas quotes a lone empty cell
+        return frame.to_csv(index=False)
+    lines = map(",".join, zip(*columns, strict=True))  # type: ignore[arg-type]
+    return ",".join(header) + "\n" + "".join(line + "\n" for line in lines)
+
+
+def _cells(s: pd.Series) -> list[str] | None:
+    dtype = s.dtype
+    if dtype == np.float64:
+        values = s.to_numpy()
+        cells = list(map(repr, values.tolist()))
+        for i in np.flatnonzero(np.isnan(values)):
+            cells[i] = ""
+        return cells
+    if dtype in (np.int64, np.int32, np.bool_):
+        return list(map(str, s.to_numpy().tolist()))
+    if pd.api.types.is_object_dtype(dtype) or isinstance(dtype, pd.StringDtype):
+        codes, uniques = pd.factorize(s, use_na_sentinel=True)  # labels: a few distinct
+        texts = [str(u) for u in uniques]
+        if not _plain(texts):
+            return None
+        return np.asarray([*texts, ""], dtype=object)[codes].tolist()
+    return None
+
+
+def _plain(texts: list[str]) -> bool:
+    """No value needs quoting (nor starts with a space pandas would keep as is)."""
+    return not any(ch in t for t in texts for ch in _SPECIAL)

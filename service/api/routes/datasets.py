@@ -12,7 +12,7 @@ from service.api.deps import SessionDep, SettingsDep, StoreDep
 from service.api.tabular import csv_response, wants_csv
 from service.db import session_scope
 from service.schemas import DatasetOut, Page, as_utc
-from service.storage import LocalStore, sha256_file
+from service.storage import LocalStore
 from service.tables import Dataset
 
 router = APIRouter(prefix="/v1/datasets", tags=["datasets"])
@@ -34,12 +34,10 @@ def to_out(dataset: Dataset) -> DatasetOut:
 
 
 def _store_dataset(url: str, store: LocalStore, received: ingest.Received) -> DatasetOut:
-    frame, profiles, warnings = ingest.parse(received)
     dataset_id = repository.new_id("ds")
     key = f"datasets/{dataset_id}.parquet"
     with store.temp_path(".parquet") as tmp:
-        frame.to_parquet(tmp, index=False)
-        file_sha = sha256_file(tmp)
+        frame, profiles, warnings, file_sha = ingest.parse_and_store(received, tmp)
         store.put(tmp, key)
     try:
         with session_scope(url) as session:

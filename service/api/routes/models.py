@@ -12,6 +12,7 @@ from fastapi.responses import FileResponse, Response
 import tuner
 from service import ingest, repository
 from service.api.deps import SessionDep, SettingsDep, StoreDep
+from service.api.tabular import frame_csv
 from service.errors import PayloadTooLarge, Unprocessable, UnsupportedMediaType
 from service.schemas import ModelOut, PredictRequest, PredictResponse, as_utc
 from service.storage import LocalStore
@@ -79,8 +80,7 @@ def _predict_csv(predictor: tuner.Predictor, store: LocalStore, body: bytes, uns
     if explain:
         out = pd.concat([out, _contribution_columns(predictor, features)], axis=1)
     headers = {"X-Ignored-Columns": ",".join(ignored)} if ignored else None
-    return Response(out.to_csv(index=False), media_type="text/csv; charset=utf-8",
-                    headers=headers)
+    return Response(frame_csv(out), media_type="text/csv; charset=utf-8", headers=headers)
 
 
 @router.post(

@@ -1,0 +1,80 @@
+"""The pyarrow parse of plain CSV files, the hashed duplicate count and the sorted distinct
+count must give exactly what the pandas paths they replace give."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from tuner import profile_table, read_table
+from tuner._csvcheck import check_csv
+from tuner.datachecks import count_duplicate_rows
+from tuner.table import _distinct_floats, _normalise_column
+
+# Corners where pyarrow's type inference differs from pandas' C engine: each must end up
+# with the dtype and values pandas gives.
+CELLS = ["1", "-3", "+1", "1.5", "", "NA", "nan", "NAN", "x", "True", "false", "TrUe",
+         "2024-01-01", "2024-01-01 10:00", "10:00", "0x10", " 1", "1 ", "inf",
+         "99999999999999999999", "18446744073709551615", "1e+5", "None", "caf\u00e9", "  ",
+         "007", "#N/A", "<NA>", "Infinity"]
+
+
+def _pandas_reference(path) -> pd.DataFrame:
+    # Reference: the checked pandas path (pandas.read_csv, C engine) that uploads took
+    # before the pyarrow parse.
+    check_csv(path)
+    frame = pd.read_csv(path, engine="c", encoding="utf-8-sig", low_memory=False)
+    return pd.DataFrame({n: _normalise_column(n, frame[n]) for n in frame.columns})
+
+
+@pytest.mark.parametrize("cell", CELLS)
+def test_fast_parse_matches_pandas(tmp_path, cell: str) -> None:
+    rows = [f"{cell},{i},{c}" for i, c in enumerate([cell, "", cell, "2", cell])]
+    path = tmp_path / "t.csv"
+    path.write_text("a,b,c\n" + "\n".join(rows) + "\n", encoding="utf-8")
+    ours, reference = read_table(path, "csv"), _pandas_reference(path)
+    pd.testing.assert_frame_equal(ours, reference)
+    assert profile_table(ours) == profile_table(reference)
+
+
+def test_type_change_far_down_the_file(tmp_path) -> None:
+    # Integers for many blocks, then text: inference must look at the whole file.
+    path = tmp_path / "t.csv"
+    path.write_text("a,b\n" + "1,2.5\n" * 300_000 + "x,NA\n")
+    ours = read_table(path, "csv")
+    pd.testing.assert_frame_equal(ours, _pandas_reference(path))
+    assert ours["a"].dtype == "str" and ours["b"].isna().sum() == 1
+
+
+def test_ragged_row_keeps_its_line_number(tmp_path) -> None:
+    path = tmp_path / "t.csv"
+    path.write_text("a,b\n" + "1,2\n" * 100_000 + "3\n")
+    with pytest.raises(ValueError) as info:
+        read_table(path, "csv")
+    assert info.value.errors[0]["field"] == "line 100002"  # type: ignore[attr-defined]
+
+
+def test_duplicate_count_matches_pandas() -> None:
+    rng = np.random.default_rng(0)
+    for _ in range(200):
+        n = int(rng.integers(1, 60))
+        frame = pd.DataFrame({
+            "f": rng.choice([0.0, -0.0, np.nan, 1.5], n),
+            "i": rng.integers(0, 3, n),
+            "s": pd.Series(rng.choice(["a", "b", None], n), dtype="str"),
+            "c": pd.Categorical(rng.choice(["x", "y"], n)),
+            "b": rng.random(n) < 0.5,
+            "o": pd.Series(rng.choice(np.array([1, "1", None, 2.0], dtype=object), n),
+                           dtype=object),
+        })
+        cols = list(rng.choice(frame.columns, int(rng.integers(1, 7)), replace=False))
+        assert count_duplicate_rows(frame[cols]) == int(frame[cols].duplicated().sum())
+
+
+def test_distinct_floats_matches_nunique() -> None:
+    rng = np.random.default_rng(1)
+    for _ in range(500):
+        values = rng.choice([0.0, -0.0, np.nan, np.inf, -np.inf, 1.5, 1e-300],
+                            int(rng.integers(0, 12)))
+        assert _distinct_floats(values) == pd.Series(values, dtype="float64").nunique()
