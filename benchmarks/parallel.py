@@ -101,7 +101,7 @@ def run(quick: bool = False) -> list[Row]:
     return [
         _compare("2 parallel trials vs 1 on 2 threads, 1,000 rows", small, "defect", 30, 3,
                  1.3, ["firing_id"]),
-        _compare("2 parallel trials vs 1 on 2 threads, 50,000 rows", large, "target", 8, 1,
+        _compare("2 parallel trials vs 1 on 2 threads, 50,000 rows", large, "target", 10, 1,
                  1.0, [], note="; informational"),
     ]
 
