@@ -9,7 +9,7 @@ import time
 
 from benchmarks._common import Row, print_table
 
-PARTS = ("ingest", "overhead", "predict", "leaderboard")
+PARTS = ("ingest", "overhead", "predict", "leaderboard", "efficiency", "parallel")
 
 
 def main() -> int:

@@ -72,6 +72,9 @@ class JobCreate(Strict):
     objective: str | None = None
     pruner: Literal["median", "halving", "none"] = "median"
     max_parallel_trials: int = Field(default=1, ge=1, le=64)
+    # LightGBM threads this job's running trials share in one worker (divided among them,
+    # at least one each, never more than the worker's cores); default one per trial.
+    num_threads: int | None = Field(default=None, ge=1, le=64)
     selection: Literal["best", "one_se"] = "best"
     final_refit: Literal["train", "all"] = "train"
     warm_start_job_id: str | None = Field(default=None, min_length=1, max_length=64)

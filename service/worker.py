@@ -141,11 +141,12 @@ class Worker:
             started_at, max_workers = job.started_at, job.max_workers
         frame = pd.read_parquet(self.store.local_path(file_key, file_sha))
         run = build_run(request, frame, dataset_sha256=dataset_sha)
-        # Parallel trials share this worker's cores: never more trials than cores, one
-        # LightGBM thread each (tuner divides num_threads among the trials).
-        parallel = max(1, min(run.config.max_parallel_trials, os.cpu_count() or 1))
+        # Parallel trials share this worker's cores: never more trials or LightGBM threads
+        # than cores (tuner divides num_threads among the trials; default one each).
+        cores = os.cpu_count() or 1
+        parallel = max(1, min(run.config.max_parallel_trials, cores))
         config = dataclasses.replace(run.config, max_parallel_trials=parallel,
-                                     num_threads=parallel)
+                                     num_threads=min(run.config.num_threads, cores))
         if config.timeout is not None and started_at is not None:
             # budget.seconds is the job's wall-clock limit from its first start: a resumed
             # job, or a worker joining late, gets what is left of it, not a fresh one.

@@ -91,6 +91,8 @@ def check_config(data: PreparedData, config: SearchConfig) -> None:
                        "target"})
     if config.max_parallel_trials < 1:
         errors.append({"field": "max_parallel_trials", "message": "must be at least 1"})
+    if config.num_threads < 1:
+        errors.append({"field": "num_threads", "message": "must be at least 1"})
     if config.pruner not in PRUNERS:
         errors.append({"field": "pruner", "message": f"use one of {', '.join(PRUNERS)}"})
     if config.selection not in SELECTION_RULES:

@@ -68,6 +68,8 @@ def test_objective_and_metric_mismatches_name_the_fields(api: LiveApi) -> None:
                        422, "selection")
         assert_problem(client.post("/v1/jobs", json={**job, "max_parallel_trials": 0}),
                        422, "max_parallel_trials")
+        assert_problem(client.post("/v1/jobs", json={**job, "num_threads": 0}),
+                       422, "num_threads")
         assert_problem(client.post("/v1/jobs", json={**job, "warm_start_job_id": "job_nope"}),
                        422, "warm_start_job_id")
         assert client.get("/v1/jobs").json()["count"] == 0
