@@ -31,6 +31,8 @@ class Row:
     target: float
     unit: str = "s"
     note: str = ""
+    #: Reported for context only: no target of the issue, never fails --strict.
+    informational: bool = False
 
     @property
     def ratio(self) -> float:
@@ -38,7 +40,13 @@ class Row:
 
     @property
     def passed(self) -> bool:
-        return self.ratio <= self.target
+        return self.informational or self.ratio <= self.target
+
+    @property
+    def result(self) -> str:
+        if self.informational:
+            return "info"
+        return "pass" if self.passed else "FAIL"
 
 
 def median_time(fn: Callable[[], object], repeat: int) -> float:
@@ -127,7 +135,7 @@ def print_table(rows: list[Row], out: Callable[[str], None] = print) -> None:
     header = ("figure", "value", "floor", "ratio", "target", "result")
     cells = [
         (r.name, f"{r.value:.4g} {r.unit}", f"{r.floor:.4g} {r.unit}", f"{r.ratio:.2f}x",
-         f"<= {r.target:.2f}x", "pass" if r.passed else "FAIL")
+         f"<= {r.target:.2f}x", r.result)
         for r in rows
     ]
     widths = [max(len(h), *(len(c[i]) for c in cells)) if cells else len(h)
