@@ -113,10 +113,10 @@ def test_cancel_reaches_cancelled_within_one_trial(db_url: str, tmp_path: Path) 
                          60, "the job to be cancelled", pool.logs)
         took = time.monotonic() - asked
         slowest = max(t.duration_seconds or 0 for t in finished(db_url, job_id))
-    # The flag arrives with the next heartbeat (0.2 s); the trial running then is pruned
-    # at its next fold. Trials here can be as short as 0.2 s (pruned ones), so a few may
-    # finish before the flag arrives, but nothing like the 500 of the budget.
-    assert len(finished(db_url, job_id)) <= at_cancel + 4
+    # The flag arrives with the next heartbeat (0.2 s, later on a busy machine); the trial
+    # running then is pruned at its next fold. Pruned trials here take as little as 0.05 s,
+    # so several may finish before the flag arrives, but nothing like the 500 of the budget.
+    assert len(finished(db_url, job_id)) <= at_cancel + 20
     # One trial's time plus a heartbeat, with slack for a shared machine; 500 trials would
     # take minutes.
     assert took < slowest + 0.2 + 10, (took, slowest)
