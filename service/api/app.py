@@ -9,8 +9,8 @@ from fastapi import FastAPI
 from fastapi.middleware.cors import CORSMiddleware
 
 from service.api import openapi_examples, problems
-from service.api.predictors import PredictorCache
 from service.api.deps import AuthDep
+from service.api.predictors import PredictorCache
 from service.api.routes import bundle, datasets, events, health, jobs, metrics, models
 from service.api.routes import report as report_routes
 from service.auth import KeyChecker

@@ -110,7 +110,8 @@ EXAMPLES: dict[tuple[str, str], dict[str, Any]] = {
              "1,11,0.8712,0.0121,97,0.052,31\n"}}},
     ("get", "/v1/jobs/{job_id}/events"): {"responses": {}},
     ("get", "/v1/jobs/{job_id}/plots/{name}.svg"): {"responses": {"200": {
-        "image/svg+xml": '<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 640 360">…</svg>'}}},
+        "image/svg+xml":
+            '<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 640 360">…</svg>'}}},
     ("get", "/v1/jobs/{job_id}/report"): {"responses": {"200": {
         "text/html": "<!doctype html><html><head><title>Job job_5c0f9a1e2b3d4e6f</title>…"}}},
     ("get", "/v1/models/{model_id}"): {"responses": {"200": {JSON: MODEL}}},

@@ -22,8 +22,8 @@ from tuner import (
     run_search,
 )
 from tuner.metrics import get_metric
-from tuner.search import trial_attrs
 from tuner.objective import CVObjective, base_params
+from tuner.search import trial_attrs
 
 
 @pytest.fixture

@@ -6,7 +6,6 @@ from typing import Annotated, Literal
 
 import pandas as pd
 from fastapi import APIRouter, Query, Request, Response
-from fastapi.concurrency import run_in_threadpool
 from sqlalchemy.orm import Session
 
 from service import repository
