@@ -28,7 +28,6 @@ from typing import Any
 
 import lightgbm as lgb
 import numpy as np
-import optuna
 import pandas as pd
 from sklearn import datasets as skd
 from sklearn.ensemble import HistGradientBoostingClassifier, HistGradientBoostingRegressor
@@ -116,7 +115,7 @@ def _search(data: tuner.PreparedData, plan: tuner.ValidationPlan, config: tuner.
     started = time.perf_counter()
     result = tuner.run_search(data, plan, config, storage_url=url, study_name=name)
     seconds = time.perf_counter() - started
-    trials = optuna.load_study(study_name=name, storage=url).get_trials(deepcopy=False)
+    trials = tuner.load_study(url, name).get_trials(deepcopy=False)
     rounds = sum(int(trial_attrs(t).get("rounds_trained", 0)) for t in trials)
     return {"result": result, "rounds": rounds, "seconds": seconds,
             "pruned": result.n_pruned}
