@@ -17,6 +17,7 @@ The script runs in a child process with the environment a notebook has (no
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 import os
@@ -39,13 +40,16 @@ from benchmarks._common import ROOT, Row, live_server, part_main, upload_and_tun
 from examples.demo_data import kilns
 from service.jobspec import RunPlan, build_run
 from service.schemas import JobCreate
+from tuner.space import DEFAULT_SPACE, suggest
 
 optuna.logging.set_verbosity(optuna.logging.WARNING)
 
 #: What the service is asked for: two trials at once on one thread each (small tables
 #: gain nothing from a second thread per trial) and the default median pruner.
 SERVICE_JOB: dict[str, Any] = {"max_parallel_trials": 2, "pruner": "median"}
-MAX_ROUNDS, PATIENCE = 1000, 50  # tuner.SearchConfig's max_rounds and early_stopping_rounds
+# The script boosts and stops as the service's trials do (tuner.SearchConfig's defaults).
+_SEARCH = {f.name: f.default for f in dataclasses.fields(tuner.SearchConfig)}
+MAX_ROUNDS, PATIENCE = _SEARCH["max_rounds"], _SEARCH["early_stopping_rounds"]
 
 
 def _request(trials: int, seed: int) -> dict[str, Any]:
@@ -78,20 +82,10 @@ def _cv(run: RunPlan, params: dict[str, Any], threads: int, seed: int,
 
 def notebook_search(run: RunPlan, trials: int, seed: int, threads: int = 2) -> dict[str, Any]:
     """The floor: sequential TPE, ``lgb.cv`` per trial on ``threads`` threads, no pruning."""
-    cap = max(5, run.plan.min_fit_rows // 10)  # the service's min_data_in_leaf clamp
-
     def objective(trial: optuna.Trial) -> float:
-        params = {
-            "learning_rate": trial.suggest_float("learning_rate", 0.01, 0.3, log=True),
-            "num_leaves": trial.suggest_int("num_leaves", 8, 256, log=True),
-            "min_data_in_leaf": trial.suggest_int("min_data_in_leaf", 5, min(100, cap)),
-            "feature_fraction": trial.suggest_float("feature_fraction", 0.4, 1.0),
-            "bagging_fraction": trial.suggest_float("bagging_fraction", 0.4, 1.0),
-            "bagging_freq": trial.suggest_int("bagging_freq", 0, 7),
-            "lambda_l1": trial.suggest_float("lambda_l1", 1e-8, 10.0, log=True),
-            "lambda_l2": trial.suggest_float("lambda_l2", 1e-8, 10.0, log=True),
-            "min_gain_to_split": trial.suggest_float("min_gain_to_split", 1e-8, 1.0, log=True),
-        }
+        # The service's ranges exactly (its min_data_in_leaf clamp for small tables too),
+        # drawn the way a notebook would, one suggest_* per parameter.
+        params = suggest(trial, DEFAULT_SPACE, n_train_rows=run.plan.min_fit_rows)
         score, _, rounds = _cv(run, params, threads=threads, seed=seed)
         trial.set_user_attr("rounds", rounds)
         return score

@@ -9,7 +9,6 @@ until the table has parsed; a failure at any step removes what was written.
 from __future__ import annotations
 
 import hashlib
-import os
 import re
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -21,6 +20,7 @@ from starlette.datastructures import UploadFile
 
 import tuner
 from service.errors import PayloadTooLarge, Unprocessable, UnsupportedMediaType
+from service.storage import sha256_file
 from tuner.datachecks import table_warnings
 
 CSV_TYPES = {"text/csv", "application/csv", "text/plain"}
@@ -162,13 +162,6 @@ def _safe(stem: str) -> str:
     return cleaned or "dataset"
 
 
-def parse(received: Received) -> tuple[Any, list[tuner.ColumnProfile], list[str]]:
-    """Parse and profile the table; bad tables raise tuner.DatasetError (422)."""
-    frame = tuner.read_table(received.path, received.fmt)
-    profiles, warnings = profile(frame)
-    return frame, profiles, warnings
-
-
 def profile(frame: Any) -> tuple[list[tuner.ColumnProfile], list[str]]:
     """Column profiles, and the column and table warnings, of a parsed table."""
     profiles, warnings = tuner.profile_table(frame)
@@ -181,7 +174,8 @@ def parse_and_store(received: Received, dest: Path) -> tuple[
 
     The Parquet write (Arrow code, which releases the GIL) runs in a second thread beside
     the profile, so the two overlap on a machine with a core to spare. Returns the frame,
-    profiles, warnings and the sha256 of the written file (synced to disk).
+    profiles, warnings and the sha256 of the written file. Bad tables raise
+    tuner.DatasetError (422) before anything is written.
     """
     frame = tuner.read_table(received.path, received.fmt)
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="gk-parquet") as pool:
@@ -192,7 +186,7 @@ def parse_and_store(received: Received, dest: Path) -> tuple[
 
 
 def write_parquet(frame: Any, dest: Path) -> str:
-    """Write ``frame`` as Parquet (what ``to_parquet(index=False)`` reads back), synced.
+    """Write ``frame`` as Parquet (what ``to_parquet(index=False)`` reads back).
 
     Converted to Arrow one row group at a time, so the table is never held twice.
     Dictionary encoding is asked for on columns other than floats only: measured
@@ -208,9 +202,4 @@ def write_parquet(frame: Any, dest: Path) -> str:
         for start in range(0, max(len(frame), 1), ROW_GROUP):
             part = frame.iloc[start:start + ROW_GROUP]
             writer.write_table(pa.Table.from_pandas(part, schema=schema, preserve_index=False))
-    digest = hashlib.sha256()
-    with open(dest, "rb") as fh:
-        while block := fh.read(CHUNK * 8):
-            digest.update(block)
-        os.fsync(fh.fileno())  # durable before it is moved into the store
-    return digest.hexdigest()
+    return sha256_file(dest)  # ArtifactStore.put syncs the file when it moves it in
