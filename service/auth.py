@@ -9,24 +9,28 @@ from __future__ import annotations
 import hashlib
 import hmac
 import secrets
-import time
+from dataclasses import dataclass
 
 import sqlalchemy as sa
 
 from service.db import session_scope
 from service.errors import Forbidden, Unauthorized
 from service.repository import new_id
-from service.tables import ApiKey
+from service.tables import ApiKey, KeyGeneration, utcnow
 
 SCOPES = ("read", "write", "admin")
 KEY_PREFIX = "gk_"
-_CACHE_SECONDS = 5.0
 # Longer than any key we issue; longer headers are refused before hashing or a lookup.
 _MAX_KEY_LENGTH = 128
 
 
 def hash_key(secret: str) -> str:
     return hashlib.sha256(secret.encode()).hexdigest()
+
+
+def _bump_generation(session) -> None:  # type: ignore[no-untyped-def]
+    session.execute(sa.update(KeyGeneration).where(KeyGeneration.id == 1)
+                    .values(generation=KeyGeneration.generation + 1))
 
 
 def create_key(url: str, *, scope: str) -> tuple[str, str]:
@@ -36,7 +40,26 @@ def create_key(url: str, *, scope: str) -> tuple[str, str]:
     key_id = new_id("key")
     with session_scope(url) as session:
         session.add(ApiKey(id=key_id, scope=scope, key_hash=hash_key(secret)))
+        _bump_generation(session)
     return key_id, secret
+
+
+def revoke_key(url: str, key_id: str) -> bool:
+    """Revokes ``key_id``; False when no active key has that id."""
+    with session_scope(url) as session:
+        done = session.execute(
+            sa.update(ApiKey).where(ApiKey.id == key_id, ApiKey.revoked_at.is_(None))
+            .values(revoked_at=utcnow())).rowcount
+        if done:
+            _bump_generation(session)
+    return bool(done)
+
+
+def list_keys(url: str) -> list[ApiKey]:
+    with session_scope(url) as session:
+        rows = session.scalars(sa.select(ApiKey).order_by(ApiKey.created_at)).all()
+        session.expunge_all()
+        return list(rows)
 
 
 def any_key_exists(url: str) -> bool:
@@ -44,6 +67,25 @@ def any_key_exists(url: str) -> bool:
         return session.scalar(
             sa.select(sa.func.count()).select_from(ApiKey).where(ApiKey.revoked_at.is_(None))
         ) > 0
+
+
+@dataclass(frozen=True)
+class KeyState:
+    generation: int
+    active_keys: bool
+
+    @property
+    def keys_have_existed(self) -> bool:
+        return self.generation > 0
+
+
+def read_key_state(url: str) -> KeyState:
+    with session_scope(url) as session:
+        generation = session.scalar(
+            sa.select(KeyGeneration.generation).where(KeyGeneration.id == 1)) or 0
+        active = session.scalar(
+            sa.select(sa.func.count()).select_from(ApiKey).where(ApiKey.revoked_at.is_(None)))
+    return KeyState(int(generation), bool(active))
 
 
 def required_scope(method: str) -> str:
@@ -55,38 +97,53 @@ def required_scope(method: str) -> str:
 
 
 class KeyChecker:
-    """Checks a bearer key against the table, remembering answers for a few seconds."""
+    """Checks a bearer key against the table.
 
-    def __init__(self, url: str) -> None:
+    Every request reads the key generation (one primary-key lookup); answers cached for
+    an older generation are dropped, so a key created or revoked in any process counts
+    from the next request on. Without an active key, requests are let through only on a
+    server that has never had a key and listens on loopback (``open_without_keys``);
+    otherwise they are refused, so revoking every key closes the server instead of
+    opening it.
+    """
+
+    def __init__(self, url: str, *, open_without_keys: bool = True) -> None:
         self.url = url
-        self._keys_exist: tuple[float, bool] = (0.0, False)
-        self._known: dict[str, tuple[float, str | None]] = {}
+        self.open_without_keys = open_without_keys
+        self._state: KeyState | None = None
+        self._known: dict[str, str | None] = {}
 
-    def keys_exist(self) -> bool:
-        stamp, value = self._keys_exist
-        if time.monotonic() - stamp > _CACHE_SECONDS:
-            value = any_key_exists(self.url)
-            self._keys_exist = (time.monotonic(), value)
-        return value
+    def state(self) -> KeyState:
+        with session_scope(self.url) as session:
+            generation = session.scalar(
+                sa.select(KeyGeneration.generation).where(KeyGeneration.id == 1)) or 0
+        cached = self._state
+        if cached is None or cached.generation != generation:
+            self._known = {}
+            cached = self._state = read_key_state(self.url)
+        return cached
 
     def scope_of(self, secret: str) -> str | None:
         digest = hash_key(secret)
-        hit = self._known.get(digest)
-        if hit and time.monotonic() - hit[0] < _CACHE_SECONDS:
-            return hit[1]
+        if digest in self._known:
+            return self._known[digest]
         with session_scope(self.url) as session:
             row = session.scalar(sa.select(ApiKey).where(ApiKey.key_hash == digest,
                                                          ApiKey.revoked_at.is_(None)))
             # compare_digest keeps the final check constant-time even after the lookup.
             scope = row.scope if row and hmac.compare_digest(row.key_hash, digest) else None
         if len(self._known) > 1024:
-            self._known.clear()
-        self._known[digest] = (time.monotonic(), scope)
+            self._known = {}
+        self._known[digest] = scope
         return scope
 
     def check(self, method: str, authorization: str | None) -> None:
-        if not self.keys_exist():
-            return  # no key yet: serve refuses non-loopback binds in that state
+        state = self.state()
+        if not state.active_keys:
+            if self.open_without_keys and not state.keys_have_existed:
+                return  # a loopback server that never had a key: local, single-user use
+            raise Unauthorized("no active API key exists on this server; an operator must "
+                               "create one with 'grovekeeper keys create --scope admin'")
         if not authorization or not authorization.lower().startswith("bearer "):
             raise Unauthorized("send 'Authorization: Bearer <key>'")
         secret = authorization[7:].strip()

@@ -113,7 +113,7 @@ def cmd_serve(args: argparse.Namespace) -> int:
             file=sys.stderr,
         )
         return 2
-    app = create_app(settings, init=False)
+    app = create_app(settings, init=False, loopback_only=is_loopback(args.host))
     server = _Server(uvicorn.Config(app, host=args.host, port=args.port, log_level="warning",
                                     timeout_graceful_shutdown=5))
 
@@ -193,6 +193,33 @@ def cmd_keys_create(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_keys_list(args: argparse.Namespace) -> int:
+    from service.auth import list_keys
+    from service.db import init_db
+
+    settings = _settings(args)
+    settings.ensure_dirs()
+    init_db(settings.db_url)
+    print(f"{'id':<28} {'scope':<6} {'created':<20} revoked")
+    for key in list_keys(settings.db_url):
+        revoked = key.revoked_at.strftime("%Y-%m-%d %H:%M:%S") if key.revoked_at else "-"
+        print(f"{key.id:<28} {key.scope:<6} {key.created_at:%Y-%m-%d %H:%M:%S} {revoked}")
+    return 0
+
+
+def cmd_keys_revoke(args: argparse.Namespace) -> int:
+    from service.auth import revoke_key
+    from service.db import init_db
+
+    settings = _settings(args)
+    init_db(settings.db_url)
+    if not revoke_key(settings.db_url, args.key_id):
+        print(f"grovekeeper: no active key with id {args.key_id}", file=sys.stderr)
+        return 1
+    print(f"key {args.key_id} revoked", file=sys.stderr)
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="grovekeeper",
@@ -234,6 +261,14 @@ def build_parser() -> argparse.ArgumentParser:
     common(create)
     create.add_argument("--scope", choices=["read", "write", "admin"], required=True)
     create.set_defaults(func=cmd_keys_create)
+    listing = keys_sub.add_parser("list", help="list keys (ids, scopes, dates; never secrets)")
+    common(listing)
+    listing.set_defaults(func=cmd_keys_list)
+    revoke = keys_sub.add_parser("revoke", help="revoke a key; every API process stops "
+                                 "accepting it at its next request")
+    common(revoke)
+    revoke.add_argument("key_id", help="the key's id, as 'keys list' shows it")
+    revoke.set_defaults(func=cmd_keys_revoke)
 
     from service.client_cli import register  # upload, tune, board, predict, ...
 

@@ -26,10 +26,11 @@ from collections.abc import Callable
 import sqlalchemy as sa
 from sqlalchemy.engine import Connection, Engine
 
-from service.tables import Base, SchemaVersion, utcnow
+from service.tables import ApiKey, Base, KeyGeneration, SchemaVersion, utcnow
 
 # Revision 1: the foundation. Revision 2: gk_job_workers, gk_jobs.max_workers/joinable.
-SCHEMA_VERSION = 2
+# Revision 3: gk_key_generation (seeded by _seed_key_generation on every migrate).
+SCHEMA_VERSION = 3
 STEPS: dict[int, Callable[[Connection], None]] = {}
 
 
@@ -77,6 +78,7 @@ def migrate(engine: Engine) -> int:
         found = row[0] if row else (1 if _has_jobs(conn) else SCHEMA_VERSION)
         for version in sorted(v for v in STEPS if v > found):
             STEPS[version](conn)
+        _seed_key_generation(conn)
         if row is None:
             conn.execute(sa.insert(SchemaVersion).values(id=1, version=SCHEMA_VERSION,
                                                          migrated_at=utcnow()))
@@ -84,6 +86,15 @@ def migrate(engine: Engine) -> int:
             conn.execute(sa.update(SchemaVersion).where(SchemaVersion.id == 1)
                          .values(version=SCHEMA_VERSION, migrated_at=utcnow()))
     return found
+
+
+def _seed_key_generation(conn: Connection) -> None:
+    # A database from before the counter starts at its number of keys, so one that ever
+    # had a key (revoked or not) counts as having had keys.
+    if conn.execute(sa.select(KeyGeneration.id).where(KeyGeneration.id == 1)).first():
+        return
+    keys = conn.execute(sa.select(sa.func.count()).select_from(ApiKey)).scalar_one()
+    conn.execute(sa.insert(KeyGeneration).values(id=1, generation=int(keys)))
 
 
 def _has_jobs(conn: Connection) -> bool:

@@ -154,3 +154,15 @@ class ApiKey(Base):
     key_hash: Mapped[str] = mapped_column(sa.String(64), unique=True)
     created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
     revoked_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
+
+
+class KeyGeneration(Base):
+    """One row: a counter bumped in the same transaction as every key creation or
+    revocation. API processes read it on each request and drop their cached answers when
+    it moves, so a change takes effect at once everywhere. A value above zero also records
+    that keys have existed here, which revoking or deleting every key can never undo."""
+
+    __tablename__ = "gk_key_generation"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    generation: Mapped[int] = mapped_column(sa.BigInteger, default=0)

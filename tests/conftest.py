@@ -84,6 +84,7 @@ class Server:
     home: Path
     db_url: str | None = None
     workers: int = 1
+    host: str = "127.0.0.1"
     extra_env: dict[str, str] = field(default_factory=dict)
     port: int = 0
     proc: subprocess.Popen[bytes] | None = None
@@ -99,8 +100,8 @@ class Server:
         self.log_path = self.home.parent / f"server-{self.port}.log"
         log = self._log_file = open(self.log_path, "ab")  # noqa: SIM115 - closed in stop()
         self.proc = subprocess.Popen(
-            [sys.executable, "-m", "service", "serve", "--port", str(self.port),
-             "--workers", str(self.workers)],
+            [sys.executable, "-m", "service", "serve", "--host", self.host,
+             "--port", str(self.port), "--workers", str(self.workers)],
             env=child_env(self.home, self.db_url, **self.extra_env),
             stdout=log, stderr=subprocess.STDOUT, cwd=ROOT,
         )

@@ -19,8 +19,12 @@ from service.settings import Settings
 from service.storage import ArtifactStore
 
 
-def create_app(settings: Settings, *, init: bool = True) -> FastAPI:
-    """The API on ``settings``; ``init`` creates the schema (off when ``serve`` did it)."""
+def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = True) -> FastAPI:
+    """The API on ``settings``; ``init`` creates the schema (off when ``serve`` did it).
+
+    ``loopback_only`` says the server listens on loopback alone; only then may it serve
+    requests without a key, and only while no key has ever existed (service/auth.py).
+    """
 
     @asynccontextmanager
     async def lifespan(_: FastAPI) -> AsyncIterator[None]:
@@ -38,7 +42,7 @@ def create_app(settings: Settings, *, init: bool = True) -> FastAPI:
     app.state.settings = settings
     app.state.store = ArtifactStore(settings.artifacts_url, settings.tmp_dir)
     app.state.predictors = PredictorCache(app.state.store)
-    app.state.keys = KeyChecker(settings.db_url)
+    app.state.keys = KeyChecker(settings.db_url, open_without_keys=loopback_only)
     problems.install(app)
     origins = [o.strip() for o in settings.cors_origins.split(",") if o.strip()]
     if origins:  # closed by default: no CORS headers at all unless origins are configured
