@@ -38,8 +38,8 @@ import pandas as pd
 import tuner
 from benchmarks._common import ROOT, Row, live_server, part_main, upload_and_tune, worker_process
 from examples.demo_data import kilns
+from service.api.schemas import JobCreate
 from service.jobspec import RunPlan, build_run
-from service.schemas import JobCreate
 from tuner.space import DEFAULT_SPACE, suggest
 
 optuna.logging.set_verbosity(optuna.logging.WARNING)

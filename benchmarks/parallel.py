@@ -29,8 +29,8 @@ import sqlalchemy as sa
 from benchmarks._common import Row, live_server, part_main, upload_and_tune, worker_process
 from benchmarks.data import wide_table
 from examples.demo_data import kilns
+from service.api.schemas import as_utc
 from service.db import dispose_engines, session_scope
-from service.schemas import as_utc
 from service.tables import Trial
 
 TWO_AT_ONCE: dict[str, Any] = {"max_parallel_trials": 2}

@@ -35,8 +35,8 @@ from sklearn.ensemble import HistGradientBoostingClassifier, HistGradientBoostin
 import tuner
 from examples.demo_data import greenhouse, kilns
 from tuner._lgb import base_params, predict
-from tuner.search import trial_attrs
 from tuner.selection import standard_error
+from tuner.trials import trial_attrs
 
 
 @dataclass(frozen=True)

@@ -41,9 +41,9 @@ import sqlalchemy as sa
 
 from examples.demo_data import kilns
 from service import repository
+from service.api.schemas import JobCreate, as_utc
 from service.db import dispose_engines, init_db, session_scope
 from service.jobspec import build_run
-from service.schemas import JobCreate, as_utc
 from service.settings import Settings
 from service.storage import ArtifactStore, sha256_file
 from service.tables import Job, Trial

@@ -17,8 +17,8 @@ from service.db import session_scope
 from service.errors import Forbidden, Unauthorized
 from service.repository import new_id
 from service.tables import ApiKey, KeyGeneration, utcnow
+from vocabulary import SCOPES
 
-SCOPES = ("read", "write", "admin")
 KEY_PREFIX = "gk_"
 # Longer than any key we issue; longer headers are refused before hashing or a lookup.
 _MAX_KEY_LENGTH = 128

@@ -270,7 +270,7 @@ def build_parser() -> argparse.ArgumentParser:
     revoke.add_argument("key_id", help="the key's id, as 'keys list' shows it")
     revoke.set_defaults(func=cmd_keys_revoke)
 
-    from service.client_cli import register  # upload, tune, board, predict, ...
+    from client.cli import register  # upload, tune, board, predict, ...
 
     register(sub)
     return parser

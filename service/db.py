@@ -72,7 +72,7 @@ def dispose_engines(*, close: bool = True) -> None:
             engine.dispose(close=close)
         _engines.clear()
         _makers.clear()
-    from tuner._journal import dispose_engines as dispose_journal
+    from tuner.journal import dispose_engines as dispose_journal
 
     dispose_journal(close=close)
 

@@ -72,15 +72,6 @@ class Settings(BaseSettings):
             folder.mkdir(parents=True, exist_ok=True)
 
 
-class ClientSettings(BaseSettings):
-    """What the client commands (upload, tune, board, ...) need to reach a server."""
-
-    model_config = SettingsConfigDict(env_prefix="GROVEKEEPER_", extra="ignore")
-
-    url: str = "http://127.0.0.1:8000"
-    api_key: str | None = None
-
-
 @lru_cache
 def get_settings() -> Settings:
     return Settings()

@@ -16,7 +16,7 @@ import pandas as pd
 from tuner._lgb import predict
 from tuner._rows import RowEncoder
 from tuner.errors import ArtifactError
-from tuner.explain import contribution_scale, contributions
+from tuner.evaluation.explain import contribution_scale, contributions
 from tuner.model import FittedModel
 from tuner.schema import FeatureSchema
 
@@ -153,7 +153,9 @@ class Predictor:
         }
 
     def explain_frame(self, frame: pd.DataFrame) -> dict[str, Any]:
-        """Per-row TreeSHAP contributions for a frame in training form (see tuner.explain).
+        """Per-row TreeSHAP contributions for a frame in training form.
+
+        See :mod:`tuner.evaluation.explain`.
 
         Returns:
             ``{"contributions": [{"bias", "features": {name: value}}], "contribution_scale"}``;

@@ -7,11 +7,12 @@ from typing import Any
 
 import optuna
 
-from tuner.data import PreparedData
+from tuner.dataset import PreparedData
 from tuner.errors import ConfigError
 from tuner.losses import check_objective
 from tuner.selection import SELECTION_RULES
 from tuner.space import DEFAULT_SPACE, Choice, ParamRange, SearchSpace
+from vocabulary import FINAL_REFITS, PRUNERS
 
 __all__ = ["FINAL_REFITS", "PRUNERS", "SearchConfig", "check_config", "make_pruner"]
 
@@ -49,7 +50,6 @@ class SearchConfig:
 #: ``median``: prune a trial whose running mean over its first folds is worse than the
 #: median of earlier trials after as many folds. ``halving``: successive halving with
 #: folds as the resource (keep the best half at 2 and 4 folds). ``none``: no pruning.
-PRUNERS = ("median", "halving", "none")
 
 
 def make_pruner(name: str, *, n_warmup_steps: int = 0) -> optuna.pruners.BasePruner:
@@ -68,7 +68,6 @@ def make_pruner(name: str, *, n_warmup_steps: int = 0) -> optuna.pruners.BasePru
     raise ConfigError(message, [{"field": "pruner", "message": message}])
 
 
-FINAL_REFITS = ("train", "all")
 
 
 def check_config(data: PreparedData, config: SearchConfig) -> None:

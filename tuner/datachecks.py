@@ -9,7 +9,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from tuner.data import PreparedData
+from tuner.dataset import PreparedData
 from tuner.validation import ValidationPlan
 
 __all__ = ["job_warnings", "table_warnings", "single_feature_power"]

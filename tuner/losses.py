@@ -7,12 +7,12 @@ from typing import Any
 import numpy as np
 
 from tuner.errors import ConfigError
+from vocabulary import REGRESSION_OBJECTIVES
 
 #: Regression losses a job may choose with ``objective``, by LightGBM's own names.
 #: ``regression`` is squared error; ``poisson`` and ``tweedie`` model counts and skewed,
 #: non-negative amounts with a log link; ``huber`` resists outliers; ``quantile`` fits
 #: the ``alpha`` quantile (LightGBM's default alpha is 0.9, Parameters.rst).
-REGRESSION_OBJECTIVES = ("regression", "poisson", "tweedie", "huber", "quantile")
 _TASK_OBJECTIVE = {"binary": "binary", "multiclass": "multiclass"}
 # Log-link losses: their predictions are always positive, which Poisson deviance needs.
 _LOG_LINK = frozenset({"poisson", "tweedie"})

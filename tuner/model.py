@@ -9,11 +9,12 @@ from typing import Any
 import lightgbm as lgb
 
 from tuner._lgb import base_params, make_dataset, predict
-from tuner.data import PreparedData
+from tuner.config import SearchConfig
+from tuner.dataset import PreparedData
 from tuner.errors import TunerError
 from tuner.metrics import score_all
 from tuner.schema import FeatureSchema
-from tuner.search import SearchConfig, TrialRecord
+from tuner.trials import TrialRecord
 from tuner.validation import ValidationPlan
 
 __all__ = ["FittedModel", "fit_final", "predict"]

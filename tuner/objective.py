@@ -13,7 +13,7 @@ import numpy as np
 import optuna
 
 from tuner._lgb import base_params, frame_matrix, make_dataset, predict
-from tuner.data import PreparedData
+from tuner.dataset import PreparedData
 from tuner.metrics import Metric
 from tuner.space import SearchSpace, suggest
 from tuner.validation import ValidationPlan
@@ -205,7 +205,7 @@ class CVObjective:
                         raise optuna.TrialPruned(f"pruned after fold {k}")
         finally:
             # One attribute for everything, whatever the trial's outcome: each attribute
-            # is a storage write (see tuner.search.trial_attrs for the reading side).
+            # is a storage write (see tuner.trials.trial_attrs for the reading side).
             record: dict[str, Any] = {"params": params, "fold_scores": scores,
                                       "best_iterations": iterations,
                                       "train_seconds": seconds, "rounds_trained": trained}

@@ -9,11 +9,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from tuner._columns import to_bool_float, to_codes, to_epoch_seconds, to_float
+from tuner.columns import to_bool_float, to_codes, to_epoch_seconds, to_float
 from tuner.errors import MAX_ERRORS, ConfigError, PredictionInputError, summarise
-
-FEATURE_KINDS = ("numeric", "categorical", "boolean", "datetime")
-UNSEEN_POLICIES = ("error", "missing")
+from vocabulary import UNSEEN_POLICIES
 
 _EXPECTED = {
     "numeric": "expected a number",

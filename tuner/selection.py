@@ -9,11 +9,11 @@ from typing import Any
 import numpy as np
 
 from tuner.errors import ConfigError
+from vocabulary import SELECTION_RULES
 
 #: ``best``: the best mean CV score. ``one_se``: the simplest model whose mean CV score is
 #: within one standard error of the best (Breiman, Friedman, Olshen & Stone,
 #: *Classification and Regression Trees*, 1984, section 3.4.3).
-SELECTION_RULES = ("best", "one_se")
 
 
 def standard_error(fold_scores: list[float]) -> float:

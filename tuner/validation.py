@@ -13,10 +13,10 @@ from dataclasses import dataclass
 import numpy as np
 from sklearn.model_selection import GroupKFold, KFold, StratifiedKFold
 
-from tuner.data import PreparedData
+from tuner.dataset import PreparedData
 from tuner.errors import ConfigError, DatasetError
+from vocabulary import CV_STRATEGIES as STRATEGIES
 
-STRATEGIES = ("kfold", "stratified", "group", "time")
 Fold = tuple[np.ndarray, np.ndarray]
 
 

@@ -19,7 +19,7 @@ from examples.demo_data import kilns
 from service.db import session_scope
 from service.settings import Settings
 from service.tables import ApiKey, Dataset, Job, Model, Trial
-from service.worker import Worker
+from service.worker.process import Worker
 from tests.service.conftest import LiveApi, live_api
 
 PROBLEM = "application/problem+json"

@@ -16,9 +16,9 @@ import sqlalchemy as sa
 
 from examples.demo_data import kilns
 from service import repository
+from service.api.schemas import JobCreate
 from service.db import init_db, session_scope
 from service.jobspec import build_run
-from service.schemas import JobCreate
 from service.settings import Settings
 from service.storage import ArtifactStore, sha256_file
 from service.tables import Job, JobWorker, Trial

@@ -11,7 +11,7 @@ import pytest
 from service.db import session_scope
 from service.settings import Settings
 from service.tables import Job
-from service.worker import Worker
+from service.worker.process import Worker
 from tests.service.jobkit import add_dataset, add_job
 from tuner.objective import CVObjective
 

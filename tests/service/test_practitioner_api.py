@@ -16,11 +16,12 @@ import pytest
 import uvicorn
 from prometheus_client.parser import text_string_to_metric_families
 
+from client.progress import ProgressView
+from client.settings import ClientSettings
 from examples.demo_data import kilns
 from service.api.app import create_app
 from service.progress import eta_seconds
-from service.progress_view import ProgressView
-from service.settings import ClientSettings, Settings
+from service.settings import Settings
 from tests.conftest import ROOT, free_port
 from tests.service.conftest import LiveApi
 

@@ -148,7 +148,7 @@ def test_sigterm_hands_the_job_back_and_a_new_worker_resumes(db_url: str,
 
 
 def test_wall_clock_limit_ends_the_search_and_refits(db_url: str, tmp_path: Path) -> None:
-    from service.schemas import as_utc
+    from service.api.schemas import as_utc
 
     home = tmp_path / "home"
     job_id = add_job(db_url, home, add_dataset(db_url, home), budget={"seconds": 4})

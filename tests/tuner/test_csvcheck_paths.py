@@ -6,7 +6,7 @@ from __future__ import annotations
 import pytest
 
 from tuner import DatasetError
-from tuner._csvcheck import check_csv
+from tuner.io.csvcheck import check_csv
 
 CASES = [
     ("a,b,c\n1,2,3\n4,5\n6,7,8\n", "line 3"),          # short row

@@ -23,10 +23,10 @@ from tuner import (
     run_search,
 )
 from tuner._lgb import base_params, make_dataset
-from tuner._optimize import threads_per_trial
 from tuner.config import check_config
 from tuner.selection import complexity, select, standard_error
 from tuner.space import DEFAULT_SPACE, fit_into_space, merge_overrides
+from tuner.trial_loop import threads_per_trial
 
 SMALL = {"max_rounds": 30, "early_stopping_rounds": 5, "n_startup_trials": 2}
 

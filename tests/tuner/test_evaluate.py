@@ -10,8 +10,8 @@ from sklearn.calibration import calibration_curve
 from sklearn.metrics import brier_score_loss
 
 import tuner
-from tuner.diagnostics import SMALL_LEAF_ROWS, _divergence, leaf_sizes
-from tuner.evaluate import bootstrap_intervals, calibration, evaluate_model, optimism
+from tuner.evaluation.diagnostics import SMALL_LEAF_ROWS, _divergence, leaf_sizes
+from tuner.evaluation.holdout import bootstrap_intervals, calibration, evaluate_model, optimism
 
 
 def _binary(n: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
@@ -157,7 +157,7 @@ def test_evaluate_model_on_a_real_search(searched: dict) -> None:
 
 
 def test_importance_needs_two_complete_trials(tmp_path) -> None:
-    from tuner.diagnostics import hyperparameter_importance
+    from tuner.evaluation.diagnostics import hyperparameter_importance
 
     url = f"sqlite:///{tmp_path / 'one.db'}"
     study = tuner.open_study(url, "one", direction="maximize", seed=0, create=True)

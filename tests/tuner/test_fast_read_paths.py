@@ -8,9 +8,10 @@ import pandas as pd
 import pytest
 
 from tuner import profile_table, read_table
-from tuner._csvcheck import check_csv
 from tuner.datachecks import count_duplicate_rows
-from tuner.table import _distinct_floats, _normalise_column
+from tuner.io.csvcheck import check_csv
+from tuner.io.read import _normalise_column
+from tuner.profile import _distinct_floats
 
 # Corners where pyarrow's type inference differs from pandas' C engine: each must end up
 # with the dtype and values pandas gives.

@@ -20,8 +20,8 @@ import pytest
 from optuna.storages import fail_stale_trials
 from optuna.trial import TrialState
 
-from tuner._journal import TrialJournal
-from tuner.search import open_study
+from tuner.journal import TrialJournal
+from tuner.study import open_study
 
 N_PROCESSES = 3
 

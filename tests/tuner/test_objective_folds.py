@@ -17,8 +17,8 @@ from sklearn import metrics as skm
 
 from tuner import CVObjective, get_metric, plan_validation, prepare
 from tuner._lgb import base_params, make_dataset, predict
-from tuner.search import trial_attrs
 from tuner.space import DEFAULT_SPACE, LIGHTGBM_DEFAULTS, fit_into_space, merge_overrides
+from tuner.trials import trial_attrs
 
 # max_bin shapes the Dataset itself: a space that tunes it must not share one Dataset.
 SPACE = merge_overrides(DEFAULT_SPACE, {"max_bin": {"choices": [15, 255]}})

@@ -23,7 +23,7 @@ from tuner import (
 )
 from tuner.metrics import get_metric
 from tuner.objective import CVObjective, base_params
-from tuner.search import trial_attrs
+from tuner.trials import trial_attrs
 
 
 @pytest.fixture

@@ -7,11 +7,12 @@ from typing import Annotated
 from fastapi import APIRouter, Query, Request, Response
 from fastapi.concurrency import run_in_threadpool
 
-from service import ingest, repository
+from service import repository
+from service.api import ingest
 from service.api.deps import SessionDep, SettingsDep, StoreDep
+from service.api.schemas import DatasetOut, Page, as_utc
 from service.api.tabular import csv_response, wants_csv
 from service.db import session_scope
-from service.schemas import DatasetOut, Page, as_utc
 from service.storage import LocalStore
 from service.tables import Dataset
 

@@ -20,8 +20,8 @@ from fastapi.sse import EventSourceResponse, ServerSentEvent
 from service import repository
 from service.api.deps import SettingsDep
 from service.api.routes.jobs import to_out
+from service.api.schemas import TrialOut
 from service.db import session_scope
-from service.schemas import TrialOut
 from service.tables import JobStatus, Trial
 
 router = APIRouter(prefix="/v1/jobs", tags=["jobs"])

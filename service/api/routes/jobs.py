@@ -10,12 +10,7 @@ from sqlalchemy.orm import Session
 
 from service import repository
 from service.api.deps import SessionDep, SettingsDep, StoreDep
-from service.api.tabular import csv_response, wants_csv
-from service.db import session_scope
-from service.errors import NotFound, Unprocessable
-from service.jobspec import WARM_START_TRIALS, build_run
-from service.progress import eta_seconds
-from service.schemas import (
+from service.api.schemas import (
     JobCreate,
     JobOut,
     Leaderboard,
@@ -25,6 +20,11 @@ from service.schemas import (
     TrialOut,
     as_utc,
 )
+from service.api.tabular import csv_response, wants_csv
+from service.db import session_scope
+from service.errors import NotFound, Unprocessable
+from service.jobspec import WARM_START_TRIALS, build_run
+from service.progress import eta_seconds
 from service.settings import Settings
 from service.storage import LocalStore
 from service.tables import Job, JobStatus, utcnow

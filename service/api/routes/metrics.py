@@ -6,7 +6,7 @@ from fastapi import APIRouter, FastAPI, Request
 from fastapi.responses import Response
 from prometheus_client import CONTENT_TYPE_LATEST, generate_latest
 
-from service.metrics import ApiMetrics, MetricsMiddleware
+from service.telemetry import ApiMetrics, MetricsMiddleware
 
 router = APIRouter(tags=["operations"])
 

@@ -10,11 +10,12 @@ from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import FileResponse, Response
 
 import tuner
-from service import ingest, repository
+from service import repository
+from service.api import ingest
 from service.api.deps import SessionDep, SettingsDep, StoreDep
+from service.api.schemas import ModelOut, PredictRequest, PredictResponse, as_utc
 from service.api.tabular import frame_csv
 from service.errors import PayloadTooLarge, Unprocessable, UnsupportedMediaType
-from service.schemas import ModelOut, PredictRequest, PredictResponse, as_utc
 from service.storage import LocalStore
 from service.tables import Model
 

@@ -12,10 +12,10 @@ from service import repository
 from service.api.deps import SettingsDep
 from service.api.routes.jobs import to_out as job_out
 from service.api.routes.models import to_out as model_out
+from service.api.schemas import TrialOut
 from service.db import session_scope
 from service.errors import NotFound
 from service.report import page, plots
-from service.schemas import TrialOut
 
 router = APIRouter(prefix="/v1/jobs", tags=["reports"])
 PlotName = Literal["history", "hyperparameters", "features", "learning", "calibration"]

@@ -1,6 +1,6 @@
 """Column-level kind inference and conversion, shared by training and prediction.
 
-Training (:func:`tuner.data.prepare`) and prediction (:class:`tuner.schema.FeatureSchema`)
+Training (:func:`tuner.dataset.prepare`) and prediction (:class:`tuner.schema.FeatureSchema`)
 go through the same converters here, so a value becomes the same number or category
 code in both places. Each converter returns the converted values and a mask of
 non-missing values it could not convert; callers decide how to report them.
@@ -76,7 +76,7 @@ def _all_iso_datetimes(uniques: np.ndarray) -> bool:
 
 
 def infer_kind(s: pd.Series) -> str:
-    """Infer one of :data:`tuner.table.KINDS` for a column (rules in ``profile_table``)."""
+    """Infer one of :data:`tuner.io.read.KINDS` for a column (rules in ``profile_table``)."""
     dtype = s.dtype
     if ptypes.is_bool_dtype(dtype):
         return "boolean"

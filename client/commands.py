@@ -13,11 +13,10 @@ import time
 from pathlib import Path
 from typing import Any
 
-from service import client
-from service.client import Api, ClientError, fmt, table
-from service.progress_view import ProgressView
-
-FINISHED = ("succeeded", "failed", "cancelled")
+from client import http as client
+from client.http import Api, ClientError, fmt, table
+from client.progress import ProgressView
+from vocabulary import FINISHED_STATUSES as FINISHED
 
 
 def _api(args: argparse.Namespace) -> Api:

@@ -13,7 +13,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from tuner._columns import (
+from tuner.columns import (
     as_level_strings,
     infer_kind,
     levels_of,
@@ -22,22 +22,17 @@ from tuner._columns import (
     to_float,
 )
 from tuner.errors import DatasetError, summarise
+from tuner.io.read import read_table
+from tuner.profile import ColumnProfile, column_warnings, profile_column, profile_table
 from tuner.schema import FeatureSchema, FeatureSpec, convert_column
-from tuner.table import (
-    KINDS,
-    ColumnProfile,
-    column_warnings,
-    profile_column,
-    profile_table,
-    read_table,
-)
+from vocabulary import COLUMN_KINDS as KINDS
+from vocabulary import TASKS
 
 __all__ = [
     "KINDS", "TASKS", "MAX_CLASSES", "ColumnProfile", "FeatureSchema", "FeatureSpec",
     "PreparedData", "infer_task", "prepare", "profile_table", "read_table",
 ]
 
-TASKS = ("binary", "multiclass", "regression")
 #: More classes than this is almost always an identifier or a continuous value by mistake.
 MAX_CLASSES = 100
 

@@ -12,15 +12,15 @@ from typing import Any
 import numpy as np
 
 from tuner._lgb import predict
-from tuner.data import PreparedData
-from tuner.diagnostics import (
+from tuner.config import SearchConfig
+from tuner.dataset import PreparedData
+from tuner.evaluation.diagnostics import (
     hyperparameter_importance,
     leaf_sizes,
     learning_curve,
 )
 from tuner.metrics import get_metric, score_all
 from tuner.model import FittedModel
-from tuner.search import SearchConfig
 from tuner.validation import ValidationPlan
 
 __all__ = [

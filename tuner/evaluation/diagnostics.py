@@ -9,9 +9,10 @@ import numpy as np
 import optuna
 
 from tuner._lgb import make_dataset
-from tuner.data import PreparedData
+from tuner.config import SearchConfig
+from tuner.dataset import PreparedData
 from tuner.metrics import get_metric
-from tuner.search import SearchConfig, load_study
+from tuner.study import load_study
 from tuner.validation import ValidationPlan
 
 __all__ = ["hyperparameter_importance", "leaf_sizes", "learning_curve"]

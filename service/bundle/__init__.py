@@ -11,10 +11,10 @@ from typing import Any
 
 import lightgbm as lgb
 
-from service.schemas import as_utc
+from service.api.schemas import as_utc
 from service.tables import Dataset, Job, Model
 
-SNIPPET = Path(__file__).with_name("bundle_predict.py")
+SNIPPET = Path(__file__).with_name("predict_script.py")
 
 README = """Grovekeeper model {model_id} ({task}, target {target!r})
 

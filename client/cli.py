@@ -2,7 +2,7 @@
 
 ``upload``, ``datasets``, ``tune``, ``watch``, ``status``, ``cancel``, ``jobs``,
 ``board``, ``model``, ``predict``. The server comes from ``--url`` or GROVEKEEPER_URL,
-the key from ``--api-key`` or GROVEKEEPER_API_KEY (service/settings.py ClientSettings).
+the key from ``--api-key`` or GROVEKEEPER_API_KEY (client/settings.py).
 Every failure leaves with a documented exit code and one line on stderr.
 """
 
@@ -14,10 +14,10 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any, NoReturn
 
-from service import client
-from service import client_commands as jobs
-from service.client import Api, ClientError, fmt, table
-from service.settings import ClientSettings
+from client import commands as jobs
+from client import http as client
+from client.http import Api, ClientError, fmt, table
+from client.settings import ClientSettings
 
 Command = Callable[[argparse.Namespace], int]
 

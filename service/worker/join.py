@@ -1,0 +1,49 @@
+"""Joining a running job: run trials of another worker's study until its budget is spent.
+
+A joiner never creates the study, never enqueues trials and never finishes the job; its
+trouble is logged and never fails the job (see service/queue.py for when it may join).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import logging
+import traceback
+
+import tuner
+from service import queue
+from service.db import session_scope
+from service.worker import heartbeat
+from service.worker.context import WorkerContext, load_job
+from service.worker.trials import record_trial
+
+log = logging.getLogger("grovekeeper.worker")
+
+
+def join_job(ctx: WorkerContext, job_id: str) -> None:
+    flags, beat = heartbeat.start(ctx.url, job_id, ctx.worker_id, lead=False,
+                                  interval=ctx.settings.heartbeat_seconds)
+    log.info("worker %s joined job %s", ctx.worker_id, job_id)
+    try:
+        job = load_job(ctx, job_id)
+        if job.config.timeout is not None and job.config.timeout <= 1.0:
+            return  # the job's wall-clock limit is (nearly) spent: nothing to add
+        # Each process on one study samples with its own salt, so they draw different
+        # configurations.
+        salt = int(hashlib.sha256(ctx.worker_id.encode()).hexdigest()[:8], 16) | 1
+        tuner.run_search(
+            job.run.data, job.run.plan, job.config, storage_url=ctx.url,
+            study_name=job.study_name,
+            on_trial=lambda record: record_trial(ctx.url, job_id, ctx.worker_id, record),
+            should_stop=lambda: flags.cancel or flags.lost or ctx.shutdown.is_set(),
+            heartbeat_seconds=ctx.trial_heartbeat, grace_seconds=ctx.trial_grace,
+            join=True, seed_salt=salt,
+        )
+    except Exception:  # noqa: BLE001 - a joiner's trouble must not fail the job
+        log.error("worker %s on job %s (joined):\n%s", ctx.worker_id, job_id,
+                  traceback.format_exc())
+    finally:
+        heartbeat.stop(flags, beat)
+        with session_scope(ctx.url) as session:
+            queue.leave(session, job_id=job_id, worker_id=ctx.worker_id)
+    log.info("worker %s left job %s", ctx.worker_id, job_id)

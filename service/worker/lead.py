@@ -1,0 +1,105 @@
+"""Leading a job: the worker that claimed it opens or resumes the study, runs trials,
+waits for its joiners, then refits the winner and finishes the job."""
+
+from __future__ import annotations
+
+import dataclasses
+import logging
+import traceback
+from collections.abc import Callable
+
+import tuner
+from service import queue
+from service.db import session_scope
+from service.tables import JobStatus
+from service.worker import heartbeat
+from service.worker.context import WorkerContext, load_job
+from service.worker.finalise import fit_and_store
+from service.worker.trials import record_trial, resync_trials
+
+log = logging.getLogger("grovekeeper.worker")
+
+Outcome = tuple[JobStatus | None, str | None, str | None]
+
+
+def run_job(ctx: WorkerContext, job_id: str) -> None:
+    flags, beat = heartbeat.start(ctx.url, job_id, ctx.worker_id, lead=True,
+                                  interval=ctx.settings.heartbeat_seconds)
+    try:
+        status, error, model_id = _execute(ctx, job_id, flags)
+    except (tuner.TunerError, ValueError) as exc:
+        status, error, model_id = JobStatus.FAILED, str(exc), None
+        log.warning("job %s failed: %s", job_id, exc)
+    except Exception as exc:  # noqa: BLE001 - any crash must end as a failed job
+        status, error, model_id = JobStatus.FAILED, f"internal error: {exc!r}", None
+        log.error("job %s crashed:\n%s", job_id, traceback.format_exc())
+    finally:
+        heartbeat.stop(flags, beat)
+    with session_scope(ctx.url) as session:
+        if status is None:
+            queue.release(session, job_id=job_id, worker_id=ctx.worker_id)
+            log.info("job %s handed back to the queue", job_id)
+        else:
+            queue.finish(session, job_id=job_id, worker_id=ctx.worker_id, status=status,
+                         error=error, model_id=model_id)
+            log.info("job %s %s", job_id, status.value)
+
+
+def _execute(ctx: WorkerContext, job_id: str, flags: heartbeat.JobFlags) -> Outcome:
+    job = load_job(ctx, job_id)
+    run, config = job.run, job.config
+    resync_trials(ctx.url, job_id, job.study_name)
+
+    def should_stop() -> bool:
+        return flags.cancel or flags.lost or ctx.shutdown.is_set()
+
+    def open_to_joiners() -> None:
+        if job.max_workers > 1:
+            with session_scope(ctx.url) as session:
+                queue.set_joinable(session, job_id=job_id, worker_id=ctx.worker_id)
+
+    tuner.run_search(
+        run.data, run.plan, config, storage_url=ctx.url, study_name=job.study_name,
+        on_trial=lambda record: record_trial(ctx.url, job_id, ctx.worker_id, record),
+        should_stop=should_stop, heartbeat_seconds=ctx.trial_heartbeat,
+        grace_seconds=ctx.trial_grace, on_started=open_to_joiners,
+    )
+    if job.max_workers > 1:
+        with session_scope(ctx.url) as session:
+            queue.set_joinable(session, job_id=job_id, worker_id=ctx.worker_id,
+                               joinable=False)
+    if not should_stop():
+        _wait_for_joiners(ctx, job_id, should_stop)
+    if flags.lost:
+        return None, None, None  # another worker owns it now; write nothing more
+    if flags.cancel:
+        # Cancelled jobs are not refit: the trials finished so far stay ranked in the
+        # leaderboard, and a new job can be submitted with a small budget if needed.
+        return JobStatus.CANCELLED, None, None
+    if ctx.shutdown.is_set():
+        return None, None, None
+    result = tuner.close_search(ctx.url, job.study_name, direction=run.effective["direction"],
+                                selection=config.selection)
+    resync_trials(ctx.url, job_id, job.study_name)
+    if result.chosen is None:
+        return JobStatus.FAILED, "no trial completed; see the failed trials", None
+    run = dataclasses.replace(run, effective={**run.effective,
+                                              "selection_report": result.selection})
+    model_id = fit_and_store(ctx.url, ctx.store, job_id, run, result.chosen)
+    return JobStatus.SUCCEEDED, None, model_id
+
+
+def _wait_for_joiners(ctx: WorkerContext, job_id: str, should_stop: Callable[[], bool]) -> None:
+    """Let joiners finish their trials in flight, so the refit sees every trial.
+
+    A joiner stops on its own once the budget is spent; a dead one is swept after
+    the stale timeout, which bounds this wait.
+    """
+    while not should_stop():
+        with session_scope(ctx.url) as session:
+            queue.requeue_stale(session, stale_after_seconds=ctx.settings.stale_after_seconds)
+            others = [w for w in queue.participants(session, job_id=job_id)
+                      if w != ctx.worker_id]
+        if not others:
+            return
+        ctx.shutdown.wait(min(0.5, ctx.settings.poll_seconds))

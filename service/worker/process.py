@@ -1,0 +1,91 @@
+"""The worker process: a loop that claims queued jobs (or joins running ones) and runs them.
+
+Runs as its own process (``grovekeeper worker``); the API never trains. How many trials
+and LightGBM threads a job uses inside one worker is the job's to say (see
+``service/jobspec.py``); several workers on one job share its study (service/queue.py).
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import signal
+import threading
+from typing import Any
+
+from service import queue
+from service.db import init_db, session_scope
+from service.logs import log_context
+from service.settings import Settings
+from service.worker.context import WorkerContext
+from service.worker.join import join_job
+from service.worker.lead import run_job
+
+log = logging.getLogger("grovekeeper.worker")
+
+
+class Worker:
+    """One worker process's loop over the queue."""
+
+    def __init__(self, settings: Settings, *, worker_id: str | None = None) -> None:
+        self.ctx = (WorkerContext(settings, worker_id=worker_id) if worker_id
+                    else WorkerContext(settings))
+        self.settings = settings
+        self.worker_id = self.ctx.worker_id
+        self.shutdown = self.ctx.shutdown
+
+    def run_forever(self, *, parent_pid: int | None = None) -> None:
+        log.info("worker %s started on %s", self.worker_id, _redact(self.ctx.url))
+        if parent_pid is not None:
+            threading.Thread(target=self._watch_parent, args=(parent_pid,), daemon=True).start()
+        while not self.shutdown.is_set():
+            if not self.run_once():
+                self.shutdown.wait(self.settings.poll_seconds)
+        log.info("worker %s stopped", self.worker_id)
+
+    def _watch_parent(self, parent_pid: int) -> None:
+        # A worker started by ``serve`` must not outlive it (e.g. after kill -9 of serve).
+        while not self.shutdown.wait(1.0):
+            if os.getppid() != parent_pid:
+                log.warning("worker %s: parent %d is gone; stopping", self.worker_id, parent_pid)
+                self.shutdown.set()
+
+    def run_once(self) -> bool:
+        """Sweep stale claims, then claim and run one job. False when the queue is empty."""
+        url = self.ctx.url
+        with session_scope(url) as session:
+            for job_id in queue.requeue_stale(
+                session, stale_after_seconds=self.settings.stale_after_seconds
+            ):
+                log.warning("job %s: worker stopped heart-beating; back in the queue", job_id)
+        with session_scope(url) as session:
+            job_id = queue.claim_next(session, worker_id=self.worker_id)
+        if job_id is not None:
+            with log_context(job_id=job_id, worker_id=self.worker_id):  # ids on every line
+                run_job(self.ctx, job_id)
+            return True
+        with session_scope(url) as session:
+            job_id = queue.join_next(session, worker_id=self.worker_id)
+        if job_id is not None:
+            with log_context(job_id=job_id, worker_id=self.worker_id):
+                join_job(self.ctx, job_id)
+            return True
+        return False
+
+
+def _redact(url: str) -> str:
+    return url.split("@")[-1] if "@" in url else url
+
+
+def main(settings: Settings, *, parent_pid: int | None = None) -> None:
+    init_db(settings.db_url)
+    settings.ensure_dirs()
+    worker = Worker(settings)
+
+    def _stop(signum: int, _frame: Any) -> None:
+        log.info("worker %s: signal %d, finishing the current trial", worker.worker_id, signum)
+        worker.shutdown.set()
+
+    signal.signal(signal.SIGTERM, _stop)
+    signal.signal(signal.SIGINT, _stop)
+    worker.run_forever(parent_pid=parent_pid)

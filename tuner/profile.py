@@ -1,0 +1,114 @@
+"""Profiling a table's columns: kind, missing and distinct counts, doubtful columns."""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from pandas.api import types as ptypes
+
+from tuner.columns import (
+    as_level_strings,
+    infer_kind,
+    kind_of_levels,
+    string_levels,
+    to_bool_float,
+)
+
+# Rows needed before "every value is distinct" suggests an identifier rather than chance.
+_ID_MIN_ROWS = 20
+
+
+@dataclass(frozen=True)
+class ColumnProfile:
+    """What the profiler found out about one column."""
+
+    name: str
+    kind: str
+    missing: int
+    distinct: int
+    dtype: str
+
+    def to_dict(self) -> dict[str, Any]:
+        """Return the profile as a JSON-ready dict."""
+        return asdict(self)
+
+
+def profile_column(s: pd.Series) -> ColumnProfile:
+    """Profile one column (see :func:`profile_table` for the rules)."""
+    missing = int(s.isna().sum())
+    if isinstance(s.dtype, pd.StringDtype):
+        # Text read from a file: kind and count from the distinct values alone.
+        levels = string_levels(s)
+        kind = kind_of_levels(levels, len(s) - missing)
+        if kind != "boolean":
+            return ColumnProfile(name=str(s.name), kind=kind, missing=missing,
+                                 distinct=len(levels), dtype=str(s.dtype))
+    else:
+        kind = infer_kind(s)
+    if kind == "boolean":
+        # "TRUE" and "true" are one value once converted; count what the model sees.
+        distinct = len(set(to_bool_float(s)[0][~s.isna().to_numpy()]))
+    elif kind in ("categorical", "text") or ptypes.is_object_dtype(s.dtype):
+        distinct = int(as_level_strings(s).nunique(dropna=True))
+    elif s.dtype == np.float64:
+        distinct = _distinct_floats(s.to_numpy())
+    else:
+        distinct = int(s.nunique(dropna=True))
+    return ColumnProfile(name=str(s.name), kind=kind, missing=missing, distinct=distinct,
+                         dtype=str(s.dtype))
+
+
+def _distinct_floats(values: np.ndarray) -> int:
+    """``nunique(dropna=True)`` of a float64 column, by sorting (measured a third faster
+    than pandas' hash table on a million floats); -0.0 and 0.0 count once, as there."""
+    ordered = np.sort(values[~np.isnan(values)])
+    return int(np.count_nonzero(ordered[1:] != ordered[:-1])) + int(len(ordered) > 0)
+
+
+def profile_table(df: pd.DataFrame) -> tuple[list[ColumnProfile], list[str]]:
+    """Infer each column's kind and collect warnings about doubtful columns.
+
+    Kinds: ``boolean`` for bool columns and strings that are all ``true``/``false`` (any
+    case); ``numeric`` for numbers; ``datetime`` for datetimes and strings that all parse
+    as ISO-8601 dates or times; other strings are ``categorical`` when they have at most
+    ``max(2, min(1000, 0.5 * non_missing))`` distinct values, else ``text``.
+
+    Args:
+        df: A table from :func:`read_table`.
+
+    Returns:
+        The profiles in column order, and warnings naming constant columns, ID-like columns
+        (integers or strings, all distinct, at least 20 rows) and text columns, which are
+        not used as features.
+    """
+    profiles = [profile_column(df[name]) for name in df.columns]
+    return profiles, column_warnings(profiles, df)
+
+
+def column_warnings(profiles: list[ColumnProfile], df: pd.DataFrame) -> list[str]:
+    """Warnings about constant, ID-like and free-text columns among ``profiles``."""
+    warnings: list[str] = []
+    rows = len(df)
+    for p in profiles:
+        if p.distinct <= 1:
+            warnings.append(f"column '{p.name}' is constant ({p.distinct} distinct value)")
+        id_typed = p.kind in ("categorical", "text") or ptypes.is_integer_dtype(df[p.name].dtype)
+        if id_typed and p.distinct == rows and rows >= _ID_MIN_ROWS:
+            warnings.append(
+                f"column '{p.name}' looks like an identifier (every value is distinct)"
+            )
+        if p.kind == "text":
+            warnings.append(
+                f"column '{p.name}' looks like free text ({p.distinct} distinct values) "
+                "and will not be used as features"
+            )
+    return warnings
+
+
+def kinds_of(profiles: list[ColumnProfile]) -> dict[str, str]:
+    """Map column name to kind."""
+    return {p.name: p.kind for p in profiles}
+

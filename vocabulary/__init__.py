@@ -1,0 +1,42 @@
+"""The words Grovekeeper's parts share: enumerations and what each job field means.
+
+Dependency-free on purpose (standard library only): the tuner, the service and the client
+all import it, and a client machine needs no LightGBM, pandas or Optuna to use it. README,
+the CLI help and the API's request model read their choices from here, and tests check
+that they agree.
+"""
+
+from __future__ import annotations
+
+#: Kinds of learning problem a job can be.
+TASKS = ("binary", "multiclass", "regression")
+#: Column kinds an upload's profile reports.
+COLUMN_KINDS = ("numeric", "categorical", "boolean", "datetime", "text")
+#: Column kinds a model can use as features (text is reported, never used).
+FEATURE_KINDS = ("numeric", "categorical", "boolean", "datetime")
+#: Cross-validation strategies.
+CV_STRATEGIES = ("kfold", "stratified", "group", "time")
+#: Pruners that stop hopeless trials early.
+PRUNERS = ("median", "halving", "none")
+#: Rules that pick the winner among finished trials.
+SELECTION_RULES = ("best", "one_se")
+#: Rows the final model is refit on: the search rows, or every row including the hold-out.
+FINAL_REFITS = ("train", "all")
+#: Regression losses (LightGBM objectives) a regression job may ask for.
+REGRESSION_OBJECTIVES = ("regression", "poisson", "tweedie", "huber", "quantile")
+#: What prediction does with a category the model never saw.
+UNSEEN_POLICIES = ("error", "missing")
+#: States of a job (and of other queued runs).
+JOB_STATUSES = ("queued", "running", "succeeded", "failed", "cancelled")
+#: States a job ends in.
+FINISHED_STATUSES = ("succeeded", "failed", "cancelled")
+#: States of one trial.
+TRIAL_STATES = ("complete", "pruned", "failed", "running", "waiting")
+#: API key scopes, weakest first: each may do what the ones before it may.
+SCOPES = ("read", "write", "admin")
+
+__all__ = [
+    "COLUMN_KINDS", "CV_STRATEGIES", "FEATURE_KINDS", "FINAL_REFITS", "FINISHED_STATUSES",
+    "JOB_STATUSES", "PRUNERS", "REGRESSION_OBJECTIVES", "SCOPES", "SELECTION_RULES", "TASKS",
+    "TRIAL_STATES", "UNSEEN_POLICIES",
+]
