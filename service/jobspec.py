@@ -19,10 +19,11 @@ import pandas as pd
 
 import tuner
 from tuner.config import check_config
+from tuner.controls import check_fixed, constraint_params, split_fixed, try_params
 from tuner.datachecks import job_warnings
 from tuner.losses import default_metric_for, resolve_objective
 from tuner.metrics import default_metric, get_metric
-from tuner.space import DEFAULT_SPACE, effective_space, merge_overrides
+from tuner.space import DEFAULT_SPACE, Fixed, effective_space, merge_overrides
 from tuner.validation import ValidationPlan, plan_validation
 
 #: How many of an earlier job's best trials a warm start enqueues.
@@ -77,6 +78,14 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
     except tuner.SearchSpaceError as exc:
         exc.errors = _prefixed(exc.errors, "search_space.")
         raise
+    # Fixed parameters the search could tune become fixed points of the space (so trials
+    # list them); the rest, with the constraints, go to every trial and the final fit.
+    space, fixed = split_fixed(check_fixed(request.get("fixed")), space,
+                               request.get("search_space"))
+    fixed.update(constraint_params(data.schema.names, request.get("monotone"),
+                                   request.get("interaction_constraints"),
+                                   categorical={f.name for f in data.schema.features
+                                                if f.kind == "categorical"}))
     seed = int(request.get("seed", 0))
     plan = plan_validation(
         data,
@@ -103,8 +112,19 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
         selection=request.get("selection") or "best",
         final_refit=request.get("final_refit") or "train",
         warm_start=tuple(dict(p) for p in warm.get("params", [])),
+        max_rounds=int(request.get("max_rounds") or 1000),
+        early_stopping_rounds=int(request.get("early_stopping_rounds") or 50),
+        fixed_params=fixed,
     )
     check_config(data, config)  # the checks run_search repeats, here so they are 422s
+    if fixed or len(space) != len(DEFAULT_SPACE):
+        # LightGBM judges the values itself: a one-round fit on a few rows.
+        try_params(data.X.iloc[plan.train_idx], data.y[plan.train_idx], {
+            **tuner.base_params(data.task, num_class=len(data.classes or ()),
+                                metric=metric.name, seed=seed, num_threads=1,
+                                objective=objective, fixed=fixed),
+            **{k: v.value for k, v in space.items() if isinstance(v, Fixed)},
+        })
     sampled = effective_space(space, n_train_rows=plan.min_fit_rows).to_dict()
     cv_scheme = {
         "folds": len(plan.folds),
@@ -135,6 +155,13 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
         "num_threads": config.num_threads,
         "selection": config.selection,
         "final_refit": config.final_refit,
+        "fixed": dict(request.get("fixed") or {}),
+        "monotone": dict(request.get("monotone") or {}),
+        "interaction_constraints": [list(g) for g in request.get("interaction_constraints")
+                                    or ()],
+        "lightgbm_fixed": fixed,
+        "max_rounds": config.max_rounds,
+        "early_stopping_rounds": config.early_stopping_rounds,
         "warm_start": ({"job_id": warm.get("job_id"), "trials": warm.get("trials", []),
                         "params": list(config.warm_start)} if warm else None),
         "classes": data.classes,

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import re
+from collections.abc import Mapping
 from typing import Any
 
 import lightgbm as lgb
@@ -36,13 +37,16 @@ def lgb_frame(frame: pd.DataFrame) -> pd.DataFrame:
 
 
 def base_params(task: str, *, num_class: int | None, metric: str, seed: int,
-                num_threads: int, objective: str | None = None) -> dict[str, Any]:
+                num_threads: int, objective: str | None = None,
+                fixed: Mapping[str, Any] | None = None) -> dict[str, Any]:
     """Parameters every model of a search shares, whatever the trial.
 
     ``deterministic`` plus ``force_col_wise`` is what LightGBM documents as needed for
     repeatable models; ``verbosity=-1`` keeps its C++ logging out of worker output.
     ``objective`` is a regression loss of :data:`tuner.losses.REGRESSION_OBJECTIVES`
     (``None``: the task's default, see :func:`tuner.losses.resolve_objective`).
+    ``fixed`` holds the job's own fixed parameters and constraints, already checked by
+    :mod:`tuner.controls` never to touch the ones set here.
     """
     params: dict[str, Any] = {
         "objective": resolve_objective(task, metric, objective),
@@ -57,6 +61,7 @@ def base_params(task: str, *, num_class: int | None, metric: str, seed: int,
     }
     if task == "multiclass":
         params["num_class"] = num_class
+    params.update(fixed or {})
     return params
 
 

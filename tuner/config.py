@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import optuna
@@ -45,6 +45,9 @@ class SearchConfig:
     final_refit: str = "train"
     #: Parameter sets enqueued right after trial 0 (e.g. an earlier job's winners).
     warm_start: tuple[dict[str, Any], ...] = ()
+    #: LightGBM parameters every trial and the final fit share: the job's fixed ones and
+    #: its constraints (see :mod:`tuner.controls`); the search space holds the tuned ones.
+    fixed_params: dict[str, Any] = field(default_factory=dict)
 
 
 #: ``median``: prune a trial whose running mean over its first folds is worse than the
@@ -92,6 +95,10 @@ def check_config(data: PreparedData, config: SearchConfig) -> None:
         errors.append({"field": "max_parallel_trials", "message": "must be at least 1"})
     if config.num_threads < 1:
         errors.append({"field": "num_threads", "message": "must be at least 1"})
+    if config.max_rounds < 1:
+        errors.append({"field": "max_rounds", "message": "must be at least 1"})
+    if config.early_stopping_rounds < 1:
+        errors.append({"field": "early_stopping_rounds", "message": "must be at least 1"})
     if config.pruner not in PRUNERS:
         errors.append({"field": "pruner", "message": f"use one of {', '.join(PRUNERS)}"})
     if config.selection not in SELECTION_RULES:

@@ -83,7 +83,7 @@ def fit_final(data: PreparedData, plan: ValidationPlan, config: SearchConfig,
     params = {
         **base_params(data.task, num_class=len(data.classes or ()), metric=config.metric,
                       seed=config.seed, num_threads=config.num_threads,
-                      objective=config.objective),
+                      objective=config.objective, fixed=config.fixed_params),
         **best.params,
     }
     train = plan.train_idx

@@ -102,7 +102,7 @@ def run_search(
                                 metric=metric.name, seed=config.seed,
                                 num_threads=threads_per_trial(config.num_threads,
                                                               config.max_parallel_trials),
-                                objective=config.objective),
+                                objective=config.objective, fixed=config.fixed_params),
         space=config.space, max_rounds=config.max_rounds,
         early_stopping_rounds=config.early_stopping_rounds, should_stop=should_stop,
     )

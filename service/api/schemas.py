@@ -78,6 +78,16 @@ class JobCreate(Strict):
     selection: Literal["best", "one_se"] = "best"
     final_refit: Literal["train", "all"] = "train"
     warm_start_job_id: str | None = Field(default=None, min_length=1, max_length=64)
+    # LightGBM parameters held for every trial and the final fit ({name: value}); those
+    # that would break the service's guarantees are refused (README lists them).
+    fixed: dict[str, Any] | None = None
+    # {column: 1 | -1}: predictions never fall (1) or never rise (-1) as the value grows.
+    monotone: dict[str, Literal[1, -1]] | None = None
+    # Groups of columns; every tree splits on the columns of one group only.
+    interaction_constraints: list[list[str]] | None = None
+    # Boosting rounds at most per fit, and rounds without improvement before a fold stops.
+    max_rounds: int = Field(default=1000, ge=1, le=100_000)
+    early_stopping_rounds: int = Field(default=50, ge=1, le=10_000)
 
 
 class ColumnOut(BaseModel):
