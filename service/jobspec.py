@@ -68,6 +68,7 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
         weight_column=request.get("weight_column"),
         group_column=cv.get("group_column"),
         time_column=cv.get("time_column"),
+        column_kinds=request.get("column_kinds"),
     )
     objective = request.get("objective")
     metric_name = (request.get("metric") or default_metric_for(data.task, objective)
@@ -139,6 +140,7 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
         "direction": metric.direction,
         "objective": resolve_objective(data.task, metric.name, objective),
         "features": list(data.schema.names),
+        "column_kinds": dict(request.get("column_kinds") or {}),
         "weight_column": request.get("weight_column"),
         "budget": {"trials": config.n_trials, "seconds": config.timeout},
         "cv": cv_scheme,

@@ -197,3 +197,36 @@ def to_codes(s: pd.Series, levels: tuple[str, ...]) -> tuple[pd.Categorical, np.
 def levels_of(s: pd.Series) -> tuple[str, ...]:
     """Sorted distinct non-missing level strings of a column."""
     return tuple(sorted(pd.unique(as_level_strings(s).dropna().to_numpy())))
+
+
+#: Distinct values a column declared categorical may have. More levels than this mostly
+#: fit noise (each level needs its own rows) and bloat every split's search; such a
+#: column is refused with a 422 suggesting ``text`` (kept out) or ``ignore``.
+MAX_DECLARED_LEVELS = 1000
+
+
+def declared_problem(s: pd.Series, kind: str) -> str | None:
+    """Why column ``s`` cannot be the declared ``kind`` (``None`` when it can).
+
+    ``numeric`` needs every non-missing value to spell a number, ``datetime`` an ISO-8601
+    date or date-time, ``categorical`` at most :data:`MAX_DECLARED_LEVELS` distinct values.
+    """
+    if kind in ("numeric", "datetime"):
+        _, bad = to_float(s) if kind == "numeric" else to_epoch_seconds(s)
+        if bad.any():
+            shown = ", ".join(repr(level_str(v)) for v in pd.unique(s[bad].to_numpy())[:3])
+            what = "numbers" if kind == "numeric" else "ISO-8601 dates"
+            return f"{int(bad.sum())} value(s) are not {what}, e.g. {shown}"
+    if kind == "categorical":
+        distinct = int(as_level_strings(s).nunique(dropna=True))
+        if distinct > MAX_DECLARED_LEVELS:
+            return (f"{distinct} distinct values; a categorical may have at most "
+                    f"{MAX_DECLARED_LEVELS} (declare it 'text' or 'ignore' to keep it out)")
+    return None
+
+
+def as_declared(s: pd.Series, kind: str) -> pd.Series:
+    """A column as its declared kind stores it: categorical and text become strings."""
+    if kind in ("categorical", "text") and not ptypes.is_string_dtype(s.dtype):
+        return as_level_strings(s).astype("str")
+    return s

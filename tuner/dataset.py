@@ -6,7 +6,7 @@ import everything about data from one place.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -15,6 +15,7 @@ import pandas as pd
 
 from tuner.columns import (
     as_level_strings,
+    declared_problem,
     infer_kind,
     levels_of,
     to_bool_float,
@@ -23,10 +24,16 @@ from tuner.columns import (
 )
 from tuner.errors import DatasetError, summarise
 from tuner.io.read import read_table
-from tuner.profile import ColumnProfile, column_warnings, profile_column, profile_table
+from tuner.profile import (
+    ColumnProfile,
+    column_warnings,
+    declare,
+    profile_column,
+    profile_table,
+)
 from tuner.schema import FeatureSchema, FeatureSpec, convert_column
 from vocabulary import COLUMN_KINDS as KINDS
-from vocabulary import TASKS
+from vocabulary import DECLARED_KINDS, TASKS
 
 __all__ = [
     "KINDS", "TASKS", "MAX_CLASSES", "ColumnProfile", "FeatureSchema", "FeatureSpec",
@@ -204,6 +211,28 @@ def _side_columns(frame: pd.DataFrame, weight_column: str | None, group_column: 
     return weight, groups, times
 
 
+def _check_kinds(df: pd.DataFrame, target: str, features: Sequence[str] | None,
+                 kinds: dict[str, str]) -> dict[str, str]:
+    errors = []
+    for name, kind in kinds.items():
+        field = f"column_kinds.{name}"
+        if name not in df.columns:
+            errors.append(_error(field, f"column '{name}' not found"))
+        elif kind not in DECLARED_KINDS:
+            errors.append(_error(field, f"unknown kind '{kind}'; use one of "
+                                        f"{', '.join(DECLARED_KINDS)}"))
+        elif name == target:
+            errors.append(_error(field, "the target's kind follows from the task"))
+        elif kind == "ignore" and name in (features or ()):
+            errors.append(_error(field, f"'{name}' is both ignored and listed in features"))
+        else:
+            problem = declared_problem(df[name], kind)
+            if problem:
+                errors.append(_error(field, problem))
+    _raise(errors)
+    return kinds
+
+
 def prepare(
     df: pd.DataFrame,
     *,
@@ -214,6 +243,7 @@ def prepare(
     weight_column: str | None = None,
     group_column: str | None = None,
     time_column: str | None = None,
+    column_kinds: Mapping[str, str] | None = None,
 ) -> PreparedData:
     """Validate the column choices and convert the table into model-ready arrays.
 
@@ -233,13 +263,17 @@ def prepare(
         weight_column: Non-negative sample weights.
         group_column: Groups kept whole by the ``group`` validation strategy.
         time_column: Dates or numbers ordering rows for the ``time`` strategy.
+        column_kinds: ``{column: kind}`` the user declared (``vocabulary.DECLARED_KINDS``):
+            the feature takes that kind instead of the inferred one; ``text`` keeps it out
+            unless ``features`` names it, ``ignore`` always keeps it out.
 
     Returns:
         The prepared data.
 
     Raises:
         DatasetError: With ``errors`` fields ``target``, ``task``, ``features``,
-            ``exclude``, ``weight_column``, ``group_column`` or ``time_column``.
+            ``exclude``, ``weight_column``, ``group_column``, ``time_column`` or
+            ``column_kinds.<column>``.
 
     Example:
         >>> data = prepare(frame, target="fired_ok")  # doctest: +SKIP
@@ -251,6 +285,8 @@ def prepare(
     roles = {"weight_column": weight_column, "group_column": group_column,
              "time_column": time_column}
     _check_names(df, target, features, exclude, roles)
+    declared = _check_kinds(df, target, features, dict(column_kinds or {}))
+    exclude = [*(exclude or ()), *(n for n, k in declared.items() if k == "ignore")]
     warnings: list[str] = []
     keep = df[target].notna().to_numpy()
     if not keep.all():
@@ -265,7 +301,7 @@ def prepare(
     explicit = features is not None
     candidates = list(features) if explicit else [str(c) for c in frame.columns if c not in taken]
     candidates = [c for c in candidates if c not in set(exclude or ())]
-    profiles = [profile_column(frame[c]) for c in candidates]
+    profiles = [declare(profile_column(frame[c]), declared.get(c)) for c in candidates]
     for p in profiles:
         if explicit and p.kind == "text":
             warnings.append(f"column '{p.name}' looks like free text; used as a categorical "

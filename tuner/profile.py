@@ -2,7 +2,8 @@
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass
+from collections.abc import Mapping
+from dataclasses import asdict, dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -30,6 +31,8 @@ class ColumnProfile:
     missing: int
     distinct: int
     dtype: str
+    #: The kind the user declared for the column (``kind`` then follows it), else None.
+    declared: str | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """Return the profile as a JSON-ready dict."""
@@ -68,7 +71,8 @@ def _distinct_floats(values: np.ndarray) -> int:
     return int(np.count_nonzero(ordered[1:] != ordered[:-1])) + int(len(ordered) > 0)
 
 
-def profile_table(df: pd.DataFrame) -> tuple[list[ColumnProfile], list[str]]:
+def profile_table(df: pd.DataFrame, kinds: Mapping[str, str] | None = None
+                  ) -> tuple[list[ColumnProfile], list[str]]:
     """Infer each column's kind and collect warnings about doubtful columns.
 
     Kinds: ``boolean`` for bool columns and strings that are all ``true``/``false`` (any
@@ -78,14 +82,24 @@ def profile_table(df: pd.DataFrame) -> tuple[list[ColumnProfile], list[str]]:
 
     Args:
         df: A table from :func:`read_table`.
+        kinds: Kinds the user declared (``vocabulary.DECLARED_KINDS``), checked already;
+            they replace the inferred ones (``ignore`` keeps the inferred kind).
 
     Returns:
         The profiles in column order, and warnings naming constant columns, ID-like columns
         (integers or strings, all distinct, at least 20 rows) and text columns, which are
         not used as features.
     """
-    profiles = [profile_column(df[name]) for name in df.columns]
+    profiles = [declare(profile_column(df[name]), (kinds or {}).get(str(name)))
+                for name in df.columns]
     return profiles, column_warnings(profiles, df)
+
+
+def declare(profile: ColumnProfile, kind: str | None) -> ColumnProfile:
+    """``profile`` with a declared kind recorded (and taken, unless it is ``ignore``)."""
+    if kind is None:
+        return profile
+    return replace(profile, declared=kind, kind=profile.kind if kind == "ignore" else kind)
 
 
 def column_warnings(profiles: list[ColumnProfile], df: pd.DataFrame) -> list[str]:
@@ -100,7 +114,7 @@ def column_warnings(profiles: list[ColumnProfile], df: pd.DataFrame) -> list[str
             warnings.append(
                 f"column '{p.name}' looks like an identifier (every value is distinct)"
             )
-        if p.kind == "text":
+        if p.kind == "text" and p.declared is None:
             warnings.append(
                 f"column '{p.name}' looks like free text ({p.distinct} distinct values) "
                 "and will not be used as features"

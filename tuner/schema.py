@@ -9,7 +9,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from tuner.columns import to_bool_float, to_codes, to_epoch_seconds, to_float
+from tuner.columns import level_str, to_bool_float, to_codes, to_epoch_seconds, to_float
 from tuner.errors import MAX_ERRORS, ConfigError, PredictionInputError, summarise
 from vocabulary import UNSEEN_POLICIES
 
@@ -29,6 +29,14 @@ class FeatureSpec:
     name: str
     kind: str
     levels: tuple[str, ...] | None = None
+
+
+def _respelled(level: str) -> bool:
+    try:
+        number = float(level)
+    except ValueError:
+        return False
+    return level_str(number) != level
 
 
 def _short(value: Any) -> str:
@@ -83,6 +91,15 @@ class FeatureSchema:
     def names(self) -> list[str]:
         """Feature names in model order."""
         return [f.name for f in self.features]
+
+    def text_columns(self) -> list[str]:
+        """Categorical features whose levels a CSV reader must keep as written.
+
+        Levels such as ``"007"`` or ``"1.50"`` would come back as other spellings once a
+        reader took them for numbers (``7``, ``1.5``), and then match no level.
+        """
+        return [f.name for f in self.features
+                if f.kind == "categorical" and any(_respelled(v) for v in f.levels or ())]
 
     def to_dict(self) -> dict[str, Any]:
         """Return a JSON-ready dict (``{"features": [{"name", "kind", "levels"}]}``)."""

@@ -14,6 +14,8 @@ TASKS = ("binary", "multiclass", "regression")
 COLUMN_KINDS = ("numeric", "categorical", "boolean", "datetime", "text")
 #: Column kinds a model can use as features (text is reported, never used).
 FEATURE_KINDS = ("numeric", "categorical", "boolean", "datetime")
+#: Kinds a user may declare for a column (at upload or per job); ``ignore`` keeps it out.
+DECLARED_KINDS = ("numeric", "categorical", "datetime", "text", "ignore")
 #: Cross-validation strategies.
 CV_STRATEGIES = ("kfold", "stratified", "group", "time")
 #: Pruners that stop hopeless trials early.
@@ -36,7 +38,7 @@ TRIAL_STATES = ("complete", "pruned", "failed", "running", "waiting")
 SCOPES = ("read", "write", "admin")
 
 __all__ = [
-    "COLUMN_KINDS", "CV_STRATEGIES", "FEATURE_KINDS", "FINAL_REFITS", "FINISHED_STATUSES",
-    "JOB_STATUSES", "PRUNERS", "REGRESSION_OBJECTIVES", "SCOPES", "SELECTION_RULES", "TASKS",
-    "TRIAL_STATES", "UNSEEN_POLICIES",
+    "COLUMN_KINDS", "CV_STRATEGIES", "DECLARED_KINDS", "FEATURE_KINDS", "FINAL_REFITS",
+    "FINISHED_STATUSES", "JOB_STATUSES", "PRUNERS", "REGRESSION_OBJECTIVES", "SCOPES",
+    "SELECTION_RULES", "TASKS", "TRIAL_STATES", "UNSEEN_POLICIES",
 ]

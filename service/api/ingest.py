@@ -9,9 +9,10 @@ until the table has parsed; a failure at any step removes what was written.
 from __future__ import annotations
 
 import hashlib
+import json
 import re
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -21,7 +22,9 @@ from starlette.datastructures import UploadFile
 import tuner
 from service.errors import PayloadTooLarge, Unprocessable, UnsupportedMediaType
 from service.storage import sha256_file
+from tuner.columns import as_declared, declared_problem
 from tuner.datachecks import table_warnings
+from vocabulary import DECLARED_KINDS
 
 CSV_TYPES = {"text/csv", "application/csv", "text/plain"}
 PARQUET_TYPES = {"application/vnd.apache.parquet", "application/x-parquet", "application/parquet"}
@@ -48,6 +51,8 @@ class Received:
     sha256: str
     fmt: str
     name: str
+    #: Column kinds declared with the upload (``?kinds=`` or the multipart field).
+    kinds: dict[str, str] = field(default_factory=dict)
 
 
 def _media_type(value: str | None) -> str:
@@ -111,8 +116,57 @@ def sniff(path: Path, declared: str) -> str:
     return "csv"
 
 
-async def receive(request: Request, tmp: Path, *, limit: int, name: str | None) -> Received:
+def parse_kinds(text: str | None) -> dict[str, str]:
+    """``"store_id:categorical,note:ignore"`` (or a JSON object) -> ``{column: kind}``."""
+    if text is None or not text.strip():
+        return {}
+    if text.lstrip().startswith("{"):
+        try:
+            kinds = json.loads(text)
+        except ValueError as exc:
+            raise Unprocessable(f"kinds is not valid JSON: {exc}",
+                                errors=[{"field": "kinds", "message": "invalid JSON"}]) from None
+        if not isinstance(kinds, dict) or not all(isinstance(v, str) for v in kinds.values()):
+            raise Unprocessable("kinds must map column names to kinds",
+                                errors=[{"field": "kinds", "message": "expected an object"}])
+        pairs = [(str(k), v) for k, v in kinds.items()]
+    else:
+        pairs = []
+        for item in text.split(","):
+            column, sep, kind = item.rpartition(":")
+            if not sep or not column.strip():
+                raise Unprocessable(
+                    f"kinds entry {item.strip()!r} is not column:kind",
+                    errors=[{"field": "kinds", "message": f"expected column:kind, got "
+                                                          f"{item.strip()!r}"}])
+            pairs.append((column.strip(), kind.strip()))
+    errors = [{"field": f"kinds.{c}", "message": f"unknown kind '{k}'; use one of "
+                                                 f"{', '.join(DECLARED_KINDS)}"}
+              for c, k in pairs if k not in DECLARED_KINDS]
+    if errors:
+        raise Unprocessable(errors[0]["message"], errors=errors)
+    return dict(pairs)
+
+
+def check_kinds(frame: Any, kinds: dict[str, str]) -> None:
+    """Every declared column exists and its values fit its kind (422 naming each)."""
+    errors = []
+    for column, kind in kinds.items():
+        if column not in frame.columns:
+            errors.append({"field": f"kinds.{column}", "message": "no such column"})
+            continue
+        problem = declared_problem(frame[column], kind)
+        if problem:
+            errors.append({"field": f"kinds.{column}", "message": problem})
+    if errors:
+        raise Unprocessable(f"{errors[0]['field']}: {errors[0]['message']}",
+                            errors=errors)
+
+
+async def receive(request: Request, tmp: Path, *, limit: int, name: str | None,
+                  kinds: str | None = None) -> Received:
     """Copy the upload (raw body or multipart field ``file``) into ``tmp``."""
+    declared_kinds = parse_kinds(kinds)
     declared = request.headers.get("content-length")
     if declared is not None and declared.isdigit() and int(declared) > limit + (1 << 16):
         raise PayloadTooLarge(f"upload exceeds the limit of {limit // (1 << 20)} MB")
@@ -124,6 +178,9 @@ async def receive(request: Request, tmp: Path, *, limit: int, name: str | None) 
                 raise Unprocessable("multipart upload needs a file field named 'file'",
                                     errors=[{"field": "file", "message": "missing"}])
             form_name = form.get("name")
+            form_kinds = form.get("kinds")
+            if isinstance(form_kinds, str):
+                declared_kinds = {**declared_kinds, **parse_kinds(form_kinds)}
             default = Path(upload.filename or "dataset").stem[:200]
             name = clean_name(str(form_name) if isinstance(form_name, str) else name,
                               fallback=_safe(default))
@@ -140,7 +197,8 @@ async def receive(request: Request, tmp: Path, *, limit: int, name: str | None) 
             f"Content-Type {media or '(none)'} is not accepted; send text/csv, "
             "application/vnd.apache.parquet or multipart/form-data with a 'file' field"
         )
-    return Received(path=tmp, size=size, sha256=digest, fmt=sniff(tmp, fmt), name=name)
+    return Received(path=tmp, size=size, sha256=digest, fmt=sniff(tmp, fmt), name=name,
+                    kinds=declared_kinds)
 
 
 async def read_body(request: Request, *, limit: int) -> bytes:
@@ -162,9 +220,10 @@ def _safe(stem: str) -> str:
     return cleaned or "dataset"
 
 
-def profile(frame: Any) -> tuple[list[tuner.ColumnProfile], list[str]]:
+def profile(frame: Any, kinds: dict[str, str] | None = None
+            ) -> tuple[list[tuner.ColumnProfile], list[str]]:
     """Column profiles, and the column and table warnings, of a parsed table."""
-    profiles, warnings = tuner.profile_table(frame)
+    profiles, warnings = tuner.profile_table(frame, kinds)
     return profiles, warnings + table_warnings(frame)
 
 
@@ -177,10 +236,15 @@ def parse_and_store(received: Received, dest: Path) -> tuple[
     profiles, warnings and the sha256 of the written file. Bad tables raise
     tuner.DatasetError (422) before anything is written.
     """
-    frame = tuner.read_table(received.path, received.fmt)
+    text = [c for c, k in received.kinds.items() if k in ("categorical", "text")]
+    frame = tuner.read_table(received.path, received.fmt, text_columns=text)
+    if received.kinds:
+        check_kinds(frame, received.kinds)
+        for column in text:  # Parquet numbers declared categorical: stored as their text
+            frame[column] = as_declared(frame[column], received.kinds[column])
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="gk-parquet") as pool:
         written = pool.submit(write_parquet, frame, dest)
-        profiles, warnings = profile(frame)
+        profiles, warnings = profile(frame, received.kinds)
         digest = written.result()
     return frame, profiles, warnings, digest
 

@@ -78,6 +78,9 @@ class JobCreate(Strict):
     selection: Literal["best", "one_se"] = "best"
     final_refit: Literal["train", "all"] = "train"
     warm_start_job_id: str | None = Field(default=None, min_length=1, max_length=64)
+    # {column: kind} declared by the user; wins over the upload's declarations and inference.
+    column_kinds: dict[str, Literal["numeric", "categorical", "datetime", "text",
+                                    "ignore"]] | None = None
     # LightGBM parameters held for every trial and the final fit ({name: value}); those
     # that would break the service's guarantees are refused (README lists them).
     fixed: dict[str, Any] | None = None
@@ -96,6 +99,8 @@ class ColumnOut(BaseModel):
     missing: int
     distinct: int
     dtype: str | None = None
+    # The kind declared at upload (?kinds=), if any; ``kind`` then follows it.
+    declared: str | None = None
 
 
 class DatasetOut(BaseModel):

@@ -24,6 +24,10 @@ BAD = [
     ({"monotone": {"no_such_column": 1}}, "monotone.no_such_column"),
     ({"monotone": {"clay_body": 1}}, "monotone.clay_body"),  # categorical: no order
     ({"interaction_constraints": [["peak_temp_c", "nope"]]}, "interaction_constraints[0]"),
+    ({"column_kinds": {"clay_body": "numeric"}}, "column_kinds.clay_body"),
+    ({"column_kinds": {"nope": "numeric"}}, "column_kinds.nope"),
+    ({"column_kinds": {"kiln": "colour"}}, "column_kinds.kiln"),
+    ({"column_kinds": {"defect": "categorical"}}, "column_kinds.defect"),  # the target
 ]
 
 

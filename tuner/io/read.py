@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import os
 import re
+from collections.abc import Collection
 
 import pandas as pd
 from pandas.api import types as ptypes
@@ -23,9 +24,12 @@ def _fail(field: str, message: str) -> DatasetError:
     return DatasetError(message, [{"field": field, "message": message}])
 
 
-def _read_csv(path: str | os.PathLike[str], max_columns: int) -> pd.DataFrame:
+def _read_csv(path: str | os.PathLike[str], max_columns: int,
+              text_columns: Collection[str] = ()) -> pd.DataFrame:
     scan = scan_bytes(path)
-    if not scan.quoted and not scan.hex_prefix:
+    # Columns declared text keep their characters ("007" stays "007"): pandas reads them
+    # as strings; the fast path infers types for every column, so it steps aside.
+    if not scan.quoted and not scan.hex_prefix and not text_columns:
         # A plain file: pyarrow's parser refuses ragged rows itself and uses both cores;
         # whatever it cannot read exactly as pandas would goes down the checked path.
         header = plain_header(path, max_columns)
@@ -36,7 +40,8 @@ def _read_csv(path: str | os.PathLike[str], max_columns: int) -> pd.DataFrame:
     check_csv(path, max_columns=max_columns, scan=scan)  # what pandas would silently repair
     try:
         # low_memory=False: chunked type inference would emit DtypeWarning on mixed columns.
-        return pd.read_csv(path, engine="c", encoding="utf-8-sig", low_memory=False)
+        return pd.read_csv(path, engine="c", encoding="utf-8-sig", low_memory=False,
+                           dtype=dict.fromkeys(text_columns, "str") or None)
     except pd.errors.EmptyDataError:
         raise _fail("file", "the file is empty") from None
     except pd.errors.ParserError as exc:
@@ -149,7 +154,8 @@ def _all_ints(s: pd.Series) -> bool:
 
 
 def read_table(
-    path: str | os.PathLike[str], fmt: str, *, max_columns: int = MAX_COLUMNS
+    path: str | os.PathLike[str], fmt: str, *, max_columns: int = MAX_COLUMNS,
+    text_columns: Collection[str] = (),
 ) -> pd.DataFrame:
     """Read an uploaded CSV or Parquet file into a DataFrame with default dtypes.
 
@@ -158,6 +164,8 @@ def read_table(
         fmt: ``"csv"`` (UTF-8, comma-separated, a byte-order mark is tolerated) or
             ``"parquet"``.
         max_columns: Wider tables are refused (default ``MAX_COLUMNS``, 2000).
+        text_columns: CSV columns read as text exactly as written (leading zeros kept),
+            whatever they look like; names the file lacks are ignored.
 
     Returns:
         The table; text columns use pandas' ``str`` dtype, never pyarrow-backed dtypes.
@@ -173,7 +181,7 @@ def read_table(
         >>> frame = read_table("upload.csv", "csv")  # doctest: +SKIP
     """
     if fmt == "csv":
-        frame = _read_csv(path, max_columns)
+        frame = _read_csv(path, max_columns, text_columns)
     elif fmt == "parquet":
         frame = _read_parquet(path, max_columns)
     else:

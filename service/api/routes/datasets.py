@@ -82,7 +82,8 @@ def _store_dataset(url: str, store: LocalStore, received: ingest.Received) -> Da
                     "schema": {
                         "type": "object",
                         "properties": {"file": {"type": "string", "format": "binary"},
-                                       "name": {"type": "string"}},
+                                       "name": {"type": "string"},
+                                       "kinds": {"type": "string"}},
                         "required": ["file"],
                     }
                 },
@@ -96,10 +97,15 @@ async def upload_dataset(
     settings: SettingsDep,
     store: StoreDep,
     name: Annotated[str | None, Query(max_length=200)] = None,
+    kinds: Annotated[str | None, Query(
+        max_length=20_000,
+        description="Declared column kinds, `column:kind,...` (numeric, categorical, "
+                    "datetime, text, ignore); categorical and text columns keep their "
+                    "text exactly, leading zeros included")] = None,
 ) -> DatasetOut:
     limit = settings.max_upload_mb * (1 << 20)
     with store.temp_path(".upload") as tmp:
-        received = await ingest.receive(request, tmp, limit=limit, name=name)
+        received = await ingest.receive(request, tmp, limit=limit, name=name, kinds=kinds)
         out = await run_in_threadpool(_store_dataset, settings.db_url, store, received)
     response.headers["Location"] = f"/v1/datasets/{out.id}"
     return out

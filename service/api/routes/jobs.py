@@ -103,6 +103,14 @@ def _submit(settings: Settings, store: LocalStore, body: JobCreate) -> JobOut:
                                                    "message": "no such dataset"}]) from exc
         key, sha = dataset.file_key, dataset.file_sha256
         dataset_sha = dataset.sha256
+        # Kinds declared at upload hold for every job on the dataset unless the job says
+        # otherwise; stored in the request so the worker sees the same.
+        named = set(body.features or ())
+        uploaded = {c["name"]: c["declared"] for c in dataset.columns or []
+                    if c.get("declared") and c["name"] != body.target
+                    and not (c["declared"] == "ignore" and c["name"] in named)}
+        if uploaded:
+            request["column_kinds"] = {**uploaded, **(request.get("column_kinds") or {})}
         warm_task = None
         if body.warm_start_job_id is not None:
             # Resolved now and stored in the request, so the worker enqueues exactly these.

@@ -48,12 +48,12 @@ def get_model_file(model_id: str, session: SessionDep, store: StoreDep) -> FileR
                         filename=f"{model_id}.txt", headers={"X-Model-Sha256": model.sha256})
 
 
-def _read_csv_rows(store: LocalStore, body: bytes) -> pd.DataFrame:
+def _read_csv_rows(store: LocalStore, body: bytes, text_columns: list[str]) -> pd.DataFrame:
     # The same reader as uploads, so a ragged row or a duplicate column is refused with its
     # line number here too instead of being repaired by pandas.
     with store.temp_path(".csv") as tmp:
         tmp.write_bytes(body)
-        return tuner.read_table(tmp, "csv")
+        return tuner.read_table(tmp, "csv", text_columns=text_columns)
 
 
 def _contribution_columns(predictor: tuner.Predictor, features: pd.DataFrame) -> pd.DataFrame:
@@ -73,7 +73,7 @@ def _predict_csv(predictor: tuner.Predictor, store: LocalStore, body: bytes, uns
     if not body.strip():
         raise Unprocessable("the CSV body is empty; send a header row and at least one row",
                             errors=[{"field": "body", "message": "empty"}])
-    frame = _read_csv_rows(store, body)
+    frame = _read_csv_rows(store, body, predictor.schema.text_columns())
     if len(frame) > limit:
         raise PayloadTooLarge(f"at most {limit} rows per request; got {len(frame)}")
     features, ignored = predictor.schema.frame_from_table(frame, unseen=unseen)
