@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import secrets
 from collections.abc import Sequence
+from datetime import datetime
 from typing import Any
 
 import sqlalchemy as sa
@@ -170,3 +171,32 @@ def get_model(session: Session, model_id: str) -> Model:
     if model is None:
         raise NotFound(f"no model with id {model_id!r}")
     return model
+
+
+def list_models(
+    session: Session, *, dataset_id: str | None, job_id: str | None, target: str | None,
+    limit: int, after: tuple[datetime, str] | None,
+) -> tuple[Sequence[tuple[Model, str]], int]:
+    """Models newest first (ties by id), each with its job's dataset id; and the total.
+
+    ``after`` is the (created_at, id) of the last model of the previous page: keyset
+    paging, so models stored while a caller pages never shift or repeat a page.
+    """
+    where: list[Any] = []
+    if dataset_id is not None:
+        where.append(Job.dataset_id == dataset_id)
+    if job_id is not None:
+        where.append(Model.job_id == job_id)
+    if target is not None:
+        where.append(Model.target == target)
+    base = sa.select(Model, Job.dataset_id).join(Job, Job.id == Model.job_id).where(*where)
+    total = session.scalar(
+        sa.select(sa.func.count()).select_from(Model).join(Job, Job.id == Model.job_id)
+        .where(*where)) or 0
+    if after is not None:
+        stamp, last_id = after
+        base = base.where(sa.or_(Model.created_at < stamp,
+                                 sa.and_(Model.created_at == stamp, Model.id < last_id)))
+    rows = session.execute(
+        base.order_by(Model.created_at.desc(), Model.id.desc()).limit(limit)).all()
+    return [(m, d) for m, d in rows], total

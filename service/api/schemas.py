@@ -208,6 +208,30 @@ class ModelOut(BaseModel):
     created_at: datetime
 
 
+class ModelSummary(BaseModel):
+    """A model as listed: enough to choose one; ``GET /v1/models/{id}`` has the rest."""
+
+    id: str
+    job_id: str
+    dataset_id: str
+    task: str
+    metric: str
+    target: str
+    boosting_rounds: int
+    trial_number: int
+    cv: dict[str, Any]
+    holdout: dict[str, Any]
+    sha256: str
+    created_at: datetime
+
+
+class ModelList(BaseModel):
+    items: list[ModelSummary]
+    total: int
+    # Pass as ?cursor= for the next page; null on the last page.
+    next: str | None = None
+
+
 class PredictRequest(Strict):
     model_config = ConfigDict(
         extra="forbid",
@@ -215,6 +239,8 @@ class PredictRequest(Strict):
     )
 
     rows: list[dict[str, Any]] = Field(min_length=1)
+    # Input columns to return unchanged beside each prediction (also ?keep=a,b).
+    keep: list[str] | None = None
 
 
 class PredictResponse(BaseModel):
@@ -226,3 +252,5 @@ class PredictResponse(BaseModel):
     # With ?explain=true: per row {"bias", "features": {name: value}} (TreeSHAP).
     contributions: list[dict[str, Any]] | None = None
     contribution_scale: str | None = None
+    # With keep: per row, the kept columns as sent, aligned with predictions.
+    kept: list[dict[str, Any]] | None = None
