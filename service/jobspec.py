@@ -18,6 +18,7 @@ import optuna
 import pandas as pd
 
 import tuner
+from tuner.columns import date_part_name
 from tuner.config import check_config
 from tuner.controls import check_fixed, constraint_params, split_fixed, try_params
 from tuner.datachecks import job_warnings
@@ -83,10 +84,14 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
     # list them); the rest, with the constraints, go to every trial and the final fit.
     space, fixed = split_fixed(check_fixed(request.get("fixed")), space,
                                request.get("search_space"))
-    fixed.update(constraint_params(data.schema.names, request.get("monotone"),
-                                   request.get("interaction_constraints"),
-                                   categorical={f.name for f in data.schema.features
-                                                if f.kind == "categorical"}))
+    fixed.update(constraint_params(
+        data.schema.names, request.get("monotone"), request.get("interaction_constraints"),
+        # A date column stands for its calendar parts in a group, for its elapsed time
+        # when monotone (its weekday has no direction).
+        columns={f.name: f.model_names for f in data.schema.features if f.parts},
+        monotone_columns={f.name: [date_part_name(f.name, "elapsed_days")]
+                          for f in data.schema.features if f.parts},
+        categorical={f.name for f in data.schema.features if f.kind == "categorical"}))
     seed = int(request.get("seed", 0))
     plan = plan_validation(
         data,

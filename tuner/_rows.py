@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 import re
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from typing import Any
 
 import lightgbm as lgb
@@ -30,9 +30,11 @@ class RowEncoder:
     """Encodes rows for one model; usable only when the model's levels are the schema's."""
 
     def __init__(self, schema: FeatureSchema, booster: lgb.Booster) -> None:
-        self.names = list(schema.names)
+        self.names = list(schema.columns)
         self.known = set(self.names)
+        self.width = len(schema.names)
         self.kinds = [f.kind for f in schema.features]
+        self.parts = [f.parts for f in schema.features]
         self.codes: list[dict[str, float] | None] = [
             {level: float(i) for i, level in enumerate(f.levels or ())}
             if f.kind == "categorical" else None
@@ -46,21 +48,41 @@ class RowEncoder:
         """``(matrix, ignored keys)``, or ``None`` when a row needs full validation."""
         if not self.enabled or not isinstance(rows, list) or not rows:
             return None
-        out = np.empty((len(rows), len(self.names)), dtype=np.float64)
+        out = np.empty((len(rows), self.width), dtype=np.float64)
         ignored: set[str] = set()
         for i, row in enumerate(rows):
             if not isinstance(row, dict):
                 return None
             if len(row) != len(self.names) or not self.known.issuperset(row):
                 ignored.update(str(k) for k in row if k not in self.known)
+            col = 0
             for j, name in enumerate(self.names):
                 if name not in row:
                     return None
                 value = _encode(row[name], self.kinds[j], self.codes[j])
                 if value is None:
                     return None
-                out[i, j] = value
+                parts = self.parts[j]
+                if parts:
+                    for part in parts:
+                        out[i, col] = _date_part(value, part)
+                        col += 1
+                else:
+                    out[i, col] = value
+                    col += 1
         return out, sorted(ignored)
+
+
+def _date_part(seconds: float, part: str) -> float:
+    """One calendar part from epoch seconds, as ``tuner.columns.to_date_parts`` gives it
+    (Python's weekday() counts from Monday 0, as pandas' does)."""
+    if math.isnan(seconds):
+        return math.nan
+    if part == "elapsed_days":
+        return seconds / 86400.0
+    stamp = _EPOCH + timedelta(seconds=seconds)
+    return float({"weekday": stamp.weekday(), "day": stamp.day, "month": stamp.month,
+                  "hour": stamp.hour}[part])
 
 
 def _encode(value: Any, kind: str, codes: dict[str, float] | None) -> float | None:

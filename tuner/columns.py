@@ -155,22 +155,71 @@ def to_bool_float(s: pd.Series) -> tuple[np.ndarray, np.ndarray]:
     return out, bad
 
 
-def to_epoch_seconds(s: pd.Series) -> tuple[np.ndarray, np.ndarray]:
-    """Convert to float seconds since 1970-01-01 UTC; naive times are taken as UTC."""
+def to_utc_stamps(s: pd.Series) -> tuple[pd.Series, np.ndarray]:
+    """Convert to UTC timestamps; naive times are taken as UTC. Returns the mask of bad
+    values (present but not an ISO-8601 date or date-time)."""
     if ptypes.is_datetime64_any_dtype(s.dtype):
         stamps = s.dt.tz_convert("UTC") if s.dt.tz is not None else s.dt.tz_localize("UTC")
-        bad = np.zeros(len(s), dtype=bool)
-    else:
-        values = s.astype(object)
-        missing = values.isna().to_numpy()
-        text = values.where(missing, values.map(lambda v: v if isinstance(v, str) else str(v)))
-        ok = text.map(lambda v: isinstance(v, str) and bool(_ISO_RE.match(v.strip())))
-        stamps = pd.to_datetime(
-            text.where(ok).str.strip(), format="ISO8601", utc=True, errors="coerce"
-        )
-        bad = ~missing & stamps.isna().to_numpy()
+        return stamps, np.zeros(len(s), dtype=bool)
+    values = s.astype(object)
+    missing = values.isna().to_numpy()
+    text = values.where(missing, values.map(lambda v: v if isinstance(v, str) else str(v)))
+    ok = text.map(lambda v: isinstance(v, str) and bool(_ISO_RE.match(v.strip())))
+    stamps = pd.to_datetime(
+        text.where(ok).str.strip(), format="ISO8601", utc=True, errors="coerce"
+    )
+    return stamps, ~missing & stamps.isna().to_numpy()
+
+
+def to_epoch_seconds(s: pd.Series) -> tuple[np.ndarray, np.ndarray]:
+    """Convert to float seconds since 1970-01-01 UTC; naive times are taken as UTC."""
+    stamps, bad = to_utc_stamps(s)
     seconds = (stamps - _EPOCH).dt.total_seconds().to_numpy(dtype="float64", copy=True)
     return seconds, bad
+
+
+#: Calendar parts a date column contributes as features, in this order: day of the week
+#: (Monday 0), day of the month, month, hour (only when the column has times of day) and
+#: days elapsed since 1970-01-01, all in UTC (naive times are taken as UTC).
+DATE_PARTS = ("weekday", "day", "month", "hour", "elapsed_days")
+# The pandas accessor behind each part (``.dt.weekday`` is deprecated for ``day_of_week``).
+_DT_ACCESSORS = {"weekday": "day_of_week", "day": "day", "month": "month", "hour": "hour"}
+
+
+def date_parts_of(s: pd.Series) -> tuple[str, ...]:
+    """The parts a date column contributes: :data:`DATE_PARTS`, less ``hour`` when every
+    value is a bare date (midnight)."""
+    stamps, _ = to_utc_stamps(s)
+    timed = bool((stamps.dropna() != stamps.dropna().dt.normalize()).any())
+    return tuple(p for p in DATE_PARTS if p != "hour" or timed)
+
+
+def date_part_name(column: str, part: str) -> str:
+    """The feature name of one calendar part, e.g. ``order_date.weekday``."""
+    return f"{column}.{part}"
+
+
+def to_date_parts(s: pd.Series, parts: tuple[str, ...]
+                  ) -> tuple[dict[str, np.ndarray], np.ndarray]:
+    """Calendar parts of a date column as float arrays (NaN where missing or bad).
+
+    The one conversion training and prediction share; the values are pandas' own ``.dt``
+    accessors (``day_of_week``, ``day``, ``month``, ``hour``) of the UTC timestamps, and
+    elapsed days are epoch seconds / 86400.
+    """
+    stamps, bad = to_utc_stamps(s)
+    out: dict[str, np.ndarray] = {}
+    for part in parts:
+        if part == "elapsed_days":
+            seconds = (stamps - _EPOCH).dt.total_seconds()
+            values = seconds.to_numpy(dtype="float64", copy=True) / 86400.0
+        elif part in _DT_ACCESSORS:
+            accessor = getattr(stamps.dt, _DT_ACCESSORS[part])
+            values = accessor.to_numpy(dtype="float64", na_value=np.nan)
+        else:
+            raise ValueError(f"unknown date part '{part}'")
+        out[part] = values
+    return out, bad
 
 
 def to_codes(s: pd.Series, levels: tuple[str, ...]) -> tuple[pd.Categorical, np.ndarray]:

@@ -107,6 +107,14 @@ def check_config(data: PreparedData, config: SearchConfig) -> None:
     if config.final_refit not in FINAL_REFITS:
         errors.append({"field": "final_refit",
                        "message": f"use one of {', '.join(FINAL_REFITS)}"})
+    if "scale_pos_weight" in config.space and "is_unbalance" in config.space:
+        errors.append({"field": "search_space.scale_pos_weight",
+                       "message": "use is_unbalance or scale_pos_weight, not both (LightGBM "
+                                  "refuses the pair)"})
+    for name in ("scale_pos_weight", "is_unbalance"):
+        if name in config.space and config.task != "binary":
+            errors.append({"field": f"search_space.{name}",
+                           "message": "weighs the positive class of a binary task only"})
     alpha = config.space.get("alpha")
     if config.objective == "quantile" and alpha is not None:
         if isinstance(alpha, ParamRange):

@@ -160,6 +160,7 @@ def check_fixed(fixed: Mapping[str, Any] | None) -> dict[str, Any]:
 def constraint_params(features: Sequence[str], monotone: Mapping[str, Any] | None,
                       interactions: Sequence[Sequence[str]] | None,
                       *, columns: Mapping[str, Sequence[str]] | None = None,
+                      monotone_columns: Mapping[str, Sequence[str]] | None = None,
                       categorical: Collection[str] = ()) -> dict[str, Any]:
     """LightGBM's ``monotone_constraints`` / ``interaction_constraints`` in feature order.
 
@@ -169,6 +170,7 @@ def constraint_params(features: Sequence[str], monotone: Mapping[str, Any] | Non
         interactions: Groups of columns; a tree's splits all come from one group.
         columns: Table column -> the features derived from it (a date's calendar parts);
             a column named here stands for all of them. Features map to themselves.
+        monotone_columns: Like ``columns``, for ``monotone`` (a date: its elapsed days).
         categorical: Categorical features, which have no order to be monotone in.
 
     Returns:
@@ -181,7 +183,8 @@ def constraint_params(features: Sequence[str], monotone: Mapping[str, Any] | Non
     index = {name: i for i, name in enumerate(features)}
     derived = dict(columns or {})
 
-    def positions(name: str) -> list[int] | None:
+    def positions(name: str, derived: Mapping[str, Sequence[str]] = derived
+                  ) -> list[int] | None:
         if name in index:
             return [index[name]]
         if name in derived and all(f in index for f in derived[name]):
@@ -194,7 +197,7 @@ def constraint_params(features: Sequence[str], monotone: Mapping[str, Any] | Non
         directions = [0] * len(features)
         for name, direction in monotone.items():
             field = f"monotone.{name}"
-            where = positions(str(name))
+            where = positions(str(name), dict(monotone_columns or {}))
             if where is None:
                 errors.append({"field": field, "message": f"'{name}' is not a feature of "
                                                          "this job"})

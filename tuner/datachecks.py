@@ -10,6 +10,7 @@ import numpy as np
 import pandas as pd
 
 from tuner.dataset import PreparedData
+from tuner.metrics import METRICS
 from tuner.validation import ValidationPlan
 
 __all__ = ["job_warnings", "table_warnings", "single_feature_power"]
@@ -206,8 +207,30 @@ def _imbalance(data: PreparedData) -> str | None:
     if small / counts.sum() >= MINORITY_SHARE and small >= MINORITY_ROWS:
         return None
     listing = ", ".join(f"{c!r}: {int(k)}" for c, k in zip(data.classes, counts, strict=True))
+    metrics = "roc_auc, average_precision or log_loss" if "average_precision" in METRICS \
+        else "roc_auc or log_loss"
+    if data.task == "binary":
+        ratio = counts[0] / max(counts[1], 1)
+        act = (f"to weigh the rare class up, try fixed {{\"is_unbalance\": true}} or search "
+               f"scale_pos_weight (search_space {{\"scale_pos_weight\": {{\"low\": 1, "
+               f"\"high\": {max(ratio, 1.0):.3g}}}}}, about negatives / positives at the top)")
+    else:
+        act = ("to weigh rare classes up, give rows a weight_column (for example "
+               "total rows / (classes x rows of the row's class))")
     return (f"the target '{data.target}' is heavily imbalanced ({listing}); accuracy flatters "
-            "such data, prefer roc_auc or log_loss, and expect wide intervals")
+            f"such data, prefer {metrics}, and expect wide intervals; {act}. Weighting "
+            "changes predicted probabilities: read them as scores, not frequencies")
+
+
+def _dates_without_time_folds(data: PreparedData, plan: ValidationPlan) -> str | None:
+    dated = [f.name for f in data.schema.features if f.kind == "datetime"]
+    if not dated or plan.strategy == "time":
+        return None
+    names = ", ".join(repr(n) for n in dated)
+    return (f"column(s) {names} hold dates but the folds are {plan.strategy}, not in time "
+            "order: a model may learn from rows later than those it is scored on and look "
+            "better than it will on future rows; use cv.strategy 'time' with cv.time_column "
+            "to score each fold on later rows only")
 
 
 def job_warnings(data: PreparedData, plan: ValidationPlan, *, seed: int = 0) -> list[str]:
@@ -223,7 +246,8 @@ def job_warnings(data: PreparedData, plan: ValidationPlan, *, seed: int = 0) -> 
             out.append(f"column '{name}' alone explains {power[str(name)]:.1%} of the target "
                        f"'{data.target}': likely leakage (a value known only after the "
                        "outcome); check it, or exclude it")
-    for message in (_duplicates_across(data, plan), _imbalance(data)):
+    for message in (_duplicates_across(data, plan), _imbalance(data),
+                    _dates_without_time_folds(data, plan)):
         if message:
             out.append(message)
     n_search, n_features = len(plan.train_idx), len(data.schema.names)

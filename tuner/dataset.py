@@ -15,6 +15,7 @@ import pandas as pd
 
 from tuner.columns import (
     as_level_strings,
+    date_parts_of,
     declared_problem,
     infer_kind,
     levels_of,
@@ -31,7 +32,7 @@ from tuner.profile import (
     profile_column,
     profile_table,
 )
-from tuner.schema import FeatureSchema, FeatureSpec, convert_column
+from tuner.schema import FeatureSchema, FeatureSpec, convert_feature
 from vocabulary import COLUMN_KINDS as KINDS
 from vocabulary import DECLARED_KINDS, TASKS
 
@@ -250,7 +251,8 @@ def prepare(
     Rows with a missing target are dropped (with a warning). By default every column except
     the target, weight, group and time columns is a feature, minus ``exclude`` and minus
     free-text columns. Numeric features become float64, booleans 0/1 floats, datetimes
-    float seconds since the epoch (UTC) and categoricals pandas Categoricals over their
+    their calendar parts (``tuner.columns.DATE_PARTS``: ``order_date.weekday``, ...) and
+    categoricals pandas Categoricals over their
     sorted string levels. Class labels are encoded 0..K-1 in sorted label order.
 
     Args:
@@ -314,16 +316,23 @@ def prepare(
             continue
         kind = "categorical" if p.kind == "text" else p.kind
         levels = levels_of(frame[p.name]) if kind == "categorical" else None
-        specs.append(FeatureSpec(name=p.name, kind=kind, levels=levels))
+        # A date becomes its calendar parts: trees can then split on the weekday or the
+        # month, which seconds since 1970 hide from them.
+        parts = date_parts_of(frame[p.name]) if kind == "datetime" else None
+        specs.append(FeatureSpec(name=p.name, kind=kind, levels=levels, parts=parts))
     if not specs:
         _raise([_error("features", "no usable feature columns left")])
     schema = FeatureSchema(tuple(specs))
+    clashes = sorted({n for n in schema.names if schema.names.count(n) > 1})
+    if clashes:
+        _raise([_error("features", f"feature names clash after dates became calendar parts: "
+                                   f"{', '.join(map(repr, clashes))}; rename or exclude one")])
     columns = {}
     for spec in specs:
-        values, bad, _ = convert_column(spec, frame[spec.name])
+        values, bad, _ = convert_feature(spec, frame[spec.name])
         if bad.any():  # kinds were inferred from these very values, so this is a bug guard
             _raise([_error(spec.name, f"{int(bad.sum())} value(s) cannot be read as {spec.kind}")])
-        columns[spec.name] = values
+        columns.update(values)
     return PreparedData(
         X=pd.DataFrame(columns), y=y, task=task, classes=classes, schema=schema,
         weight=weight, groups=groups, times=times, warnings=tuple(warnings), target=target,

@@ -9,7 +9,15 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from tuner.columns import level_str, to_bool_float, to_codes, to_epoch_seconds, to_float
+from tuner.columns import (
+    date_part_name,
+    level_str,
+    to_bool_float,
+    to_codes,
+    to_date_parts,
+    to_epoch_seconds,
+    to_float,
+)
 from tuner.errors import MAX_ERRORS, ConfigError, PredictionInputError, summarise
 from vocabulary import UNSEEN_POLICIES
 
@@ -29,6 +37,16 @@ class FeatureSpec:
     name: str
     kind: str
     levels: tuple[str, ...] | None = None
+    #: Calendar parts (``tuner.columns.DATE_PARTS``) a date column becomes; ``None`` for
+    #: other kinds, and for models saved before parts existed (one column, epoch seconds).
+    parts: tuple[str, ...] | None = None
+
+    @property
+    def model_names(self) -> list[str]:
+        """The model columns this input column becomes (``order_date.weekday``, ...)."""
+        if self.parts:
+            return [date_part_name(self.name, p) for p in self.parts]
+        return [self.name]
 
 
 def _respelled(level: str) -> bool:
@@ -81,6 +99,19 @@ def convert_column(spec: FeatureSpec, s: pd.Series) -> tuple[Any, np.ndarray, np
     )
 
 
+def convert_feature(spec: FeatureSpec, s: pd.Series
+                    ) -> tuple[dict[str, Any], np.ndarray, np.ndarray]:
+    """Like :func:`convert_column`, as ``{model column: values}``: a date column with
+    calendar parts becomes one column per part."""
+    if spec.kind == "datetime" and spec.parts:
+        parts, bad = to_date_parts(s, spec.parts)
+        names = spec.model_names
+        return (dict(zip(names, (parts[p] for p in spec.parts), strict=True)), bad,
+                np.zeros(len(s), dtype=bool))
+    values, bad, unseen = convert_column(spec, s)
+    return {spec.name: values}, bad, unseen
+
+
 @dataclass(frozen=True)
 class FeatureSchema:
     """The ordered features of a model; builds prediction frames identical to training."""
@@ -89,7 +120,12 @@ class FeatureSchema:
 
     @property
     def names(self) -> list[str]:
-        """Feature names in model order."""
+        """Model column names in model order (a date's calendar parts each count)."""
+        return [n for f in self.features for n in f.model_names]
+
+    @property
+    def columns(self) -> list[str]:
+        """The input columns predictions need, in model order."""
         return [f.name for f in self.features]
 
     def text_columns(self) -> list[str]:
@@ -106,7 +142,9 @@ class FeatureSchema:
         return {
             "features": [
                 {"name": f.name, "kind": f.kind,
-                 "levels": list(f.levels) if f.levels is not None else None}
+                 "levels": list(f.levels) if f.levels is not None else None,
+                 **({"parts": list(f.parts), "model_columns": f.model_names}
+                    if f.parts else {})}
                 for f in self.features
             ]
         }
@@ -119,6 +157,7 @@ class FeatureSchema:
                 FeatureSpec(
                     name=f["name"], kind=f["kind"],
                     levels=tuple(f["levels"]) if f.get("levels") is not None else None,
+                    parts=tuple(f["parts"]) if f.get("parts") else None,
                 )
                 for f in d["features"]
             )
@@ -148,7 +187,7 @@ class FeatureSchema:
             raise _input_error([{"field": "rows", "message": "expected a non-empty list"}])
         errors: list[dict[str, Any]] = []
         ignored: set[str] = set()
-        known = set(self.names)
+        known = set(self.columns)
         for i, row in enumerate(rows):
             if not isinstance(row, dict):
                 errors.append({"field": f"rows[{i}]", "message": "expected an object"})
@@ -192,18 +231,18 @@ class FeatureSchema:
         _check_policy(unseen)
         errors = [
             {"field": name, "message": "column missing from the input"}
-            for name in self.names
+            for name in self.columns
             if name not in df.columns
         ]
         if errors:
             raise _input_error(errors)
-        columns = {name: df[name].reset_index(drop=True) for name in self.names}
+        columns = {name: df[name].reset_index(drop=True) for name in self.columns}
 
         def where(i: int, name: str) -> str:
             return f"row {i} (line {i + 2})"
 
         frame = self._build(columns, unseen, errors, where, per_row=False)
-        known = set(self.names)
+        known = set(self.columns)
         return frame, [str(c) for c in df.columns if c not in known]
 
     def _build(
@@ -220,7 +259,7 @@ class FeatureSchema:
             raw = columns[spec.name]
             # Lists and objects would break the vectorised converters; report them as bad.
             scalar = _scalar_mask(raw)
-            values, bad, new = convert_column(
+            values, bad, new = convert_feature(
                 spec, raw if scalar.all() else raw.where(scalar, None)
             )
             bad = bad | ~scalar
@@ -228,7 +267,7 @@ class FeatureSchema:
                 _report_bad(spec, raw, np.flatnonzero(bad), errors, where, per_row)
             if new.any() and unseen == "error":
                 _report_unseen(spec, raw, np.flatnonzero(new), errors, where)
-            out[spec.name] = values
+            out.update(values)
         if errors:
             raise _input_error(errors)
         return pd.DataFrame(out)

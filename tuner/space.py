@@ -107,6 +107,9 @@ TUNABLE: dict[str, tuple[str, float, float, bool]] = {
     "alpha": ("float", 0.0, math.inf, True),
     # LightGBM wants 1 <= p < 2; 1.99 stands in for the open upper end.
     "tweedie_variance_power": ("float", 1.0, 1.99, False),
+    # Binary imbalance: weight of the positive class, or LightGBM's own balancing.
+    "scale_pos_weight": ("float", 0.0, math.inf, True),
+    "is_unbalance": ("bool", 0, 1, False),
 }
 
 DEFAULT_SPACE = SearchSpace({
@@ -142,7 +145,7 @@ LIGHTGBM_DEFAULTS: dict[str, Any] = {
 _OTHER_DEFAULTS: dict[str, Any] = {
     "max_depth": -1, "min_sum_hessian_in_leaf": 1e-3, "max_bin": 255, "extra_trees": False,
     "path_smooth": 0.0, "cat_smooth": 10.0, "max_cat_to_onehot": 4, "alpha": 0.9,
-    "tweedie_variance_power": 1.5,
+    "tweedie_variance_power": 1.5, "scale_pos_weight": 1.0, "is_unbalance": False,
 }
 
 

@@ -6,7 +6,8 @@ unpacked bundle folder:
     python predict.py new_rows.csv > predictions.csv
 
 It turns each column the way the service does before LightGBM sees it (numbers as
-floats, true/false and 0/1 as 1.0/0.0, ISO-8601 dates as seconds since 1970 UTC,
+floats, true/false and 0/1 as 1.0/0.0, ISO-8601 dates as their calendar parts in UTC
+(weekday, day, month, hour, days since 1970; older models: seconds since 1970),
 categories as codes over the training levels in ``schema.json``) and writes the same CSV
 the service's prediction endpoint answers: ``prediction`` and, for classification, one
 ``probability_<class>`` column per class. Unlike the service it does not reject bad
@@ -41,6 +42,14 @@ def level_text(value: object) -> object:
     return str(value)
 
 
+def respelled(level: str) -> bool:
+    """Whether a number reader would spell this level otherwise ("0042" -> 42)."""
+    try:
+        return level_text(float(level)) != level
+    except ValueError:
+        return False
+
+
 def boolean(value: object) -> float:
     if isinstance(value, bool | np.bool_):
         return float(value)
@@ -70,12 +79,31 @@ def column(raw: pd.Series, feature: dict) -> pd.Series:
     raise ValueError(f"unknown feature kind {kind!r} for column {feature['name']!r}")
 
 
+def date_parts(raw: pd.Series, parts: list[str]) -> list[pd.Series]:
+    text = raw.astype(object).map(lambda v: v.strip() if isinstance(v, str) else v)
+    stamps = pd.to_datetime(text, format="ISO8601", utc=True, errors="coerce")
+    out = []
+    for part in parts:
+        if part == "elapsed_days":
+            out.append((stamps - EPOCH).dt.total_seconds().astype("float64") / 86400.0)
+        else:
+            accessor = {"weekday": "day_of_week"}.get(part, part)
+            out.append(getattr(stamps.dt, accessor).astype("float64"))
+    return out
+
+
 def features(table: pd.DataFrame, schema: dict, booster: lgb.Booster) -> pd.DataFrame:
     missing = [f["name"] for f in schema["features"] if f["name"] not in table.columns]
     if missing:
         raise SystemExit(f"predict.py: columns missing from the input: {', '.join(missing)}")
-    frame = pd.DataFrame({f["name"]: column(table[f["name"]].reset_index(drop=True), f)
-                          for f in schema["features"]})
+    columns: list[pd.Series] = []
+    for f in schema["features"]:
+        raw = table[f["name"]].reset_index(drop=True)
+        if f["kind"] == "datetime" and f.get("parts"):
+            columns += date_parts(raw, f["parts"])
+        else:
+            columns.append(column(raw, f))
+    frame = pd.DataFrame({i: c for i, c in enumerate(columns)})
     # LightGBM stores sanitised feature names; the order is what matters.
     frame.columns = booster.feature_name()
     return frame
@@ -100,7 +128,11 @@ def main(argv: list[str]) -> int:
     if len(argv) not in (1, 2):
         print("usage: python predict.py INPUT.csv [OUTPUT.csv]", file=sys.stderr)
         return 2
-    table = pd.read_csv(argv[0], encoding="utf-8-sig")
+    schema = json.loads((HERE / "schema.json").read_text())
+    # Categories such as "0042" are matched by their text as written, never as numbers.
+    text = {f["name"]: "str" for f in schema["features"] if f["kind"] == "categorical"
+            and any(respelled(level) for level in f["levels"] or [])}
+    table = pd.read_csv(argv[0], encoding="utf-8-sig", dtype=text or None)
     result = predict(table)
     if len(argv) == 2:
         result.to_csv(argv[1], index=False)

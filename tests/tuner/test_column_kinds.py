@@ -69,12 +69,12 @@ def test_digits_declared_categorical_reach_lightgbm_as_categorical(tmp_path) -> 
     (tmp_path / "b").mkdir()
     declared, data = _model_text(read_table(path, "csv", text_columns=["store_id"]),
                                  tmp_path / "a", store_id="categorical")
-    spec = data.schema.features[data.schema.names.index("store_id")]
+    spec = data.schema.features[data.schema.columns.index("store_id")]
     assert spec.kind == "categorical" and "0007" in spec.levels
     assert _categorical_in_model_file(declared) == ["store_id"]
     # Without the declaration the same digits are a number to LightGBM.
     undeclared, data = _model_text(read_table(path, "csv"), tmp_path / "b")
-    assert data.schema.features[data.schema.names.index("store_id")].kind == "numeric"
+    assert data.schema.features[data.schema.columns.index("store_id")].kind == "numeric"
     assert _categorical_in_model_file(undeclared) == []
 
 
@@ -103,5 +103,5 @@ def test_ignore_and_text_keep_columns_out_and_numeric_wins_over_inference() -> N
                                                        "code": "text"})
     assert data.schema.names == ["footfall"]
     data = prepare(frame, target="sales", column_kinds={"store_id": "numeric"})
-    assert data.schema.features[data.schema.names.index("store_id")].kind == "numeric"
+    assert data.schema.features[data.schema.columns.index("store_id")].kind == "numeric"
     assert sorted(set(data.X["store_id"])) == [7.0, 13.0, 42.0, 99.0, 100.0, 301.0]

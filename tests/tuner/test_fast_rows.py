@@ -33,7 +33,7 @@ def test_fast_rows_equal_lightgbm_on_pandas(make, target) -> None:
     frame = make(n_rows=300, seed=5)
     predictor, data = _fit(frame, target)
     assert "datetime" in [f.kind for f in data.schema.features]  # dates take it too
-    rows = _rows(frame.head(50), list(data.schema.names))
+    rows = _rows(frame.head(50), list(data.schema.columns))
     assert predictor._rows.encode(rows) is not None  # the fast path is taken
     fast = predictor.predict_rows(rows)
     # Reference: LightGBM's own predict on the training-form pandas frame.
@@ -46,7 +46,7 @@ def test_fast_rows_equal_lightgbm_on_pandas(make, target) -> None:
 def test_rows_needing_validation_fall_back_with_the_same_errors() -> None:
     frame = kilns(n_rows=300, seed=5)
     predictor, data = _fit(frame, "defect")
-    row = _rows(frame.head(1), list(data.schema.names))[0]
+    row = _rows(frame.head(1), list(data.schema.columns))[0]
     for bad in ({**row, "clay_body": "basalt"}, {**row, "peak_temp_c": "hot"},
                 {**row, "fired_on": "14 March 2026"},
                 {k: v for k, v in row.items() if k != "kiln"}):

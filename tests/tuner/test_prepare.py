@@ -33,14 +33,19 @@ def test_prepare_converts_every_kind(make_frame) -> None:
     frame.loc[3, "glazed"] = None
     data = prepare(frame, target="cracked", exclude=["weight"], group_column="kiln")
     assert data.task == "binary" and data.classes == ["no", "yes"]
-    assert data.schema.names == ["temp_c", "clay_body", "glazed", "fired_on"]
+    assert data.schema.columns == ["temp_c", "clay_body", "glazed", "fired_on"]
+    assert data.schema.names == ["temp_c", "clay_body", "glazed", "fired_on.weekday",
+                                 "fired_on.day", "fired_on.month", "fired_on.elapsed_days"]
     assert len(data.X) == len(data.y) == 58 and data.warnings[0].startswith("dropped 2 row")
     assert data.X["temp_c"].dtype == np.float64
     assert data.X["clay_body"].cat.categories.tolist() == sorted(set(frame["clay_body"]))
     assert set(data.X["glazed"].dropna()) == {0.0, 1.0} and data.X["glazed"].isna().sum() == 1
     kept = frame.dropna(subset=["cracked"]).reset_index(drop=True)
-    expected = (pd.to_datetime(kept["fired_on"]) - pd.Timestamp("1970-01-01")).dt.total_seconds()
-    np.testing.assert_array_equal(data.X["fired_on"].to_numpy(), expected.to_numpy())
+    # Reference: pandas' own datetime arithmetic and accessors on the same dates.
+    stamps = pd.to_datetime(kept["fired_on"])
+    expected = (stamps - pd.Timestamp("1970-01-01")).dt.total_seconds() / 86400
+    np.testing.assert_array_equal(data.X["fired_on.elapsed_days"].to_numpy(), expected.to_numpy())
+    np.testing.assert_array_equal(data.X["fired_on.month"].to_numpy(), stamps.dt.month)
     np.testing.assert_array_equal(data.y, (kept["cracked"] == "yes").astype(int).to_numpy())
     assert data.groups is not None and data.groups.dtype == np.int64
     assert not any(str(d) == "str" for d in data.X.dtypes)  # LightGBM rejects pandas str

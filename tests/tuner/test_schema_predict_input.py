@@ -67,7 +67,10 @@ def test_json_spellings_are_accepted(trained) -> None:
     ])
     assert built["temp_c"].tolist() == [1210.5, 1200.0]
     assert built["glazed"].tolist() == [1.0, 0.0]
-    assert built["fired_on"].iloc[0] == pd.Timestamp("2024-03-01T12:00:00Z").timestamp()
+    # Reference: pandas' Timestamp (2024-03-01 was a Friday, weekday 4).
+    stamp = pd.Timestamp("2024-03-01T12:00:00Z")
+    assert built["fired_on.elapsed_days"].iloc[0] == stamp.timestamp() / 86400
+    assert built["fired_on.weekday"].iloc[0] == stamp.day_of_week == 4
 
 
 @pytest.mark.parametrize(
