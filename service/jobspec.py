@@ -70,6 +70,7 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
         group_column=cv.get("group_column"),
         time_column=cv.get("time_column"),
         column_kinds=request.get("column_kinds"),
+        segments=request.get("segments"),
     )
     objective = request.get("objective")
     metric_name = (request.get("metric") or default_metric_for(data.task, objective)
@@ -146,6 +147,7 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
         "objective": resolve_objective(data.task, metric.name, objective),
         "features": list(data.schema.names),
         "column_kinds": dict(request.get("column_kinds") or {}),
+        "segments": list(request.get("segments") or ()),
         "weight_column": request.get("weight_column"),
         "budget": {"trials": config.n_trials, "seconds": config.timeout},
         "cv": cv_scheme,

@@ -6,6 +6,7 @@ import everything about data from one place.
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -64,6 +65,9 @@ class PreparedData:
     times: np.ndarray | None
     warnings: tuple[str, ...]
     target: str
+    #: Raw values of the columns metrics are reported by (``segments``), row-aligned;
+    #: they need not be features.
+    segments: dict[str, np.ndarray] = dataclasses.field(default_factory=dict)
 
     @property
     def n_rows(self) -> int:
@@ -245,6 +249,7 @@ def prepare(
     group_column: str | None = None,
     time_column: str | None = None,
     column_kinds: Mapping[str, str] | None = None,
+    segments: Sequence[str] | None = None,
 ) -> PreparedData:
     """Validate the column choices and convert the table into model-ready arrays.
 
@@ -268,6 +273,7 @@ def prepare(
         column_kinds: ``{column: kind}`` the user declared (``vocabulary.DECLARED_KINDS``):
             the feature takes that kind instead of the inferred one; ``text`` keeps it out
             unless ``features`` names it, ``ignore`` always keeps it out.
+        segments: Columns to report hold-out metrics by (kept as raw values).
 
     Returns:
         The prepared data.
@@ -288,6 +294,10 @@ def prepare(
              "time_column": time_column}
     _check_names(df, target, features, exclude, roles)
     declared = _check_kinds(df, target, features, dict(column_kinds or {}))
+    unknown = [s for s in segments or () if s not in df.columns or s == target]
+    if unknown:
+        _raise([_error("segments", f"not columns of the table (or the target): "
+                                   f"{', '.join(map(repr, unknown))}")])
     exclude = [*(exclude or ()), *(n for n, k in declared.items() if k == "ignore")]
     warnings: list[str] = []
     keep = df[target].notna().to_numpy()
@@ -336,4 +346,5 @@ def prepare(
     return PreparedData(
         X=pd.DataFrame(columns), y=y, task=task, classes=classes, schema=schema,
         weight=weight, groups=groups, times=times, warnings=tuple(warnings), target=target,
+        segments={name: frame[name].to_numpy(dtype=object) for name in segments or ()},
     )

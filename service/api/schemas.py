@@ -88,6 +88,8 @@ class JobCreate(Strict):
     monotone: dict[str, Literal[1, -1]] | None = None
     # Groups of columns; every tree splits on the columns of one group only.
     interaction_constraints: list[list[str]] | None = None
+    # Columns to report hold-out metrics by (need not be features).
+    segments: list[str] | None = Field(default=None, max_length=20)
     # Boosting rounds at most per fit, and rounds without improvement before a fold stops.
     max_rounds: int = Field(default=1000, ge=1, le=100_000)
     early_stopping_rounds: int = Field(default=50, ge=1, le=10_000)

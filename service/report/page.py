@@ -22,6 +22,15 @@ CAPTIONS = {
                 "fold (the final model's tree count averages all folds).",
     "calibration": "Dots on the diagonal mean predicted probabilities can be taken at face "
                    "value.",
+    "gains": "Working down the hold-out rows from the highest predicted probability: the "
+             "share of all positives found so far. The dotted line is picking at random.",
+    "confusion": "Hold-out rows by actual and predicted class, labelled as the service "
+                 "labels predictions.",
+    "predicted": "Each dot is a hold-out row; on the dotted line the prediction is exact.",
+    "residuals": "Errors against predictions: a trend or a funnel means the model is off "
+                 "in a systematic way for some range.",
+    "segments": "The job's metric on each group of hold-out rows, with its bootstrap "
+                "interval; red groups are worse than all rows by more than noise explains.",
 }
 
 CSS = """
@@ -52,7 +61,7 @@ table{border-collapse:collapse;width:100%;font-variant-numeric:tabular-nums}
 th,td{text-align:left;padding:6px 10px;border-bottom:1px solid var(--line);vertical-align:top}
 th{font-size:12px;color:var(--muted);text-transform:uppercase;letter-spacing:.04em;
 font-weight:600}
-td.num,th.num{text-align:right}tr.win td{background:#f1f6fb}
+td.num,th.num{text-align:right}tr.win td{background:#f1f6fb}tr.worse td{color:var(--bad)}
 .params{color:var(--muted);font-size:12.5px}
 .plots{display:grid;grid-template-columns:repeat(auto-fit,minmax(460px,1fr));gap:14px}
 figure{margin:0}figure img{width:100%;height:auto;display:block}
@@ -142,6 +151,31 @@ def _winner(model: dict[str, Any]) -> str:
     )
 
 
+def _segments(ev: dict[str, Any]) -> str:
+    seg = (ev.get("decision") or {}).get("segments")
+    if not seg:
+        return ""
+    body = []
+    for column in seg["columns"]:
+        for s in column["segments"]:
+            interval = (f"{_num(s['low'])} – {_num(s['high'])}" if s["low"] is not None
+                        else "–")
+            flag = "worse beyond noise" if s["worse"] else ""
+            cls = ' class="worse"' if s["worse"] else ""
+            body.append(f"<tr{cls}><td>{escape(column['column'])}</td><td>"
+                        f"{escape(s['value'])}</td><td class='num'>{s['rows']}</td>"
+                        f"<td class='num'>{_num(s['score'])}</td><td class='num'>{interval}"
+                        f"</td><td>{flag}</td></tr>")
+    whole = seg["whole"]
+    return ("<h2>By segment</h2><section class='card' id='segments'><table><thead><tr>"
+            "<th>column</th><th>segment</th><th class='num'>rows</th><th class='num'>"
+            f"{escape(seg['metric'])}</th><th class='num'>{seg['level']:.0%} interval</th>"
+            f"<th></th></tr></thead><tbody>{''.join(body)}</tbody></table><p class='note'>"
+            f"All {whole['rows']} hold-out rows: {_num(whole['score'])}. Percentile bootstrap "
+            f"with {seg['resamples']} resamples; a segment is flagged when the interval of "
+            "its difference from all rows lies wholly on the worse side.</p></section>")
+
+
 def _leaderboard(rows: list[dict[str, Any]], count: int, winner: int | None) -> str:
     if not rows:
         return "<p class='note'>No trial has completed yet.</p>"
@@ -200,7 +234,7 @@ scored by <strong>{escape(job['metric'])}</strong> · dataset
 <a href="leaderboard?format=csv">leaderboard CSV</a></p>
 {live}{_facts(job)}{error}{_warnings(warnings)}
 {'<h2>Winner</h2>' + winner if winner else ''}
-<h2>Plots</h2>{_plots(plots)}
+<h2>Plots</h2>{_plots(plots)}{_segments(ev)}
 <h2>Leaderboard</h2><section class="card">{_leaderboard(board, count,
     (model or {}).get('trial_number'))}</section>
 </main></body></html>

@@ -2,7 +2,8 @@
 
 Plots read our own rows (``gk_trials``, ``gk_models``), never Optuna objects, so drawing
 one is a couple of indexed queries. Every data series carries an SVG ``id`` (``trials``,
-``best``, ``bar-0``, ``train``, ``valid``, ``bins``) so tests and scripts can find it.
+``best``, ``bar-0``, ``train``, ``valid``, ``bins``, ``gains``, ``cell-i-j``, ``points``,
+``segment-N``) so tests and scripts can find it.
 """
 
 from __future__ import annotations
@@ -25,7 +26,8 @@ matplotlib.rcParams.update({"svg.fonttype": "none", "path.simplify": False,
                             "svg.hashsalt": "grovekeeper", "font.size": 10})
 
 INK, ACCENT, MUTED, WARM = "#1f2933", "#2f6f9f", "#9aa5b1", "#c8553d"
-NAMES = ("history", "hyperparameters", "features", "learning", "calibration")
+NAMES = ("history", "hyperparameters", "features", "learning", "calibration", "gains",
+         "confusion", "predicted", "residuals", "segments")
 TOP_BARS = 15
 
 
@@ -161,6 +163,107 @@ def calibration(cal: dict[str, Any] | None) -> bytes:
     return _svg(fig)
 
 
+def gains(data: dict[str, Any] | None) -> bytes:
+    """Cumulative gains on the hold-out: share of positives caught by the top-scored rows."""
+    if not data or not data.get("positives"):
+        raise PlotUnavailable("the gains chart is drawn for binary tasks with a hold-out")
+    fig, ax = _figure(3.8)
+    ax.plot([0, 1], [0, 1], color=MUTED, linewidth=1, linestyle=":", label="rows at random")
+    ax.plot([0, *data["share"]], [0, *data["captured"]], color=ACCENT, linewidth=1.4,
+            marker="o", markersize=3, label="rows ranked by the model", gid="gains")
+    ax.set_xlim(0, 1)
+    ax.set_ylim(0, 1.02)
+    ax.set_xlabel("share of hold-out rows, highest predicted probability first")
+    ax.set_ylabel("share of all positives among them")
+    top = data["lift"][min(1, len(data["lift"]) - 1)]
+    ax.set_title(f"Cumulative gains ({data['positives']} positives in {data['rows']} rows; "
+                 f"lift {top:.2f} at the top {data['share'][min(1, len(data['share']) - 1)]:.0%})",
+                 loc="left")
+    ax.legend(frameon=False, fontsize=8, loc="lower right")
+    return _svg(fig)
+
+
+def confusion(data: dict[str, Any] | None) -> bytes:
+    """Counts of actual by predicted class on the hold-out, at the decision threshold."""
+    if not data or not data.get("matrix"):
+        raise PlotUnavailable("the confusion matrix is drawn for classification")
+    matrix = data["matrix"]
+    labels = [str(c) for c in data["classes"]]
+    k = len(labels)
+    fig = Figure(figsize=(4.8 + 0.3 * k, 3.6 + 0.3 * k), layout="constrained")
+    FigureCanvasSVG(fig)
+    ax = fig.add_subplot()
+    ax.imshow(matrix, cmap="Blues", gid="cells")
+    peak = max(max(row) for row in matrix) or 1
+    for i, row in enumerate(matrix):
+        for j, count in enumerate(row):
+            ax.text(j, i, str(count), ha="center", va="center", gid=f"cell-{i}-{j}",
+                    color="white" if count > peak / 2 else INK)
+    ax.set_xticks(range(k), labels)
+    ax.set_yticks(range(k), labels)
+    ax.set_xlabel("predicted")
+    ax.set_ylabel("actual")
+    rule = (f" at threshold {data['threshold']:.3g}" if "threshold" in data
+            else " (most probable class)")
+    ax.set_title(f"Hold-out confusion matrix{rule}", loc="left")
+    return _svg(fig)
+
+
+def predicted(data: dict[str, Any] | None, *, residuals: bool = False) -> bytes:
+    """Regression on the hold-out: predicted vs actual, or residuals vs predicted."""
+    if not data or not data.get("actual"):
+        raise PlotUnavailable("drawn for regression tasks with a hold-out")
+    fig, ax = _figure(3.8)
+    pred, actual = data["predicted"], data["actual"]
+    if residuals:
+        ys = [a - p for a, p in zip(actual, pred, strict=True)]
+        ax.axhline(0, color=MUTED, linewidth=1, linestyle=":")
+        ax.scatter(pred, ys, s=8, color=ACCENT, alpha=0.6, gid="points")
+        ax.set_ylabel("residual (actual - predicted)")
+        title = (f"Residuals vs predicted (mean {data['residual_mean']:.4g}, "
+                 f"std {data['residual_std']:.4g})")
+    else:
+        low, high = min(min(pred), min(actual)), max(max(pred), max(actual))
+        ax.plot([low, high], [low, high], color=MUTED, linewidth=1, linestyle=":",
+                label="predicted = actual")
+        ax.scatter(pred, actual, s=8, color=ACCENT, alpha=0.6, gid="points",
+                   label="hold-out rows")
+        ax.set_ylabel("actual")
+        ax.legend(frameon=False, fontsize=8, loc="upper left")
+        title = "Predicted vs actual"
+    ax.set_xlabel("predicted")
+    shown = f" ({data['shown']} of {data['rows']} rows)" if data["shown"] < data["rows"] else ""
+    ax.set_title(title + shown, loc="left")
+    return _svg(fig)
+
+
+def segments(data: dict[str, Any] | None) -> bytes:
+    """The metric per segment with its bootstrap interval; flagged segments in red."""
+    if not data or not data.get("columns"):
+        raise PlotUnavailable("the job names no segments, or has no hold-out")
+    entries = [(c["column"], s) for c in data["columns"] for s in c["segments"]
+               if s["score"] is not None]
+    if not entries:
+        raise PlotUnavailable("no segment has a defined score")
+    fig, ax = _figure(1.2 + 0.28 * len(entries))
+    ys = list(range(len(entries)))[::-1]
+    for y, (_, s) in zip(ys, entries, strict=True):
+        colour = WARM if s["worse"] else ACCENT
+        if s["low"] is not None:
+            ax.plot([s["low"], s["high"]], [y, y], color=colour, linewidth=1.4)
+        ax.plot([s["score"]], [y], marker="o", color=colour, markersize=4,
+                gid=f"segment-{len(entries) - 1 - y}")
+    whole = data["whole"]["score"]
+    if whole is not None:
+        ax.axvline(whole, color=MUTED, linewidth=1, linestyle=":", gid="whole")
+    ax.set_yticks(ys, [f"{c} = {s['value']} ({s['rows']})" for c, s in entries], fontsize=8)
+    arrow = "higher is better" if data["direction"] == "maximize" else "lower is better"
+    ax.set_xlabel(f"{data['metric']} on the hold-out ({arrow}); dotted: all rows")
+    ax.set_title(f"Per segment, {data['level']:.0%} bootstrap intervals; red: worse than "
+                 "all rows beyond noise", loc="left", fontsize=9)
+    return _svg(fig)
+
+
 def render(name: str, *, trials: Sequence[dict[str, Any]], job: dict[str, Any],
            model: dict[str, Any] | None) -> bytes:
     """Draw plot ``name`` (one of :data:`NAMES`) from plain dicts of our rows.
@@ -182,6 +285,15 @@ def render(name: str, *, trials: Sequence[dict[str, Any]], job: dict[str, Any],
         return features(model["feature_importance"])
     if name == "learning":
         return learning(evaluation.get("learning_curve"))
+    decision = evaluation.get("decision") or {}
+    if name == "gains":
+        return gains(decision.get("gains"))
+    if name == "confusion":
+        return confusion(decision.get("confusion"))
+    if name in ("predicted", "residuals"):
+        return predicted(decision.get("regression"), residuals=name == "residuals")
+    if name == "segments":
+        return segments(decision.get("segments"))
     return calibration(evaluation.get("calibration"))
 
 
@@ -201,4 +313,14 @@ def available(*, trials: Sequence[dict[str, Any]], model: dict[str, Any] | None)
         names.append("learning")
     if (evaluation.get("calibration") or {}).get("counts"):
         names.append("calibration")
+    decision = evaluation.get("decision") or {}
+    if (decision.get("gains") or {}).get("positives"):
+        names.append("gains")
+    if decision.get("confusion"):
+        names.append("confusion")
+    if (decision.get("regression") or {}).get("actual"):
+        names += ["predicted", "residuals"]
+    if any(s["score"] is not None for c in (decision.get("segments") or {}).get("columns", [])
+           for s in c["segments"]):
+        names.append("segments")
     return names

@@ -10,6 +10,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+import tuner
 from tests.conftest import Server, wait_for_job
 
 pytestmark = pytest.mark.e2e
@@ -89,6 +90,13 @@ def test_declared_store_ids_train_and_predict_as_categories(server: Server) -> N
             "rows": frame.head(5)[["store_id", "price"]].to_dict(orient="records")})
         unseen = client.post(f"/v1/models/{model_id}/predictions",
                              json={"rows": [{"store_id": 7, "price": 2.0}]})
+        plots = {name: client.get(f"/v1/jobs/{job['id']}/plots/{name}.svg")
+                 for name in ("predicted", "residuals", "gains")}
+    assert plots["predicted"].status_code == 200 and 'id="points"' in plots["predicted"].text
+    assert plots["residuals"].status_code == 200
+    assert plots["gains"].status_code == 404  # binary only
+    regression = model["details"]["evaluation"]["decision"]["regression"]
+    assert len(regression["actual"]) == model["holdout"]["rows"]
     # LightGBM's own model file: the parameters section lists store_id as categorical, and
     # the job's fixed parameter is recorded there too.
     names = re.search(r"^feature_names=(.*)$", text, re.M).group(1).split(" ")
@@ -109,3 +117,49 @@ def test_declared_store_ids_train_and_predict_as_categories(server: Server) -> N
     got = [float(line.split(",")[-1]) for line in as_csv.text.strip().splitlines()[1:]]
     np.testing.assert_allclose(got, expected, rtol=1e-9)
     np.testing.assert_allclose(as_json.json()["predictions"], expected, rtol=1e-9)
+
+
+def test_binary_job_reports_gains_confusion_and_segments(server: Server, tmp_path) -> None:
+    from sklearn.metrics import confusion_matrix
+
+    from examples.demo_data import kilns
+
+    frame = kilns(n_rows=500, seed=6)
+    with server.client() as client:
+        dataset = _upload(client, frame)
+        body = {"dataset_id": dataset["id"], "target": "defect", "budget": {"trials": 3},
+                "exclude": ["firing_id", "kiln"], "segments": ["kiln", "clay_body"],
+                "max_rounds": 100}
+        response = client.post("/v1/jobs", json=body)
+        assert response.status_code == 202, response.text
+        job = wait_for_job(client, response.json()["id"])
+        assert job["status"] == "succeeded", (job, server.log())
+        model = client.get(f"/v1/models/{job['model_id']}").json()
+        svgs = {name: client.get(f"/v1/jobs/{job['id']}/plots/{name}.svg")
+                for name in ("gains", "confusion", "segments", "predicted")}
+        report = client.get(f"/v1/jobs/{job['id']}/report").text
+        text = client.get(f"/v1/models/{job['model_id']}/file").text
+    decision = model["details"]["evaluation"]["decision"]
+    assert svgs["gains"].status_code == 200 and 'id="gains"' in svgs["gains"].text
+    assert svgs["confusion"].status_code == 200 and 'id="cell-1-1"' in svgs["confusion"].text
+    assert svgs["segments"].status_code == 200 and 'id="segment-0"' in svgs["segments"].text
+    assert svgs["predicted"].status_code == 404  # a regression plot, not for binary
+    assert "By segment" in report and "plots/gains.svg" in report
+    columns = {c["column"]: c for c in decision["segments"]["columns"]}
+    assert set(columns) == {"kiln", "clay_body"}
+    assert sum(s["rows"] for s in columns["kiln"]["segments"]) == model["holdout"]["rows"]
+    assert "kiln" not in [f["name"] for f in model["feature_schema"]["features"]]
+    # Reference: the same hold-out rows (the job's own request, replayed), LightGBM's own
+    # predict of the served model file, scikit-learn's confusion_matrix at 0.5.
+    from service.api.schemas import JobCreate
+    from service.jobspec import build_run
+
+    path = tmp_path / "kilns.csv"
+    frame.to_csv(path, index=False)
+    run = build_run(JobCreate(**body).model_dump(mode="json"), tuner.read_table(path, "csv"))
+    rows = run.plan.holdout_idx
+    prob = lgb.Booster(model_str=text).predict(run.data.X.iloc[rows])
+    assert decision["confusion"]["matrix"] == confusion_matrix(
+        run.data.y[rows], (prob > 0.5).astype(int), labels=[0, 1]).tolist()
+    assert decision["confusion"]["threshold"] == 0.5
+    assert lgb.Booster(model_str=text).num_trees() >= 1

@@ -14,6 +14,7 @@ import numpy as np
 from tuner._lgb import predict
 from tuner.config import SearchConfig
 from tuner.dataset import PreparedData
+from tuner.evaluation.decision import decision_report
 from tuner.evaluation.diagnostics import (
     hyperparameter_importance,
     leaf_sizes,
@@ -148,7 +149,7 @@ def _warnings(result: dict[str, Any], metric: str) -> list[str]:
 def evaluate_model(fitted: FittedModel, data: PreparedData, plan: ValidationPlan,
                    config: SearchConfig, *, storage_url: str | None = None,
                    study_name: str | None = None, seed: int = 0,
-                   n_resamples: int = N_BOOTSTRAP) -> dict[str, Any]:
+                   n_resamples: int = N_BOOTSTRAP, threshold: float = 0.5) -> dict[str, Any]:
     """Everything the service reports about how far to trust ``fitted``.
 
     Args:
@@ -160,10 +161,14 @@ def evaluate_model(fitted: FittedModel, data: PreparedData, plan: ValidationPlan
         study_name: The study's name; importance is skipped when either is missing.
         seed: Seeds the bootstrap and fANOVA's forest.
         n_resamples: Bootstrap resamples.
+        threshold: Binary decision threshold for the confusion matrix (the service's
+            labelling rule: positive when the probability exceeds it).
 
     Returns:
         ``holdout_intervals``, ``optimism``, ``learning_curve``, ``leaves``,
-        ``calibration`` (binary with a hold-out), ``hyperparameter_importance`` and a
+        ``calibration`` (binary with a hold-out), ``decision`` (gains and confusion for
+        classification, predicted-vs-actual for regression, metrics per segment; see
+        :mod:`tuner.evaluation.decision`), ``hyperparameter_importance`` and a
         ``warnings`` list of plain sentences.
     """
     result: dict[str, Any] = {"seed": seed, "bootstrap_resamples": n_resamples}
@@ -178,6 +183,8 @@ def evaluate_model(fitted: FittedModel, data: PreparedData, plan: ValidationPlan
         result["optimism"] = optimism(fitted.metric, data.task, fitted.cv, intervals)
         if data.task == "binary":
             result["calibration"] = calibration(y, pred, w)
+        result["decision"] = decision_report(data, rows, pred, fitted.metric,
+                                             threshold=threshold, seed=seed)
     result["learning_curve"] = learning_curve(data, plan, fitted.params, config)
     result["leaves"] = leaf_sizes(fitted.booster)
     if storage_url is not None and study_name is not None:

@@ -18,7 +18,8 @@ from service.errors import NotFound
 from service.report import page, plots
 
 router = APIRouter(prefix="/v1/jobs", tags=["reports"])
-PlotName = Literal["history", "hyperparameters", "features", "learning", "calibration"]
+PlotName = Literal["history", "hyperparameters", "features", "learning", "calibration",
+                   "gains", "confusion", "predicted", "residuals", "segments"]
 BOARD_ROWS = 20
 
 
@@ -57,7 +58,9 @@ def _plot(url: str, job_id: str, name: str) -> bytes:
             responses={200: {"content": {"image/svg+xml": {}}}})
 async def get_plot(job_id: str, name: PlotName, settings: SettingsDep) -> Response:
     """`history` (score per trial, best so far), `hyperparameters` (fANOVA), `features`
-    (gain), `learning` (train vs validation per round), `calibration` (binary only)."""
+    (gain), `learning` (train vs validation per round), `calibration` (binary only), and on
+    the hold-out `gains` (binary), `confusion` (classification), `predicted` and `residuals`
+    (regression), `segments` (metrics per segment of the job's `segments` columns)."""
     svg = await run_in_threadpool(_plot, settings.db_url, job_id, name)
     return Response(svg, media_type="image/svg+xml",
                     headers={"Cache-Control": "no-cache"})
