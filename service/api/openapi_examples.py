@@ -72,6 +72,14 @@ PREDICTIONS = {"model_id": MODEL["id"], "predictions": [0], "classes": [0, 1],
 
 JSON = "application/json"
 CSV = "text/csv"
+CHANNEL_MOVE = {"model_id": MODEL["id"], "previous_model_id": "mdl_0f1e2d3c4b5a6978",
+                "action": "set", "forced": False, "key_id": "key_5a5a5a5a5a5a5a5a",
+                "job_id": None, "at": "2026-04-02T08:00:00Z"}
+CHANNEL = {"name": "kilns", "model_id": MODEL["id"], "created_at": "2026-03-14T10:00:00Z",
+           "updated_at": "2026-04-02T08:00:00Z",
+           "history": [CHANNEL_MOVE,
+                       {**CHANNEL_MOVE, "model_id": "mdl_0f1e2d3c4b5a6978",
+                        "previous_model_id": None, "at": "2026-03-14T10:00:00Z"}]}
 KEPT_ROW = {"firing_id": "F-000417", **ROW}
 PREDICT_EXAMPLES = {
     "request": {JSON: {"rows": [KEPT_ROW], "keep": ["firing_id"]},
@@ -136,6 +144,19 @@ EXAMPLES: dict[tuple[str, str], dict[str, Any]] = {
         "text/plain": "tree\nversion=v4\nnum_class=1\n…"}}},
     ("get", "/v1/models/{model_id}/bundle"): {"responses": {}},
     ("post", "/v1/models/{model_id}/predictions"): PREDICT_EXAMPLES,
+    ("put", "/v1/channels/{name}"): {"request": {JSON: {"model_id": MODEL["id"]}},
+                                     "responses": {"200": {JSON: CHANNEL}}},
+    ("get", "/v1/channels/{name}"): {"responses": {"200": {JSON: CHANNEL}}},
+    ("get", "/v1/channels"): {"responses": {"200": {JSON: {
+        "items": [{k: CHANNEL[k] for k in ("name", "model_id", "updated_at")}],
+        "total": 1, "next": None}}}},
+    ("post", "/v1/channels/{name}/rollback"): {"responses": {"200": {JSON: {
+        **CHANNEL, "model_id": "mdl_0f1e2d3c4b5a6978",
+        "history": [{**CHANNEL_MOVE, "model_id": "mdl_0f1e2d3c4b5a6978",
+                     "previous_model_id": MODEL["id"], "action": "rollback",
+                     "at": "2026-04-02T08:05:00Z"},
+                    *CHANNEL["history"]]}}}},
+    ("post", "/v1/channels/{name}/predictions"): PREDICT_EXAMPLES,
 }
 
 

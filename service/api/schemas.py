@@ -239,3 +239,43 @@ class PredictResponse(BaseModel):
     contribution_scale: str | None = None
     # With keep: per row, the kept columns as sent, aligned with predictions.
     kept: list[dict[str, Any]] | None = None
+
+
+class ChannelPut(Strict):
+    model_config = ConfigDict(extra="forbid", json_schema_extra={
+        "examples": [{"model_id": "mdl_4567cdef89ab0123"}]})
+
+    model_id: str = Field(min_length=1, max_length=64)
+    # Switch even when the new model needs other input columns than the current one.
+    force: bool = False
+
+
+class ChannelMove(BaseModel):
+    model_id: str
+    previous_model_id: str | None
+    action: str  # "set", "rollback" or "promote"
+    forced: bool
+    key_id: str | None
+    job_id: str | None
+    at: datetime
+
+
+class ChannelOut(BaseModel):
+    name: str
+    model_id: str
+    created_at: datetime
+    updated_at: datetime
+    # Newest first (at most the last 100 moves).
+    history: list[ChannelMove]
+
+
+class ChannelSummary(BaseModel):
+    name: str
+    model_id: str
+    updated_at: datetime
+
+
+class ChannelList(BaseModel):
+    items: list[ChannelSummary]
+    total: int
+    next: str | None = None

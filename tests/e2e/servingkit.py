@@ -8,11 +8,13 @@ from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
+import httpx
 import lightgbm as lgb
 import numpy as np
 import pandas as pd
 
 from examples.demo_data import kilns
+from service.auth import create_key
 from tests.conftest import Server, fresh_database, wait_for_job
 
 # A column the models never see: order numbers that look numeric, leading zeros included.
@@ -32,9 +34,15 @@ class Served:
     models: dict[str, dict]  # "a", "b": all features; "narrow": fewer features
     jobs: dict[str, dict]
     rows: pd.DataFrame  # fresh rows to predict, with an order_no column
+    admin_key: str
+    write_key: tuple[str, str]  # (key id, secret)
+
+    def client(self, key: str | None = None) -> httpx.Client:
+        return self.server.client(
+            headers={"Authorization": f"Bearer {key or self.admin_key}"})
 
     def booster(self, model_id: str) -> lgb.Booster:
-        with self.server.client() as client:
+        with self.client() as client:
             text = client.get(f"/v1/models/{model_id}/file").text
         return lgb.Booster(model_str=text)
 
@@ -60,7 +68,10 @@ def served(kind: str, tmp: Path) -> Iterator[Served]:
     with fresh_database(kind, tmp) as url:
         server = Server(home=tmp / "home", db_url=url, workers=1).start()
         try:
-            with server.client() as client:
+            # Keys exist, so every change is made by a known key (channel history names it).
+            _, admin = create_key(url, scope="admin")
+            write = create_key(url, scope="write")
+            with server.client(headers={"Authorization": f"Bearer {admin}"}) as client:
                 ds = upload(client, kilns(n_rows=400, seed=1), "kilns")
                 other = upload(client, kilns(n_rows=200, seed=5), "kilns-later")
                 ids = {"a": job(client, ds, seed=1), "b": job(client, ds, seed=2),
@@ -74,7 +85,8 @@ def served(kind: str, tmp: Path) -> Iterator[Served]:
             rows = kilns(n_rows=60, seed=9).drop(columns=["defect"])
             rows.insert(0, ORDER, order_numbers(len(rows)))
             yield Served(server=server, db_url=url, dataset_id=ds, other_dataset_id=other,
-                         models=models, jobs=jobs, rows=rows)
+                         models=models, jobs=jobs, rows=rows, admin_key=admin,
+                         write_key=write)
         finally:
             server.stop()
 
