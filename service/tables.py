@@ -140,6 +140,9 @@ class Model(Base):
     target: Mapped[str] = mapped_column(sa.String(200))
     feature_importance: Mapped[list[Any]]
     details: Mapped[dict[str, Any]] = mapped_column(default=dict)
+    # Binary models: {"threshold", "method", ...} (tuner/decision.py); None before costs
+    # were supported, or for other tasks.
+    decision: Mapped[dict[str, Any] | None] = mapped_column(sa.JSON)
     sha256: Mapped[str] = mapped_column(sa.String(64))
     file_key: Mapped[str] = mapped_column(sa.String(200))
     size_bytes: Mapped[int] = mapped_column(sa.BigInteger)

@@ -41,6 +41,19 @@ class CVSpec(Strict):
     time_column: str | None = None
 
 
+class DecisionSpec(Strict):
+    """The costs of a binary model's two mistakes, in any one unit."""
+
+    false_positive_cost: float = Field(ge=0, le=1e12)
+    false_negative_cost: float = Field(ge=0, le=1e12)
+
+    @model_validator(mode="after")
+    def _not_both_zero(self) -> DecisionSpec:
+        if self.false_positive_cost + self.false_negative_cost <= 0:
+            raise ValueError("at least one of the two costs must be above zero")
+        return self
+
+
 class JobCreate(Strict):
     """A tuning job request. Only ``dataset_id`` and ``target`` are required."""
 
@@ -78,6 +91,8 @@ class JobCreate(Strict):
     selection: Literal["best", "one_se"] = "best"
     final_refit: Literal["train", "all"] = "train"
     warm_start_job_id: str | None = Field(default=None, min_length=1, max_length=64)
+    # Binary only: the threshold the model serves labels with comes from these costs.
+    decision: DecisionSpec | None = None
 
 
 class ColumnOut(BaseModel):
@@ -188,6 +203,8 @@ class ModelOut(BaseModel):
     classes: list[Any] | None
     feature_importance: list[dict[str, Any]]
     details: dict[str, Any]
+    # Binary: {"threshold", "method", "note", ...}; labels are class 1 above threshold.
+    decision: dict[str, Any] | None = None
     sha256: str
     size_bytes: int
     created_at: datetime
