@@ -57,7 +57,14 @@ MODEL = {
          "levels": ["earthenware", "porcelain", "raku", "stoneware"]}]},
     "classes": [0, 1],
     "feature_importance": [{"feature": "peak_temp_c", "gain": 812.4, "split": 140}],
-    "details": {}, "sha256": "c0ffee…", "size_bytes": 48211,
+    "details": {},
+    "decision": {"threshold": 0.23, "method": "out_of_fold", "false_positive_cost": 1.0,
+                 "false_negative_cost": 5.0,
+                 "note": "probabilities not calibrated: the cut with the least cost on 768 "
+                         "out-of-fold search rows (never the hold-out)",
+                 "holdout": {"rows": 240, "expected_cost_per_row": 0.41,
+                             "expected_cost_per_row_at_0_5": 0.62}},
+    "sha256": "c0ffee…", "size_bytes": 48211,
     "created_at": "2026-03-14T09:33:00Z",
 }
 MODEL_SUMMARY = {k: MODEL[k] for k in ("id", "job_id", "task", "metric", "target",
@@ -72,6 +79,14 @@ PREDICTIONS = {"model_id": MODEL["id"], "predictions": [0], "classes": [0, 1],
 
 JSON = "application/json"
 CSV = "text/csv"
+CHANNEL_MOVE = {"model_id": MODEL["id"], "previous_model_id": "mdl_0f1e2d3c4b5a6978",
+                "action": "set", "forced": False, "key_id": "key_5a5a5a5a5a5a5a5a",
+                "job_id": None, "at": "2026-04-02T08:00:00Z"}
+CHANNEL = {"name": "kilns", "model_id": MODEL["id"], "created_at": "2026-03-14T10:00:00Z",
+           "updated_at": "2026-04-02T08:00:00Z",
+           "history": [CHANNEL_MOVE,
+                       {**CHANNEL_MOVE, "model_id": "mdl_0f1e2d3c4b5a6978",
+                        "previous_model_id": None, "at": "2026-03-14T10:00:00Z"}]}
 KEPT_ROW = {"firing_id": "F-000417", **ROW}
 PREDICT_EXAMPLES = {
     "request": {JSON: {"rows": [KEPT_ROW], "keep": ["firing_id"]},
@@ -136,6 +151,19 @@ EXAMPLES: dict[tuple[str, str], dict[str, Any]] = {
         "text/plain": "tree\nversion=v4\nnum_class=1\n…"}}},
     ("get", "/v1/models/{model_id}/bundle"): {"responses": {}},
     ("post", "/v1/models/{model_id}/predictions"): PREDICT_EXAMPLES,
+    ("put", "/v1/channels/{name}"): {"request": {JSON: {"model_id": MODEL["id"]}},
+                                     "responses": {"200": {JSON: CHANNEL}}},
+    ("get", "/v1/channels/{name}"): {"responses": {"200": {JSON: CHANNEL}}},
+    ("get", "/v1/channels"): {"responses": {"200": {JSON: {
+        "items": [{k: CHANNEL[k] for k in ("name", "model_id", "updated_at")}],
+        "total": 1, "next": None}}}},
+    ("post", "/v1/channels/{name}/rollback"): {"responses": {"200": {JSON: {
+        **CHANNEL, "model_id": "mdl_0f1e2d3c4b5a6978",
+        "history": [{**CHANNEL_MOVE, "model_id": "mdl_0f1e2d3c4b5a6978",
+                     "previous_model_id": MODEL["id"], "action": "rollback",
+                     "at": "2026-04-02T08:05:00Z"},
+                    *CHANNEL["history"]]}}}},
+    ("post", "/v1/channels/{name}/predictions"): PREDICT_EXAMPLES,
 }
 
 

@@ -41,6 +41,19 @@ class CVSpec(Strict):
     time_column: str | None = None
 
 
+class DecisionSpec(Strict):
+    """The costs of a binary model's two mistakes, in any one unit."""
+
+    false_positive_cost: float = Field(ge=0, le=1e12)
+    false_negative_cost: float = Field(ge=0, le=1e12)
+
+    @model_validator(mode="after")
+    def _not_both_zero(self) -> DecisionSpec:
+        if self.false_positive_cost + self.false_negative_cost <= 0:
+            raise ValueError("at least one of the two costs must be above zero")
+        return self
+
+
 class JobCreate(Strict):
     """A tuning job request. Only ``dataset_id`` and ``target`` are required."""
 
@@ -93,6 +106,8 @@ class JobCreate(Strict):
     # Boosting rounds at most per fit, and rounds without improvement before a fold stops.
     max_rounds: int = Field(default=1000, ge=1, le=100_000)
     early_stopping_rounds: int = Field(default=50, ge=1, le=10_000)
+    # Binary only: the threshold the model serves labels with comes from these costs.
+    decision: DecisionSpec | None = None
 
 
 class ColumnOut(BaseModel):
@@ -205,6 +220,8 @@ class ModelOut(BaseModel):
     classes: list[Any] | None
     feature_importance: list[dict[str, Any]]
     details: dict[str, Any]
+    # Binary: {"threshold", "method", "note", ...}; labels are class 1 above threshold.
+    decision: dict[str, Any] | None = None
     sha256: str
     size_bytes: int
     created_at: datetime
@@ -256,3 +273,43 @@ class PredictResponse(BaseModel):
     contribution_scale: str | None = None
     # With keep: per row, the kept columns as sent, aligned with predictions.
     kept: list[dict[str, Any]] | None = None
+
+
+class ChannelPut(Strict):
+    model_config = ConfigDict(extra="forbid", json_schema_extra={
+        "examples": [{"model_id": "mdl_4567cdef89ab0123"}]})
+
+    model_id: str = Field(min_length=1, max_length=64)
+    # Switch even when the new model needs other input columns than the current one.
+    force: bool = False
+
+
+class ChannelMove(BaseModel):
+    model_id: str
+    previous_model_id: str | None
+    action: str  # "set", "rollback" or "promote"
+    forced: bool
+    key_id: str | None
+    job_id: str | None
+    at: datetime
+
+
+class ChannelOut(BaseModel):
+    name: str
+    model_id: str
+    created_at: datetime
+    updated_at: datetime
+    # Newest first (at most the last 100 moves).
+    history: list[ChannelMove]
+
+
+class ChannelSummary(BaseModel):
+    name: str
+    model_id: str
+    updated_at: datetime
+
+
+class ChannelList(BaseModel):
+    items: list[ChannelSummary]
+    total: int
+    next: str | None = None

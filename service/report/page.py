@@ -152,7 +152,7 @@ def _winner(model: dict[str, Any]) -> str:
 
 
 def _segments(ev: dict[str, Any]) -> str:
-    seg = (ev.get("decision") or {}).get("segments")
+    seg = (ev.get("outcomes") or {}).get("segments")
     if not seg:
         return ""
     body = []

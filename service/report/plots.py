@@ -285,15 +285,15 @@ def render(name: str, *, trials: Sequence[dict[str, Any]], job: dict[str, Any],
         return features(model["feature_importance"])
     if name == "learning":
         return learning(evaluation.get("learning_curve"))
-    decision = evaluation.get("decision") or {}
+    outcomes = evaluation.get("outcomes") or {}
     if name == "gains":
-        return gains(decision.get("gains"))
+        return gains(outcomes.get("gains"))
     if name == "confusion":
-        return confusion(decision.get("confusion"))
+        return confusion(outcomes.get("confusion"))
     if name in ("predicted", "residuals"):
-        return predicted(decision.get("regression"), residuals=name == "residuals")
+        return predicted(outcomes.get("regression"), residuals=name == "residuals")
     if name == "segments":
-        return segments(decision.get("segments"))
+        return segments(outcomes.get("segments"))
     return calibration(evaluation.get("calibration"))
 
 
@@ -313,14 +313,14 @@ def available(*, trials: Sequence[dict[str, Any]], model: dict[str, Any] | None)
         names.append("learning")
     if (evaluation.get("calibration") or {}).get("counts"):
         names.append("calibration")
-    decision = evaluation.get("decision") or {}
-    if (decision.get("gains") or {}).get("positives"):
+    outcomes = evaluation.get("outcomes") or {}
+    if (outcomes.get("gains") or {}).get("positives"):
         names.append("gains")
-    if decision.get("confusion"):
+    if outcomes.get("confusion"):
         names.append("confusion")
-    if (decision.get("regression") or {}).get("actual"):
+    if (outcomes.get("regression") or {}).get("actual"):
         names += ["predicted", "residuals"]
-    if any(s["score"] is not None for c in (decision.get("segments") or {}).get("columns", [])
+    if any(s["score"] is not None for c in (outcomes.get("segments") or {}).get("columns", [])
            for s in c["segments"]):
         names.append("segments")
     return names

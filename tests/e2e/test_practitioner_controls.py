@@ -95,7 +95,7 @@ def test_declared_store_ids_train_and_predict_as_categories(server: Server) -> N
     assert plots["predicted"].status_code == 200 and 'id="points"' in plots["predicted"].text
     assert plots["residuals"].status_code == 200
     assert plots["gains"].status_code == 404  # binary only
-    regression = model["details"]["evaluation"]["decision"]["regression"]
+    regression = model["details"]["evaluation"]["outcomes"]["regression"]
     assert len(regression["actual"]) == model["holdout"]["rows"]
     # LightGBM's own model file: the parameters section lists store_id as categorical, and
     # the job's fixed parameter is recorded there too.
@@ -129,7 +129,8 @@ def test_binary_job_reports_gains_confusion_and_segments(server: Server, tmp_pat
         dataset = _upload(client, frame)
         body = {"dataset_id": dataset["id"], "target": "defect", "budget": {"trials": 3},
                 "exclude": ["firing_id", "kiln"], "segments": ["kiln", "clay_body"],
-                "max_rounds": 100}
+                "max_rounds": 100,
+                "decision": {"false_positive_cost": 1, "false_negative_cost": 4}}
         response = client.post("/v1/jobs", json=body)
         assert response.status_code == 202, response.text
         job = wait_for_job(client, response.json()["id"])
@@ -139,18 +140,19 @@ def test_binary_job_reports_gains_confusion_and_segments(server: Server, tmp_pat
                 for name in ("gains", "confusion", "segments", "predicted")}
         report = client.get(f"/v1/jobs/{job['id']}/report").text
         text = client.get(f"/v1/models/{job['model_id']}/file").text
-    decision = model["details"]["evaluation"]["decision"]
+    outcomes = model["details"]["evaluation"]["outcomes"]
     assert svgs["gains"].status_code == 200 and 'id="gains"' in svgs["gains"].text
     assert svgs["confusion"].status_code == 200 and 'id="cell-1-1"' in svgs["confusion"].text
     assert svgs["segments"].status_code == 200 and 'id="segment-0"' in svgs["segments"].text
     assert svgs["predicted"].status_code == 404  # a regression plot, not for binary
     assert "By segment" in report and "plots/gains.svg" in report
-    columns = {c["column"]: c for c in decision["segments"]["columns"]}
+    columns = {c["column"]: c for c in outcomes["segments"]["columns"]}
     assert set(columns) == {"kiln", "clay_body"}
     assert sum(s["rows"] for s in columns["kiln"]["segments"]) == model["holdout"]["rows"]
     assert "kiln" not in [f["name"] for f in model["feature_schema"]["features"]]
     # Reference: the same hold-out rows (the job's own request, replayed), LightGBM's own
-    # predict of the served model file, scikit-learn's confusion_matrix at 0.5.
+    # predict of the served model file, scikit-learn's confusion_matrix at the threshold
+    # the model serves labels with (class 1 when its probability exceeds it).
     from service.api.schemas import JobCreate
     from service.jobspec import build_run
 
@@ -159,7 +161,8 @@ def test_binary_job_reports_gains_confusion_and_segments(server: Server, tmp_pat
     run = build_run(JobCreate(**body).model_dump(mode="json"), tuner.read_table(path, "csv"))
     rows = run.plan.holdout_idx
     prob = lgb.Booster(model_str=text).predict(run.data.X.iloc[rows])
-    assert decision["confusion"]["matrix"] == confusion_matrix(
-        run.data.y[rows], (prob > 0.5).astype(int), labels=[0, 1]).tolist()
-    assert decision["confusion"]["threshold"] == 0.5
+    threshold = model["decision"]["threshold"]
+    assert outcomes["confusion"]["threshold"] == threshold != 0.5
+    assert outcomes["confusion"]["matrix"] == confusion_matrix(
+        run.data.y[rows], (prob > threshold).astype(int), labels=[0, 1]).tolist()
     assert lgb.Booster(model_str=text).num_trees() >= 1

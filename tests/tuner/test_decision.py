@@ -1,140 +1,66 @@
-"""Hold-out diagnostics for decision-makers, against scikit-learn and direct numpy."""
+"""Decision thresholds from the costs of the two mistakes."""
 
 from __future__ import annotations
 
-import math
-
 import numpy as np
-import pandas as pd
 import pytest
-from sklearn import metrics as skm
-from sklearn.datasets import load_breast_cancer, load_diabetes
 
-from tuner import SearchConfig, fit_final, plan_validation, prepare, run_search
-from tuner.evaluation.decision import confusion, gains, segment_labels, segment_metrics
-from tuner.evaluation.holdout import evaluate_model
+from tuner.decision import (
+    cost_ratio_threshold,
+    decide,
+    expected_cost,
+    threshold_from_costs,
+)
 
-
-def test_gains_match_a_direct_numpy_computation() -> None:
-    rng = np.random.default_rng(1)
-    y = (rng.random(237) < 0.3).astype(int)
-    score = np.round(rng.random(237) + 0.5 * y, 2)  # rounded: ties happen
-    out = gains(y, score, points=10)
-    # Direct computation: sort by score descending (stable), count positives in the top k.
-    ranked = y[np.argsort(-score, kind="stable")]
-    for share, captured, lift in zip(out["share"], out["captured"], out["lift"], strict=True):
-        k = math.ceil(share * len(y) - 1e-9)
-        assert captured == pytest.approx(ranked[:k].sum() / y.sum())
-        assert lift == pytest.approx(captured / (k / len(y)))
-    assert out["captured"][-1] == 1.0 and out["positives"] == int(y.sum())
+RNG = np.random.default_rng(7)
 
 
-@pytest.mark.parametrize("threshold", [0.5, 0.2, 0.8])
-def test_binary_confusion_matches_sklearn(threshold) -> None:
-    rng = np.random.default_rng(2)
-    y = rng.integers(0, 2, 300)
-    prob = np.clip(rng.random(300) * 0.6 + 0.4 * y, 0, 1)
-    prob[:5] = threshold  # exactly on the threshold: not positive, as the service labels
-    out = confusion(y, prob, ["ok", "cracked"], threshold=threshold)
-    # Reference: scikit-learn's confusion_matrix (rows actual, columns predicted).
-    expected = skm.confusion_matrix(y, (prob > threshold).astype(int), labels=[0, 1])
-    assert out["matrix"] == expected.tolist()
-    tn, fp, fn, tp = expected.ravel()
-    assert (out["true_negative"], out["false_positive"], out["false_negative"],
-            out["true_positive"]) == (tn, fp, fn, tp)
+def calibrated(n: int) -> tuple[np.ndarray, np.ndarray]:
+    """Perfectly calibrated probabilities: each label drawn with its own probability."""
+    p = RNG.random(n)
+    return (RNG.random(n) < p).astype(int), p
 
 
-def test_multiclass_confusion_matches_sklearn() -> None:
-    rng = np.random.default_rng(3)
-    y = rng.integers(0, 3, 200)
-    prob = rng.dirichlet([1, 1, 1], 200)
-    out = confusion(y, prob, ["a", "b", "c"])
-    assert out["matrix"] == skm.confusion_matrix(y, prob.argmax(axis=1),
-                                                 labels=[0, 1, 2]).tolist()
+@pytest.mark.parametrize(("c_fp", "c_fn"), [(1.0, 5.0), (3.0, 1.0), (1.0, 1.0)])
+def test_calibrated_threshold_is_the_cost_ratio(c_fp: float, c_fn: float) -> None:
+    # Elkan (2001): with calibrated probabilities the cost-minimising cut is
+    # c_FP / (c_FP + c_FN).
+    ratio = c_fp / (c_fp + c_fn)
+    assert cost_ratio_threshold(c_fp, c_fn) == ratio
+    made = decide({"false_positive_cost": c_fp, "false_negative_cost": c_fn},
+                  calibrated=True, oof=None, holdout=None)
+    assert made["threshold"] == ratio and made["method"] == "cost_ratio"
+    # And the empirical search lands there too on many calibrated rows (its own check of
+    # the same fact, from the data alone).
+    y, p = calibrated(200_000)
+    found = threshold_from_costs(y, p, false_positive_cost=c_fp, false_negative_cost=c_fn)
+    assert found == pytest.approx(ratio, abs=0.02)
 
 
-def test_segment_metrics_match_sklearn_on_each_segments_rows() -> None:
-    rng = np.random.default_rng(4)
-    n = 400
-    region = rng.choice(["north", "south", "east"], n)
-    y = rng.integers(0, 2, n)
-    noise = np.where(region == "east", 0.9, 0.25)  # east is scored much worse
-    prob = np.clip(y * 0.5 + 0.25 + rng.normal(0, noise, n), 0.001, 0.999)
-    out = segment_metrics("binary", "roc_auc", y, prob, None, {"region": region}, seed=0)
-    assert out["whole"]["score"] == pytest.approx(skm.roc_auc_score(y, prob))
-    rows = {s["value"]: s for s in out["columns"][0]["segments"]}
-    for value, entry in rows.items():
-        members = region == value
-        assert entry["rows"] == int(members.sum())
-        # Reference: scikit-learn's roc_auc_score on that segment's rows alone.
-        assert entry["score"] == pytest.approx(skm.roc_auc_score(y[members], prob[members]))
-        assert entry["low"] <= entry["score"] <= entry["high"]
-    assert rows["east"]["worse"] and not rows["north"]["worse"] and not rows["south"]["worse"]
+def test_expected_cost_matches_numpy_and_search_is_minimal() -> None:
+    y, p = calibrated(500)
+    w = RNG.uniform(0.5, 2.0, 500)
+    t = threshold_from_costs(y, p, false_positive_cost=2.0, false_negative_cost=3.0,
+                             weight=w)
+    # Direct numpy: weighted mean of c_FP over false positives and c_FN over false negatives.
+    direct = lambda cut: float(  # noqa: E731
+        np.sum(w * (2.0 * ((p > cut) & (y == 0)) + 3.0 * ((p <= cut) & (y == 1))))
+        / np.sum(w))
+    assert expected_cost(y, p, t, false_positive_cost=2.0, false_negative_cost=3.0,
+                         weight=w) == pytest.approx(direct(t), abs=1e-12)
+    # No cut on a fine grid does better than the one found.
+    assert min(direct(c) for c in np.linspace(0, 1, 2001)) >= direct(t) - 1e-12
 
 
-def test_regression_segments_and_many_valued_numbers() -> None:
-    rng = np.random.default_rng(5)
-    n = 300
-    age = rng.integers(18, 90, n)
-    y = rng.normal(0, 1, n)
-    pred = y + rng.normal(0, 0.5, n)
-    out = segment_metrics("regression", "rmse", y, pred, None, {"age": age}, seed=0)
-    segments = out["columns"][0]["segments"]
-    assert len(segments) == 5  # quantile bins, not 72 ages
-    labels = segment_labels(age)
-    for entry in segments:
-        members = labels == entry["value"]
-        assert entry["score"] == pytest.approx(math.sqrt(skm.mean_squared_error(
-            y[members], pred[members])))
-
-
-@pytest.fixture(scope="module")
-def cancer_eval(tmp_path_factory):
-    # Breast Cancer Wisconsin (Diagnostic), Wolberg et al., UCI; bundled with scikit-learn.
-    frame = load_breast_cancer(as_frame=True).frame.rename(columns={"target": "benign"})
-    frame["size_band"] = pd.cut(frame["mean radius"], [0, 12, 15, 40],
-                                labels=["small", "medium", "large"]).astype(str)
-    data = prepare(frame, target="benign", exclude=["size_band"], segments=["size_band"])
-    plan = plan_validation(data, n_folds=3, holdout_fraction=0.3, seed=1)
-    config = SearchConfig(task="binary", metric="log_loss", n_trials=2, max_rounds=40,
-                          early_stopping_rounds=5)
-    url = f"sqlite:///{tmp_path_factory.mktemp('ev') / 's.db'}"
-    result = run_search(data, plan, config, storage_url=url, study_name="ev")
-    fitted = fit_final(data, plan, config, result.best)
-    return data, plan, fitted, evaluate_model(fitted, data, plan, config, n_resamples=50)
-
-
-def test_evaluation_reports_decision_diagnostics_on_the_holdout(cancer_eval) -> None:
-    data, plan, fitted, ev = cancer_eval
-    decision = ev["decision"]
-    rows = plan.holdout_idx
-    # Reference: LightGBM's own predict on the hold-out rows, then scikit-learn.
-    prob = fitted.booster.predict(data.X.iloc[rows])
-    y = data.y[rows]
-    assert decision["confusion"]["matrix"] == skm.confusion_matrix(
-        y, (prob > 0.5).astype(int), labels=[0, 1]).tolist()
-    assert decision["gains"]["rows"] == len(rows)
-    assert "size_band" not in data.schema.columns  # a segment need not be a feature
-    band = np.asarray(data.segments["size_band"])[rows]
-    for entry in decision["segments"]["columns"][0]["segments"]:
-        members = band == entry["value"]
-        assert entry["score"] == pytest.approx(skm.log_loss(y[members], prob[members],
-                                                            labels=[0, 1]))
-
-
-def test_regression_evaluation_has_predicted_vs_actual(tmp_path) -> None:
-    # Diabetes progression (Efron et al. 2004), bundled with scikit-learn.
-    frame = load_diabetes(as_frame=True).frame
-    data = prepare(frame, target="target", task="regression")
-    plan = plan_validation(data, n_folds=3, holdout_fraction=0.25, seed=0)
-    config = SearchConfig(task="regression", metric="rmse", n_trials=2, max_rounds=40,
-                          early_stopping_rounds=5)
-    result = run_search(data, plan, config, storage_url=f"sqlite:///{tmp_path}/s.db",
-                        study_name="d")
-    fitted = fit_final(data, plan, config, result.best)
-    ev = evaluate_model(fitted, data, plan, config, n_resamples=20)
-    points = ev["decision"]["regression"]
-    pred = fitted.booster.predict(data.X.iloc[plan.holdout_idx])
-    np.testing.assert_allclose(points["predicted"], pred)
-    np.testing.assert_allclose(points["actual"], data.y[plan.holdout_idx])
-    assert "segments" not in ev["decision"]
+def test_out_of_fold_choice_and_holdout_report() -> None:
+    y, p = calibrated(2000)
+    oof, hold = (y[:1500], p[:1500] ** 2), (y[1500:], p[1500:] ** 2, None)  # miscalibrated
+    made = decide({"false_positive_cost": 1.0, "false_negative_cost": 4.0}, calibrated=False,
+                  oof=oof, holdout=hold)
+    assert made["method"] == "out_of_fold"
+    # p**2 shrinks probabilities: the best cut sits near 0.2**2, far below the ratio 0.2.
+    assert made["threshold"] == pytest.approx(0.04, abs=0.03)
+    at = made["holdout"]
+    assert at["rows"] == 500
+    assert at["expected_cost_per_row"] < at["expected_cost_per_row_at_0_5"]
+    assert decide(None, calibrated=False, oof=None, holdout=None)["threshold"] == 0.5

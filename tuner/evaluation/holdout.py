@@ -14,12 +14,12 @@ import numpy as np
 from tuner._lgb import predict
 from tuner.config import SearchConfig
 from tuner.dataset import PreparedData
-from tuner.evaluation.decision import decision_report
 from tuner.evaluation.diagnostics import (
     hyperparameter_importance,
     leaf_sizes,
     learning_curve,
 )
+from tuner.evaluation.outcomes import outcomes_report
 from tuner.metrics import get_metric, score_all
 from tuner.model import FittedModel
 from tuner.validation import ValidationPlan
@@ -166,9 +166,9 @@ def evaluate_model(fitted: FittedModel, data: PreparedData, plan: ValidationPlan
 
     Returns:
         ``holdout_intervals``, ``optimism``, ``learning_curve``, ``leaves``,
-        ``calibration`` (binary with a hold-out), ``decision`` (gains and confusion for
+        ``calibration`` (binary with a hold-out), ``outcomes`` (gains and confusion for
         classification, predicted-vs-actual for regression, metrics per segment; see
-        :mod:`tuner.evaluation.decision`), ``hyperparameter_importance`` and a
+        :mod:`tuner.evaluation.outcomes`), ``hyperparameter_importance`` and a
         ``warnings`` list of plain sentences.
     """
     result: dict[str, Any] = {"seed": seed, "bootstrap_resamples": n_resamples}
@@ -183,7 +183,7 @@ def evaluate_model(fitted: FittedModel, data: PreparedData, plan: ValidationPlan
         result["optimism"] = optimism(fitted.metric, data.task, fitted.cv, intervals)
         if data.task == "binary":
             result["calibration"] = calibration(y, pred, w)
-        result["decision"] = decision_report(data, rows, pred, fitted.metric,
+        result["outcomes"] = outcomes_report(data, rows, pred, fitted.metric,
                                              threshold=threshold, seed=seed)
     result["learning_curve"] = learning_curve(data, plan, fitted.params, config)
     result["leaves"] = leaf_sizes(fitted.booster)

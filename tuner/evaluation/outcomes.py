@@ -15,7 +15,7 @@ import pandas as pd
 from tuner.columns import as_level_strings
 from tuner.metrics import get_metric
 
-__all__ = ["confusion", "decision_report", "gains", "regression_points", "segment_metrics"]
+__all__ = ["confusion", "outcomes_report", "gains", "regression_points", "segment_metrics"]
 
 #: Shares of the rows (ranked by score) at which the gains chart is read.
 GAINS_POINTS = 20
@@ -184,7 +184,7 @@ def segment_metrics(task: str, metric_name: str, y: np.ndarray, pred: np.ndarray
             "columns": out_columns}
 
 
-def decision_report(data: Any, rows: np.ndarray, pred: np.ndarray, metric: str, *,
+def outcomes_report(data: Any, rows: np.ndarray, pred: np.ndarray, metric: str, *,
                     threshold: float = 0.5, seed: int = 0) -> dict[str, Any]:
     """Everything above for the hold-out ``rows`` of ``data`` predicted as ``pred``."""
     y = data.y[rows]
