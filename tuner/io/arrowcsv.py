@@ -60,7 +60,8 @@ def read_csv(path: str | os.PathLike[str], header: list[str], *, skip_rows: int,
                        {**convert, "column_types": {**declared,
                                                     **{n: pa.string() for n in as_text}}})
         table = _integers_back(pa, table, integers)
-    columns = [_column(pa, field.type, column)
+    # Declared text stays as written: no padded-number conversion for those columns.
+    columns = [column if field.name in declared else _column(pa, field.type, column)
                for field, column in zip(table.schema, table.columns, strict=True)]
     table = pa.Table.from_arrays(columns, names=header)
     del columns
