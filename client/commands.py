@@ -41,8 +41,11 @@ def cmd_upload(args: argparse.Namespace) -> int:
     parquet = path.suffix.lower() in (".parquet", ".pq")
     media = "application/vnd.apache.parquet" if parquet else "text/csv"
     name = args.name or path.stem
+    params = {"name": name}
+    if args.kind:
+        params["kinds"] = ",".join(f"{column}:{kind}" for column, kind in args.kind)
     with _api(args) as api, path.open("rb") as body:
-        dataset = api.post("/v1/datasets", params={"name": name}, content=body,
+        dataset = api.post("/v1/datasets", params=params, content=body,
                            headers={"Content-Type": media})
     _note(f"uploaded {path.name}: {dataset['rows']} rows, {dataset['n_columns']} columns")
     for warning in dataset.get("warnings", []):
@@ -84,6 +87,20 @@ def _job_request(args: argparse.Namespace) -> dict[str, Any]:
         body["cv"] = {"folds": args.folds}
     if args.exclude:
         body["exclude"] = args.exclude
+    if args.kind:
+        body["column_kinds"] = dict(args.kind)
+    if args.monotone:
+        body["monotone"] = dict(args.monotone)
+    if args.interaction:
+        body["interaction_constraints"] = args.interaction
+    if args.fixed:
+        body["fixed"] = dict(args.fixed)
+    if args.max_rounds is not None:
+        body["max_rounds"] = args.max_rounds
+    if args.early_stopping_rounds is not None:
+        body["early_stopping_rounds"] = args.early_stopping_rounds
+    if args.segment:
+        body["segments"] = args.segment
     return body
 
 

@@ -3,6 +3,7 @@ worker: upload, job, model file and predictions."""
 
 from __future__ import annotations
 
+import json
 import re
 
 import lightgbm as lgb
@@ -166,3 +167,30 @@ def test_binary_job_reports_gains_confusion_and_segments(server: Server, tmp_pat
     assert outcomes["confusion"]["matrix"] == confusion_matrix(
         run.data.y[rows], (prob > threshold).astype(int), labels=[0, 1]).tolist()
     assert lgb.Booster(model_str=text).num_trees() >= 1
+
+
+def test_every_control_is_reachable_from_the_command_line(server: Server, tmp_path) -> None:
+    from tests.e2e.test_practitioner import gk
+
+    path = tmp_path / "stores.csv"
+    _stores().to_csv(path, index=False)
+    upload = gk(server, "upload", str(path), "--kind", "store_id=categorical", "-f", "json")
+    assert upload.returncode == 0, upload.stderr
+    dataset = json.loads(upload.stdout)
+    columns = {c["name"]: c for c in dataset["columns"]}
+    assert columns["store_id"]["declared"] == "categorical"
+    tune = gk(server, "tune", dataset["id"], "--target", "sales", "--trials", "2",
+              "--kind", "note=ignore", "--monotone", "price=-1",
+              "--interaction", "store_id,price", "--fixed", "min_data_in_bin=4",
+              "--fixed", "boosting=gbdt", "--max-rounds", "70",
+              "--early-stopping-rounds", "7", "--segment", "store_id", "-f", "json")
+    assert tune.returncode == 0, tune.stderr
+    spec = json.loads(tune.stdout)["spec"]
+    assert spec["column_kinds"] == {"store_id": "categorical", "note": "ignore"}
+    assert spec["monotone"] == {"price": -1}
+    assert spec["interaction_constraints"] == [["store_id", "price"]]
+    assert spec["fixed"] == {"min_data_in_bin": 4, "boosting": "gbdt"}
+    assert spec["max_rounds"] == 70 and spec["early_stopping_rounds"] == 7
+    assert spec["segments"] == ["store_id"]
+    refused = gk(server, "tune", dataset["id"], "--target", "sales", "--fixed", "seed=3")
+    assert refused.returncode == 4 and "fixed.seed" in refused.stderr
