@@ -82,6 +82,40 @@ def test_imbalance_lists_class_counts() -> None:
                           "rare": np.r_[np.ones(30, dtype=int), np.zeros(970, dtype=int)]})
     found = [w for w in _warnings(frame, "rare") if "imbalanced" in w]
     assert found and "0: 970" in found[0] and "1: 30" in found[0]
+    # It says what to act with: LightGBM's balancing, the positive weight (negatives /
+    # positives = 970 / 30 at the top of the range) and a metric that suits rare positives.
+    assert "is_unbalance" in found[0] and "scale_pos_weight" in found[0]
+    assert '"high": 32.3' in found[0] and "average_precision" in found[0]
+    frame["rare"] = np.r_[np.full(20, 2), np.ones(30, dtype=int), np.zeros(950, dtype=int)]
+    found = [w for w in _warnings(frame, "rare") if "imbalanced" in w]
+    assert found and "weight_column" in found[0]
+
+
+def test_imbalance_controls_are_checked_and_reach_lightgbm(tmp_path) -> None:
+    from tuner.config import SearchConfig, check_config
+    from tuner.errors import ConfigError
+    from tuner.space import DEFAULT_SPACE, merge_overrides
+
+    rng = np.random.default_rng(0)
+    frame = pd.DataFrame({"x": rng.normal(size=400),
+                          "rare": (rng.random(400) < 0.1).astype(int)})
+    data = tuner.prepare(frame, target="rare")
+    both = merge_overrides(DEFAULT_SPACE, {"scale_pos_weight": {"low": 1, "high": 9},
+                                           "is_unbalance": True})
+    with pytest.raises(ConfigError) as exc:
+        check_config(data, SearchConfig(task="binary", metric="roc_auc", space=both))
+    assert [e["field"] for e in exc.value.errors] == ["search_space.scale_pos_weight"]
+    space = merge_overrides(DEFAULT_SPACE, {"scale_pos_weight": {"low": 1, "high": 9}})
+    plan = tuner.plan_validation(data, n_folds=3, seed=0)
+    config = SearchConfig(task="binary", metric="roc_auc", space=space, n_trials=3,
+                          max_rounds=20, early_stopping_rounds=5)
+    result = tuner.run_search(data, plan, config, storage_url=f"sqlite:///{tmp_path}/s.db",
+                              study_name="w")
+    weight = result.best.params["scale_pos_weight"]
+    assert 1 <= weight <= 9
+    fitted = tuner.fit_final(data, plan, config, result.best)
+    # LightGBM's own model file records the weight it trained with.
+    assert f"[scale_pos_weight: {weight:g}" in fitted.booster.model_to_string()
 
 
 def test_too_few_rows_for_the_columns() -> None:
