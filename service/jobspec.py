@@ -101,6 +101,9 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
         holdout_fraction=float(request.get("holdout_fraction", 0.2)),
         seed=seed,
     )
+    if data.segments and not len(plan.holdout_idx):
+        message = "metrics per segment are computed on the hold-out; set holdout_fraction > 0"
+        raise tuner.ConfigError(message, [{"field": "segments", "message": message}])
     # Leaks, target copies, duplicates across the hold-out, imbalance, size: job warnings.
     data = dataclasses.replace(data, warnings=(*data.warnings, *job_warnings(data, plan)))
     budget = request.get("budget") or {}

@@ -28,6 +28,8 @@ BAD = [
     ({"column_kinds": {"nope": "numeric"}}, "column_kinds.nope"),
     ({"column_kinds": {"kiln": "colour"}}, "column_kinds.kiln"),
     ({"column_kinds": {"defect": "categorical"}}, "column_kinds.defect"),  # the target
+    ({"segments": ["no_such_column"]}, "segments"),
+    ({"segments": ["kiln"], "holdout_fraction": 0}, "segments"),  # nothing to report on
 ]
 
 
