@@ -110,13 +110,23 @@ def test_served_predictions_match_lightgbm(server: Server, kiln_job: dict, tmp_p
     # frame built here with plain pandas: LightGBM maps category levels by value through
     # the pandas_categorical list saved in the model file.
     booster = lgb.Booster(model_file=str(path))
-    names = [f["name"] for f in model["feature_schema"]["features"]]
-    plain = frame[names].copy()
-    for col in ("kiln", "clay_body", "shelf_position"):
-        plain[col] = pd.Categorical(plain[col].astype(object))
-    plain["fired_on"] = (pd.to_datetime(plain["fired_on"]) - pd.Timestamp(0)).dt.total_seconds()
-    expected = booster.predict(plain.astype({c: float for c in names
-                                             if c not in ("kiln", "clay_body", "shelf_position")}))
+    plain = pd.DataFrame(index=frame.index)
+    for feature in model["feature_schema"]["features"]:
+        column = frame[feature["name"]]
+        if feature["kind"] == "categorical":
+            plain[feature["name"]] = pd.Categorical(column.astype(object))
+        elif feature.get("parts"):
+            # A date's calendar parts, from pandas' own .dt accessors (UTC).
+            stamps = pd.to_datetime(column, utc=True)
+            values = {"weekday": stamps.dt.day_of_week, "day": stamps.dt.day,
+                      "month": stamps.dt.month, "hour": stamps.dt.hour,
+                      "elapsed_days": (stamps - pd.Timestamp(0, tz="UTC")).dt.total_seconds()
+                      / 86400}
+            for part, name in zip(feature["parts"], feature["model_columns"], strict=True):
+                plain[name] = values[part].astype(float)
+        else:
+            plain[feature["name"]] = column.astype(float)
+    expected = booster.predict(plain)
     probs = np.array(served["probabilities"])[:, 1]
     np.testing.assert_allclose(probs, expected, rtol=0, atol=1e-9)
     assert served["classes"] == [0, 1]
