@@ -47,13 +47,25 @@ def jobs(server: Server) -> dict:
     return out
 
 
-def _plain_kiln_frame(frame: pd.DataFrame, names: list[str]) -> pd.DataFrame:
-    """The kiln features as LightGBM sees them, built with plain pandas."""
-    plain = frame[names].copy()
-    for col in KILN_CATEGORICALS:
-        plain[col] = pd.Categorical(plain[col].astype(object))
-    plain["fired_on"] = (pd.to_datetime(plain["fired_on"]) - pd.Timestamp(0)).dt.total_seconds()
-    return plain.astype({c: float for c in names if c not in KILN_CATEGORICALS})
+def _plain_kiln_frame(frame: pd.DataFrame, features: list[dict]) -> pd.DataFrame:
+    """The kiln features as LightGBM sees them, built with plain pandas (a date's calendar
+    parts from pandas' own .dt accessors, in UTC)."""
+    plain = pd.DataFrame(index=frame.index)
+    for feature in features:
+        name = feature["name"]
+        if name in KILN_CATEGORICALS:
+            plain[name] = pd.Categorical(frame[name].astype(object))
+        elif feature.get("parts"):
+            stamps = pd.to_datetime(frame[name], utc=True)
+            values = {"weekday": stamps.dt.day_of_week, "day": stamps.dt.day,
+                      "month": stamps.dt.month, "hour": stamps.dt.hour,
+                      "elapsed_days": (stamps - pd.Timestamp(0, tz="UTC")).dt.total_seconds()
+                      / 86400}
+            for part, column in zip(feature["parts"], feature["model_columns"], strict=True):
+                plain[column] = values[part].astype(float)
+        else:
+            plain[name] = frame[name].astype(float)
+    return plain
 
 
 def test_model_reports_intervals_and_diagnostics(jobs: dict) -> None:
@@ -117,9 +129,10 @@ def test_explain_contributions_sum_to_raw_score(server: Server, jobs: dict, tmp_
                              headers={"Content-Type": "text/csv"})
         (tmp_path / "m.txt").write_bytes(client.get(f"/v1/models/{model['id']}/file").content)
     assert plain_json.get("contributions") is None  # only on request
-    names = [f["name"] for f in model["feature_schema"]["features"]]
+    schema = model["feature_schema"]["features"]
+    names = [n for f in schema for n in f.get("model_columns", [f["name"]])]
     booster = lgb.Booster(model_file=str(tmp_path / "m.txt"))
-    plain = _plain_kiln_frame(frame, names)
+    plain = _plain_kiln_frame(frame, schema)
     # References: LightGBM's own Booster.predict with raw_score and pred_contrib.
     raw = booster.predict(plain, raw_score=True)
     contrib = booster.predict(plain, pred_contrib=True)
@@ -181,6 +194,12 @@ def test_plots_are_svg_with_one_mark_per_datum(server: Server, jobs: dict) -> No
 
     root = _plot(server, job["id"], "calibration")
     assert len(root.findall(".//s:g[@id='bins']//s:use", SVG)) == len(ev["calibration"]["counts"])
+
+    root = _plot(server, job["id"], "gains")  # the origin plus one point per share
+    assert _path_points(root, "gains") == len(ev["outcomes"]["gains"]["share"]) + 1
+    root = _plot(server, job["id"], "confusion")
+    cells = [e for e in root.iter() if (e.get("id") or "").startswith("cell-")]
+    assert len(cells) == 4
 
 
 def test_plot_errors_are_problem_documents(server: Server, jobs: dict) -> None:

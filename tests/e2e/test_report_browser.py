@@ -72,7 +72,8 @@ def test_report_renders_in_chromium(server: Server, finished_job: dict) -> None:
         assert int(first[1].text) == board["data"][0]["number"]
         images = driver.find_elements(By.CSS_SELECTOR, ".plots img")
         assert [Path(i.get_attribute("src")).stem for i in images] == [
-            "history", "hyperparameters", "features", "learning", "calibration"]
+            "history", "hyperparameters", "features", "learning", "calibration", "gains",
+            "confusion"]
         for img in images:
             driver.execute_script("arguments[0].scrollIntoView()", img)  # lazy images load
         driver.execute_script("window.scrollTo(0, 0)")
