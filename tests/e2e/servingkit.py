@@ -105,12 +105,21 @@ def served(kind: str, tmp: Path) -> Iterator[Served]:
 def features_frame(booster: lgb.Booster, model: dict, rows: pd.DataFrame) -> pd.DataFrame:
     """The rows built with plain pandas for LightGBM's own predict: LightGBM maps category
     levels by value through the pandas_categorical list saved in the model file, and a
-    date is seconds since the epoch."""
+    date is its calendar parts, from pandas' own .dt accessors in UTC (seconds since the
+    epoch for a model without parts)."""
     out = {}
     for f in model["feature_schema"]["features"]:
         values = rows[f["name"]]
         if f["kind"] == "categorical":
             out[f["name"]] = pd.Categorical(values.astype(object))
+        elif f["kind"] == "datetime" and f.get("parts"):
+            stamps = pd.to_datetime(values, utc=True)
+            parts = {"weekday": stamps.dt.day_of_week, "day": stamps.dt.day,
+                     "month": stamps.dt.month, "hour": stamps.dt.hour,
+                     "elapsed_days": (stamps - pd.Timestamp(0, tz="UTC")).dt.total_seconds()
+                     / 86400}
+            for part, name in zip(f["parts"], f["model_columns"], strict=True):
+                out[name] = parts[part].astype("float64")
         elif f["kind"] == "datetime":
             out[f["name"]] = (pd.to_datetime(values) - pd.Timestamp(0)).dt.total_seconds()
         else:
