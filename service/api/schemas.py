@@ -296,3 +296,38 @@ class ChannelList(BaseModel):
     items: list[ChannelSummary]
     total: int
     next: str | None = None
+
+
+class ScoringCreate(Strict):
+    model_config = ConfigDict(extra="forbid", json_schema_extra={
+        "examples": [{"dataset_id": "ds_0123abcd4567ef89", "keep": ["firing_id"]}]})
+
+    dataset_id: str = Field(min_length=1, max_length=64)
+    # Dataset columns written unchanged beside each prediction, first.
+    keep: list[str] = Field(default_factory=list, max_length=100)
+    unseen: Literal["error", "missing"] = "error"
+
+
+class ScoringProgress(BaseModel):
+    rows_done: int
+    rows_total: int
+    fraction: float
+
+
+class ScoringOut(BaseModel):
+    id: str
+    model_id: str
+    channel: str | None
+    dataset_id: str
+    keep: list[str]
+    unseen: str
+    status: str
+    progress: ScoringProgress
+    error: str | None
+    # When succeeded: GET it with Accept: text/csv for CSV, else Parquet.
+    result_url: str | None
+    cancel_requested: bool
+    attempts: int
+    created_at: datetime
+    started_at: datetime | None
+    finished_at: datetime | None
