@@ -15,6 +15,7 @@ from service.tables import (
     ApiKey,
     Channel,
     ChannelEvent,
+    Comparison,
     Dataset,
     Job,
     JobStatus,
@@ -350,4 +351,47 @@ def finish_scoring(session: Session, *, scoring_id: str, worker_id: str, status:
                    **fields: Any) -> None:
     session.execute(sa.update(Scoring).where(Scoring.id == scoring_id,
                                              Scoring.worker_id == worker_id)
+                    .values(status=status, finished_at=utcnow(), **fields))
+
+
+# -- comparisons ------------------------------------------------------------
+
+
+def add_comparison(session: Session, **fields: Any) -> Comparison:
+    comparison = Comparison(**fields)
+    session.add(comparison)
+    session.flush()
+    return comparison
+
+
+def get_comparison(session: Session, comparison_id: str) -> Comparison:
+    comparison = session.get(Comparison, comparison_id)
+    if comparison is None:
+        raise NotFound(f"no comparison with id {comparison_id!r}")
+    return comparison
+
+
+def claim_comparison(session: Session, *, worker_id: str,
+                     stale_after_seconds: float) -> str | None:
+    """Take the oldest queued comparison, or one whose worker went quiet."""
+    now = utcnow()
+    stale = now - timedelta(seconds=stale_after_seconds)
+    claimable = sa.or_(
+        Comparison.status == JobStatus.QUEUED.value,
+        sa.and_(Comparison.status == JobStatus.RUNNING.value, Comparison.heartbeat_at < stale))
+    candidate = (sa.select(Comparison.id).where(claimable)
+                 .order_by(Comparison.created_at, Comparison.id).limit(1)
+                 .with_for_update(skip_locked=True).scalar_subquery())
+    stmt = (sa.update(Comparison).where(Comparison.id == candidate, claimable)
+            .values(status=JobStatus.RUNNING.value, worker_id=worker_id, heartbeat_at=now,
+                    started_at=sa.func.coalesce(Comparison.started_at, now),
+                    attempts=Comparison.attempts + 1)
+            .returning(Comparison.id).execution_options(synchronize_session=False))
+    return session.execute(stmt).scalar_one_or_none()
+
+
+def finish_comparison(session: Session, *, comparison_id: str, worker_id: str, status: str,
+                      **fields: Any) -> None:
+    session.execute(sa.update(Comparison).where(Comparison.id == comparison_id,
+                                                Comparison.worker_id == worker_id)
                     .values(status=status, finished_at=utcnow(), **fields))

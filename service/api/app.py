@@ -14,6 +14,7 @@ from service.api.predictors import PredictorCache
 from service.api.routes import (
     bundle,
     channels,
+    comparisons,
     datasets,
     events,
     health,
@@ -60,7 +61,7 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
                            allow_headers=["Authorization", "Content-Type", "Accept"])
     app.include_router(health.router)
     for router in (datasets.router, jobs.router, models.router, channels.router,
-                   scorings.router):
+                   scorings.router, comparisons.router):
         app.include_router(router, dependencies=[AuthDep])
     # Practitioner-facing additions: live events, bundles, /metrics, documented examples.
     for router in (events.router, bundle.router):
