@@ -54,6 +54,14 @@ class DecisionSpec(Strict):
         return self
 
 
+class PromoteSpec(Strict):
+    """Move a channel to the job's model when it succeeds (see README, champion and
+    challenger)."""
+
+    channel: str = Field(pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,99}$")
+    rule: Literal["if_better", "always"] = "if_better"
+
+
 class JobCreate(Strict):
     """A tuning job request. Only ``dataset_id`` and ``target`` are required."""
 
@@ -108,6 +116,7 @@ class JobCreate(Strict):
     early_stopping_rounds: int = Field(default=50, ge=1, le=10_000)
     # Binary only: the threshold the model serves labels with comes from these costs.
     decision: DecisionSpec | None = None
+    promote: PromoteSpec | None = None
 
 
 class ColumnOut(BaseModel):
@@ -165,6 +174,8 @@ class JobOut(BaseModel):
     spec: dict[str, Any]
     progress: Progress
     model_id: str | None
+    # With a promote request, once the job has succeeded: what happened to the channel.
+    promotion: dict[str, Any] | None = None
     error: str | None
     warnings: list[str]
     cancel_requested: bool
@@ -313,3 +324,61 @@ class ChannelList(BaseModel):
     items: list[ChannelSummary]
     total: int
     next: str | None = None
+
+
+class ScoringCreate(Strict):
+    model_config = ConfigDict(extra="forbid", json_schema_extra={
+        "examples": [{"dataset_id": "ds_0123abcd4567ef89", "keep": ["firing_id"]}]})
+
+    dataset_id: str = Field(min_length=1, max_length=64)
+    # Dataset columns written unchanged beside each prediction, first.
+    keep: list[str] = Field(default_factory=list, max_length=100)
+    unseen: Literal["error", "missing"] = "error"
+
+
+class ScoringProgress(BaseModel):
+    rows_done: int
+    rows_total: int
+    fraction: float
+
+
+class ScoringOut(BaseModel):
+    id: str
+    model_id: str
+    channel: str | None
+    dataset_id: str
+    keep: list[str]
+    unseen: str
+    status: str
+    progress: ScoringProgress
+    error: str | None
+    # When succeeded: GET it with Accept: text/csv for CSV, else Parquet.
+    result_url: str | None
+    cancel_requested: bool
+    attempts: int
+    created_at: datetime
+    started_at: datetime | None
+    finished_at: datetime | None
+
+
+class ComparisonCreate(Strict):
+    model_config = ConfigDict(extra="forbid", json_schema_extra={"examples": [
+        {"models": ["mdl_4567cdef89ab0123", "mdl_0f1e2d3c4b5a6978"],
+         "dataset_id": "ds_0123abcd4567ef89"}]})
+
+    models: list[str] = Field(min_length=2, max_length=2)
+    dataset_id: str = Field(min_length=1, max_length=64)
+
+
+class ComparisonOut(BaseModel):
+    id: str
+    models: list[str]
+    dataset_id: str
+    status: str
+    # When succeeded: scores per model, difference (second minus first) with its 95%
+    # paired bootstrap interval, better (a model id or null), comparable, reasons.
+    result: dict[str, Any] | None
+    error: str | None
+    created_at: datetime
+    started_at: datetime | None
+    finished_at: datetime | None

@@ -76,7 +76,9 @@ def job(client, dataset_id: str, **fields) -> str:  # type: ignore[no-untyped-de
 @contextlib.contextmanager
 def served(kind: str, tmp: Path) -> Iterator[Served]:
     with fresh_database(kind, tmp) as url:
-        server = Server(home=tmp / "home", db_url=url, workers=1).start()
+        # Small scoring chunks, so a few thousand rows already take several.
+        server = Server(home=tmp / "home", db_url=url, workers=1,
+                        extra_env={"GROVEKEEPER_SCORING_CHUNK_ROWS": "700"}).start()
         try:
             # Keys exist, so every change is made by a known key (channel history names it).
             _, admin = create_key(url, scope="admin")
