@@ -68,7 +68,7 @@ def _score(url: str, predictor: tuner.Predictor, source: object, dest: object, *
            shutdown: threading.Event, chunk_rows: int) -> int:
     parquet = pq.ParquetFile(source)  # type: ignore[arg-type]
     present = set(parquet.schema_arrow.names)
-    features = [n for n in predictor.schema.names if n in present]
+    features = [n for n in predictor.schema.columns if n in present]  # input columns
     columns = list(dict.fromkeys([*keep, *features]))
     done = 0
     writer: pq.ParquetWriter | None = None
