@@ -28,6 +28,7 @@ ROUTES = [
     ("GET", "/v1/jobs/{job}/trials", "read", 200),
     ("GET", "/v1/jobs/{job}/leaderboard", "read", 200),
     ("GET", "/v1/models", "read", 200),
+    ("GET", "/v1/models/{model}/drift", "read", 200),
     ("GET", "/v1/models/{model}", "read", 200),
     ("PUT", "/v1/channels/{channel}", "write", 200),
     ("GET", "/v1/channels/{channel}", "read", 200),
