@@ -116,3 +116,21 @@ def test_comparison_of_two_models_matches_sklearn(promoted: dict) -> None:
     assert seen["status"] == "succeeded" and seen["result"]["comparable"] is False
     assert any("trained on some of these rows" in r for r in seen["result"]["reasons"])
     assert same.status_code == 422
+
+
+def test_models_behind_a_channel_cannot_be_deleted(promoted: dict) -> None:
+    server: Server = promoted["server"]
+    serving, spare = promoted["jobs"]["forced"]["model_id"], promoted["jobs"]["worse"][
+        "model_id"]
+    with server.client() as client:
+        refused = client.delete(f"/v1/models/{serving}")
+        still = client.get(f"/v1/models/{serving}/file")
+        deleted = client.delete(f"/v1/models/{spare}")
+        gone = client.get(f"/v1/models/{spare}")
+        listed = [m["id"] for m in client.get("/v1/models").json()["items"]]
+    assert refused.status_code == 409
+    assert [e["channel"] for e in refused.json()["errors"]] == ["kilns"]
+    assert still.status_code == 200
+    assert deleted.status_code == 204 and gone.status_code == 404
+    assert spare not in listed and serving in listed
+    assert not list(server.home.rglob(f"{spare}.txt"))
