@@ -134,3 +134,12 @@ def test_models_behind_a_channel_cannot_be_deleted(promoted: dict) -> None:
     assert deleted.status_code == 204 and gone.status_code == 404
     assert spare not in listed and serving in listed
     assert not list(server.home.rglob(f"{spare}.txt"))
+
+
+def test_the_report_page_shows_the_comparison(promoted: dict) -> None:
+    good = promoted["jobs"]["good"]
+    with promoted["server"].client() as client:
+        page = client.get(f"/v1/jobs/{good['id']}/report").text
+    c = good["promotion"]["comparison"]
+    assert 'id="promotion"' in page and "moved to this job" in page
+    assert f"{c['interval'][0]:.4g}" in page and f"{c['interval'][1]:.4g}" in page
