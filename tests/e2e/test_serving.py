@@ -489,6 +489,8 @@ def test_psi_gauges_only_for_models_behind_a_channel(env: Served) -> None:
     assert not [s for s in before if s.labels["model_id"] == steady["id"]]
     mine = [s for s in after if s.labels["channel"] == name]
     assert mine and all(s.labels["model_id"] == steady["id"] for s in mine)
+    # One series per model column (a date's calendar parts each).
     assert {s.labels["feature"] for s in mine} == {
-        f["name"] for f in steady["feature_schema"]["features"]}
+        n for f in steady["feature_schema"]["features"]
+        for n in f.get("model_columns", [f["name"]])}
     assert {s.labels["model_id"] for s in after} <= behind
