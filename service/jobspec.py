@@ -81,7 +81,7 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
     plan = plan_validation(
         data,
         strategy=cv.get("strategy"),
-        n_folds=int(cv.get("folds", 5)),
+        n_folds=None if cv.get("folds") is None else int(cv["folds"]),
         holdout_fraction=float(request.get("holdout_fraction", 0.2)),
         seed=seed,
     )
@@ -108,6 +108,7 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
     sampled = effective_space(space, n_train_rows=plan.min_fit_rows).to_dict()
     cv_scheme = {
         "folds": len(plan.folds),
+        "partition_folds": plan.partition_folds,
         "strategy": plan.strategy,
         "group_column": cv.get("group_column"),
         "time_column": cv.get("time_column"),

@@ -35,7 +35,8 @@ class Budget(Strict):
 
 
 class CVSpec(Strict):
-    folds: int = Field(default=5, ge=2, le=20)
+    # None: chosen from the search rows (tuner.validation.validation_splits).
+    folds: int | None = Field(default=None, ge=2, le=20)
     strategy: Strategy | None = None
     group_column: str | None = None
     time_column: str | None = None
@@ -154,6 +155,10 @@ class TrialOut(BaseModel):
     boosting_rounds: int | None
     duration_seconds: float | None
     train_seconds: float | None = None
+    # Standard error of score (over folds; by batch means on a single validation split).
+    score_se: float | None = None
+    # Largest share of the search rows the trial was scored on (1.0 = all).
+    fidelity: float | None = None
 
 
 class LeaderboardRow(BaseModel):
@@ -161,6 +166,7 @@ class LeaderboardRow(BaseModel):
     number: int
     score: float
     score_std: float | None
+    score_se: float | None = None
     params: dict[str, Any]
     boosting_rounds: int | None
 
