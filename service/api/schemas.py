@@ -72,10 +72,15 @@ class JobCreate(Strict):
     # Regression loss: regression (squared error), poisson, tweedie, huber, quantile.
     objective: str | None = None
     pruner: Literal["median", "halving", "none"] = "median"
-    max_parallel_trials: int = Field(default=1, ge=1, le=64)
+    # Trials one worker runs at once. None: chosen from the table's size to use every core
+    # of the worker (tuner.trial_loop.machine_split), or 1 for a reproducible job.
+    max_parallel_trials: int | None = Field(default=None, ge=1, le=64)
     # LightGBM threads this job's running trials share in one worker (divided among them,
-    # at least one each, never more than the worker's cores); default one per trial.
+    # at least one each, never more than the worker's cores); default as above.
     num_threads: int | None = Field(default=None, ge=1, le=64)
+    # Byte-identical results (same data, seed and settings: same trials, same model file):
+    # one trial at a time in one worker.
+    reproducible: bool = False
     selection: Literal["best", "one_se"] = "best"
     final_refit: Literal["train", "all"] = "train"
     warm_start_job_id: str | None = Field(default=None, min_length=1, max_length=64)

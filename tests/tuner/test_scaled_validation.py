@@ -129,3 +129,17 @@ def test_a_clearly_worse_trial_stops_inside_its_first_fold(make_frame) -> None:
     first = min(checkpoints(max_rounds))
     assert attrs["rounds_trained"] == first < max_rounds
     assert list(bad.intermediate_values) == [pruner_step(0, first, max_rounds)]
+
+
+@pytest.mark.parametrize(("rows", "cores", "split"), [
+    (2_000, 2, (2, 2)), (49_999, 8, (8, 8)), (50_000, 2, (1, 2)), (640_000, 16, (1, 16)),
+    (1_000, 1, (1, 1)),
+])
+def test_every_core_is_used_as_trials_or_threads(rows, cores, split) -> None:
+    from tuner.trial_loop import THREADS_FROM_ROWS, machine_split, threads_per_trial
+
+    assert THREADS_FROM_ROWS == 50_000
+    parallel, threads = machine_split(rows, cores)
+    assert (parallel, threads) == split
+    # Every core is busy, never more threads than cores.
+    assert parallel * threads_per_trial(threads, parallel) == cores
