@@ -59,29 +59,37 @@ class _Fold:
     build_seconds: float = 0.0
 
 
-#: Rounds of a fold at which its validation score so far is reported to the pruner
-#: (doubling, so a long fold costs a handful of storage writes): a clearly worse trial
-#: stops inside its first fold, not after it.
-CHECKPOINT_FIRST = 25
+#: Boosting progress (rounds x learning rate) at which a fold's best validation score so
+#: far is reported to the pruner: 2.5, 5, 10, 20, … (doubling, so a long fold costs a
+#: handful of storage writes). Trials are compared at equal progress, not equal rounds:
+#: a trial with a tenth of the learning rate is compared after ten times the rounds, so
+#: slow learners are not pruned for being slow (25 rounds at 0.1 ~ 250 rounds at 0.01).
+CHECKPOINT_FIRST = 2.5
+#: Pruner steps per unit of progress (steps are integers).
+_STEPS_PER_UNIT = 10
 
 
-def checkpoints(max_rounds: int) -> frozenset[int]:
-    """Boosting rounds (1-based) at which a fold reports to the pruner: 25, 50, 100, …"""
-    out, r = set(), CHECKPOINT_FIRST
-    while r < max_rounds:
-        out.add(r)
-        r *= 2
-    return frozenset(out)
+def fold_steps(max_rounds: int) -> int:
+    """Pruner steps one fold spans: its largest possible progress (learning rate <= 1)."""
+    return _STEPS_PER_UNIT * max_rounds
 
 
-def pruner_step(fold: int, rounds: int, max_rounds: int) -> int:
-    """The pruner's step for round ``rounds`` of fold ``fold``: rounds over all folds.
+def checkpoints(max_rounds: int) -> tuple[int, ...]:
+    """In-fold checkpoints as pruner steps within a fold (progress x 10): 25, 50, 100, …"""
+    out, level = [], int(CHECKPOINT_FIRST * _STEPS_PER_UNIT)
+    while level < fold_steps(max_rounds):
+        out.append(level)
+        level *= 2
+    return tuple(out)
 
-    A fold's final score is reported at the step of its last possible round,
-    ``(fold + 1) * max_rounds``, so every trial reports it at the same step whatever
-    round early stopping ended it at.
+
+def pruner_step(fold: int, within: int, max_rounds: int) -> int:
+    """The pruner's step for checkpoint ``within`` (progress x 10) of fold ``fold``.
+
+    A fold's final score is reported at ``within = fold_steps(max_rounds)``, its end, so
+    every trial reports it at the same step whatever round early stopping ended it at.
     """
-    return fold * max_rounds + rounds
+    return fold * fold_steps(max_rounds) + within
 
 
 class _Checkpoints:
@@ -92,10 +100,11 @@ class _Checkpoints:
     order = 40  # after LightGBM's early stopping (order 30) has seen the round
 
     def __init__(self, trial: optuna.Trial, fold: int, max_rounds: int, sign: float,
-                 should_stop: Callable[[], bool] | None) -> None:
+                 learning_rate: float, should_stop: Callable[[], bool] | None) -> None:
         self.trial, self.fold, self.max_rounds, self.sign = trial, fold, max_rounds, sign
         self.should_stop = should_stop
-        self.at = checkpoints(max_rounds)
+        self.rate = float(learning_rate)
+        self.pending = list(checkpoints(max_rounds))
         self.best: float | None = None
         self.rounds = 0
 
@@ -111,8 +120,12 @@ class _Checkpoints:
         value = float(value) * (self.sign if higher_better else -self.sign)
         self.best = value if self.best is None else (
             max(self.best, value) if self.sign > 0 else min(self.best, value))
-        if self.rounds in self.at:
-            self.trial.report(self.best, pruner_step(self.fold, self.rounds, self.max_rounds))
+        progress = self.rounds * self.rate * _STEPS_PER_UNIT
+        reached = None
+        while self.pending and self.pending[0] <= progress + 1e-9:
+            reached = self.pending.pop(0)
+        if reached is not None:
+            self.trial.report(self.best, pruner_step(self.fold, reached, self.max_rounds))
             if self.trial.should_prune():
                 raise optuna.TrialPruned(f"pruned at round {self.rounds} of fold {self.fold}")
 
@@ -134,15 +147,14 @@ class CVObjective:
     """Mean CV score of one sampled LightGBM configuration.
 
     Folds run one after another. Inside each fold the best validation score so far is
-    reported at the :func:`checkpoints` rounds, and after each fold the running mean, so
-    the pruner can stop unpromising configurations early, inside the first fold too (steps
-    count rounds over folds: :func:`pruner_step`). Trial user attributes: ``params``
-    (every LightGBM parameter sampled or fixed), ``fold_scores``, ``best_iterations``,
-    ``train_seconds``, ``rounds_trained`` (rounds boosted, patience included),
-    ``fidelity`` and, for completed trials, ``score_std`` (``None`` with one split),
-    ``score_se`` (over folds, or by batch means on a single split) and
-    ``boosting_rounds`` (see :func:`refit_rounds`).
-    """
+    reported at the :func:`checkpoints` (boosting progress), and after each fold the
+    running mean, so the pruner can stop unpromising configurations early, inside the first
+    fold too (steps count progress over folds: :func:`pruner_step`). Trial user attributes:
+    ``params`` (every LightGBM parameter sampled or fixed), ``fold_scores``,
+    ``best_iterations``, ``train_seconds``, ``rounds_trained`` (rounds boosted, patience
+    included), ``fidelity`` and, for completed trials, ``score_std`` (``None`` with one
+    split), ``score_se`` (over folds, or by batch means on a single split) and
+    ``boosting_rounds`` (see :func:`refit_rounds`). """
 
     def __init__(
         self,
@@ -229,7 +241,8 @@ class CVObjective:
         fold = self._fold(k, params)
         started = time.perf_counter()
         sign = 1.0 if self.metric.direction == "maximize" else -1.0
-        watch = _Checkpoints(trial, k, self.max_rounds, sign, self.should_stop)
+        watch = _Checkpoints(trial, k, self.max_rounds, sign,
+                             params.get("learning_rate", 0.1), self.should_stop)
         try:
             booster = lgb.train(
                 params, fold.train_set, num_boost_round=self.max_rounds,
@@ -291,7 +304,8 @@ class CVObjective:
                 # every report is a storage write.
                 if k < last:
                     trial.report(float(np.mean(scores)),
-                                 step=pruner_step(k, self.max_rounds, self.max_rounds))
+                                 step=pruner_step(k, fold_steps(self.max_rounds),
+                                                  self.max_rounds))
                     if trial.should_prune():
                         raise optuna.TrialPruned(f"pruned after fold {k}")
         finally:

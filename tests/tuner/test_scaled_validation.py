@@ -11,7 +11,7 @@ from optuna.trial import TrialState
 
 from tuner import SearchConfig, plan_validation, prepare, run_search
 from tuner.metrics import get_metric
-from tuner.objective import CVObjective, base_params, checkpoints, pruner_step
+from tuner.objective import CVObjective, base_params, checkpoints, fold_steps, pruner_step
 from tuner.selection import select, split_standard_error
 from tuner.space import DEFAULT_SPACE, LIGHTGBM_DEFAULTS
 from tuner.trials import TrialRecord, trial_attrs
@@ -116,30 +116,24 @@ def test_a_clearly_worse_trial_stops_inside_its_first_fold(make_frame) -> None:
     study = optuna.create_study(direction="minimize",
                                 pruner=optuna.pruners.MedianPruner(n_startup_trials=1))
     study.enqueue_trial(dict(LIGHTGBM_DEFAULTS))
-    # The space's slowest learner with the most regularisation: by round 25 it has barely
-    # moved off the base rate while the defaults are near their best.
-    study.enqueue_trial({**LIGHTGBM_DEFAULTS, "learning_rate": 0.01, "num_leaves": 8,
-                         "min_data_in_leaf": 100, "lambda_l2": 10.0})
+    # Every split needs a gain of 1 and sees 40% of the columns: it barely leaves the
+    # base rate, while the defaults at the same progress are near their best.
+    study.enqueue_trial({**LIGHTGBM_DEFAULTS, "min_gain_to_split": 1.0,
+                         "feature_fraction": 0.4, "lambda_l1": 10.0, "lambda_l2": 10.0})
     study.optimize(objective, n_trials=2)
     good, bad = study.trials
     assert good.state == TrialState.COMPLETE
     assert bad.state == TrialState.PRUNED
     attrs = trial_attrs(bad)
     assert attrs["fold_scores"] == []  # its first fold never finished
-    first = min(checkpoints(max_rounds))
-    assert attrs["rounds_trained"] == first < max_rounds
+    # First checkpoint: progress 2.5 = 25 rounds at the defaults' learning rate of 0.1.
+    first = checkpoints(max_rounds)[0]
+    assert attrs["rounds_trained"] == 25 < max_rounds
     assert list(bad.intermediate_values) == [pruner_step(0, first, max_rounds)]
 
 
-@pytest.mark.parametrize(("rows", "cores", "split"), [
-    (2_000, 2, (2, 2)), (49_999, 8, (8, 8)), (50_000, 2, (1, 2)), (640_000, 16, (1, 16)),
-    (1_000, 1, (1, 1)),
-])
-def test_every_core_is_used_as_trials_or_threads(rows, cores, split) -> None:
-    from tuner.trial_loop import THREADS_FROM_ROWS, machine_split, threads_per_trial
-
-    assert THREADS_FROM_ROWS == 50_000
-    parallel, threads = machine_split(rows, cores)
-    assert (parallel, threads) == split
-    # Every core is busy, never more threads than cores.
-    assert parallel * threads_per_trial(threads, parallel) == cores
+def test_checkpoints_compare_equal_progress_not_equal_rounds() -> None:
+    assert checkpoints(1000)[:4] == (25, 50, 100, 200)
+    assert checkpoints(1000)[-1] < fold_steps(1000) == 10_000
+    # A fold's end lies past all its checkpoints and before the next fold's first one.
+    assert pruner_step(0, fold_steps(1000), 1000) < pruner_step(1, 25, 1000)
