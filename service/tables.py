@@ -142,10 +142,72 @@ class Model(Base):
     target: Mapped[str] = mapped_column(sa.String(200))
     feature_importance: Mapped[list[Any]]
     details: Mapped[dict[str, Any]] = mapped_column(default=dict)
+    # Binary models: {"threshold", "method", ...} (tuner/decision.py); None before costs
+    # were supported, or for other tasks.
+    decision: Mapped[dict[str, Any] | None] = mapped_column(sa.JSON)
     sha256: Mapped[str] = mapped_column(sa.String(64))
     file_key: Mapped[str] = mapped_column(sa.String(200))
     size_bytes: Mapped[int] = mapped_column(sa.BigInteger)
     created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+
+
+class Channel(Base):
+    """A stable name callers predict through; it points at one model at a time."""
+
+    __tablename__ = "gk_channels"
+
+    name: Mapped[str] = mapped_column(sa.String(100), primary_key=True)
+    model_id: Mapped[str] = mapped_column(sa.String(40), index=True)
+    created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+    updated_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+
+
+class ChannelEvent(Base):
+    """One move of a channel: set, rollback or promotion; never updated or deleted."""
+
+    __tablename__ = "gk_channel_events"
+    __table_args__ = (sa.Index("ix_gk_channel_events_channel", "channel", "id"),)
+
+    id: Mapped[int] = mapped_column(sa.BigInteger().with_variant(sa.Integer, "sqlite"),
+                                    primary_key=True, autoincrement=True)
+    channel: Mapped[str] = mapped_column(sa.String(100))
+    model_id: Mapped[str] = mapped_column(sa.String(40))
+    previous_model_id: Mapped[str | None] = mapped_column(sa.String(40))
+    action: Mapped[str] = mapped_column(sa.String(16))
+    forced: Mapped[bool] = mapped_column(default=False)
+    # The API key that made the change (None on a server without keys, or a worker's
+    # promotion, which names its job in ``job_id``).
+    key_id: Mapped[str | None] = mapped_column(sa.String(40))
+    job_id: Mapped[str | None] = mapped_column(sa.String(40))
+    at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+
+
+class Scoring(Base):
+    """A batch scoring run: one model over one stored dataset, run by a worker in chunks."""
+
+    __tablename__ = "gk_scorings"
+    __table_args__ = (sa.Index("ix_gk_scorings_claim", "status", "created_at"),)
+
+    id: Mapped[str] = mapped_column(sa.String(40), primary_key=True)
+    model_id: Mapped[str] = mapped_column(sa.String(40), index=True)
+    # The channel it was submitted through; its model was fixed at submission.
+    channel: Mapped[str | None] = mapped_column(sa.String(100))
+    dataset_id: Mapped[str] = mapped_column(sa.String(40))
+    keep: Mapped[list[Any]] = mapped_column(default=list)
+    unseen: Mapped[str] = mapped_column(sa.String(16), default="error")
+    status: Mapped[str] = mapped_column(sa.String(16), default=JobStatus.QUEUED.value)
+    rows_total: Mapped[int] = mapped_column(sa.BigInteger, default=0)
+    rows_done: Mapped[int] = mapped_column(sa.BigInteger, default=0)
+    cancel_requested: Mapped[bool] = mapped_column(default=False)
+    error: Mapped[str | None] = mapped_column(sa.Text)
+    result_key: Mapped[str | None] = mapped_column(sa.String(200))
+    result_sha256: Mapped[str | None] = mapped_column(sa.String(64))
+    worker_id: Mapped[str | None] = mapped_column(sa.String(120))
+    attempts: Mapped[int] = mapped_column(default=0)
+    created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+    started_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
+    heartbeat_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
+    finished_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
 
 
 class ApiKey(Base):

@@ -42,6 +42,19 @@ class CVSpec(Strict):
     time_column: str | None = None
 
 
+class DecisionSpec(Strict):
+    """The costs of a binary model's two mistakes, in any one unit."""
+
+    false_positive_cost: float = Field(ge=0, le=1e12)
+    false_negative_cost: float = Field(ge=0, le=1e12)
+
+    @model_validator(mode="after")
+    def _not_both_zero(self) -> DecisionSpec:
+        if self.false_positive_cost + self.false_negative_cost <= 0:
+            raise ValueError("at least one of the two costs must be above zero")
+        return self
+
+
 class JobCreate(Strict):
     """A tuning job request. Only ``dataset_id`` and ``target`` are required."""
 
@@ -84,6 +97,8 @@ class JobCreate(Strict):
     selection: Literal["best", "one_se"] = "best"
     final_refit: Literal["train", "all"] = "train"
     warm_start_job_id: str | None = Field(default=None, min_length=1, max_length=64)
+    # Binary only: the threshold the model serves labels with comes from these costs.
+    decision: DecisionSpec | None = None
 
 
 class ColumnOut(BaseModel):
@@ -199,9 +214,35 @@ class ModelOut(BaseModel):
     classes: list[Any] | None
     feature_importance: list[dict[str, Any]]
     details: dict[str, Any]
+    # Binary: {"threshold", "method", "note", ...}; labels are class 1 above threshold.
+    decision: dict[str, Any] | None = None
     sha256: str
     size_bytes: int
     created_at: datetime
+
+
+class ModelSummary(BaseModel):
+    """A model as listed: enough to choose one; ``GET /v1/models/{id}`` has the rest."""
+
+    id: str
+    job_id: str
+    dataset_id: str
+    task: str
+    metric: str
+    target: str
+    boosting_rounds: int
+    trial_number: int
+    cv: dict[str, Any]
+    holdout: dict[str, Any]
+    sha256: str
+    created_at: datetime
+
+
+class ModelList(BaseModel):
+    items: list[ModelSummary]
+    total: int
+    # Pass as ?cursor= for the next page; null on the last page.
+    next: str | None = None
 
 
 class PredictRequest(Strict):
@@ -211,6 +252,8 @@ class PredictRequest(Strict):
     )
 
     rows: list[dict[str, Any]] = Field(min_length=1)
+    # Input columns to return unchanged beside each prediction (also ?keep=a,b).
+    keep: list[str] | None = None
 
 
 class PredictResponse(BaseModel):
@@ -222,3 +265,80 @@ class PredictResponse(BaseModel):
     # With ?explain=true: per row {"bias", "features": {name: value}} (TreeSHAP).
     contributions: list[dict[str, Any]] | None = None
     contribution_scale: str | None = None
+    # With keep: per row, the kept columns as sent, aligned with predictions.
+    kept: list[dict[str, Any]] | None = None
+
+
+class ChannelPut(Strict):
+    model_config = ConfigDict(extra="forbid", json_schema_extra={
+        "examples": [{"model_id": "mdl_4567cdef89ab0123"}]})
+
+    model_id: str = Field(min_length=1, max_length=64)
+    # Switch even when the new model needs other input columns than the current one.
+    force: bool = False
+
+
+class ChannelMove(BaseModel):
+    model_id: str
+    previous_model_id: str | None
+    action: str  # "set", "rollback" or "promote"
+    forced: bool
+    key_id: str | None
+    job_id: str | None
+    at: datetime
+
+
+class ChannelOut(BaseModel):
+    name: str
+    model_id: str
+    created_at: datetime
+    updated_at: datetime
+    # Newest first (at most the last 100 moves).
+    history: list[ChannelMove]
+
+
+class ChannelSummary(BaseModel):
+    name: str
+    model_id: str
+    updated_at: datetime
+
+
+class ChannelList(BaseModel):
+    items: list[ChannelSummary]
+    total: int
+    next: str | None = None
+
+
+class ScoringCreate(Strict):
+    model_config = ConfigDict(extra="forbid", json_schema_extra={
+        "examples": [{"dataset_id": "ds_0123abcd4567ef89", "keep": ["firing_id"]}]})
+
+    dataset_id: str = Field(min_length=1, max_length=64)
+    # Dataset columns written unchanged beside each prediction, first.
+    keep: list[str] = Field(default_factory=list, max_length=100)
+    unseen: Literal["error", "missing"] = "error"
+
+
+class ScoringProgress(BaseModel):
+    rows_done: int
+    rows_total: int
+    fraction: float
+
+
+class ScoringOut(BaseModel):
+    id: str
+    model_id: str
+    channel: str | None
+    dataset_id: str
+    keep: list[str]
+    unseen: str
+    status: str
+    progress: ScoringProgress
+    error: str | None
+    # When succeeded: GET it with Accept: text/csv for CSV, else Parquet.
+    result_url: str | None
+    cancel_requested: bool
+    attempts: int
+    created_at: datetime
+    started_at: datetime | None
+    finished_at: datetime | None
