@@ -13,6 +13,7 @@ from sklearn.metrics import brier_score_loss
 import tuner
 from tuner.evaluation.diagnostics import SMALL_LEAF_ROWS, _divergence, leaf_sizes
 from tuner.evaluation.holdout import bootstrap_intervals, calibration, evaluate_model, optimism
+from tuner.metrics import score_all
 
 
 def _binary(n: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
@@ -186,7 +187,11 @@ def test_counted_resample_scores_match_sklearn_on_the_resampled_rows(weighted) -
         skm.roc_auc_score(y[rows], p[rows], sample_weight=ww), rel=1e-9)
     assert got["log_loss"] == pytest.approx(
         skm.log_loss(y[rows], p[rows], sample_weight=ww), rel=1e-9)
+    assert got["average_precision"] == pytest.approx(
+        skm.average_precision_score(y[rows], p[rows], sample_weight=ww), rel=1e-9)
     assert got["accuracy"] == pytest.approx(
         skm.accuracy_score(y[rows], p[rows] > 0.5, sample_weight=ww), rel=1e-9)
     assert got["f1_macro"] == pytest.approx(
         skm.f1_score(y[rows], p[rows] > 0.5, average="macro", sample_weight=ww), rel=1e-9)
+    # Every binary metric of the service has its counted form.
+    assert set(got) == set(score_all("binary", y, p))

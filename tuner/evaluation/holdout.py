@@ -122,6 +122,14 @@ class _CountedBinary:
         if tps[-1] > 0 and fps[-1] > 0:
             out["roc_auc"] = float(np.trapezoid(np.r_[0.0, tps] / tps[-1],
                                                 np.r_[0.0, fps] / fps[-1]))
+        if tps[-1] > 0:
+            # Step-wise area under the precision-recall curve, as tuner.metrics; runs of
+            # rows none of which was drawn add no recall (and no 0/0).
+            drawn_so_far = tps + fps
+            precision = np.divide(tps, drawn_so_far, out=np.zeros_like(tps),
+                                  where=drawn_so_far > 0)
+            out["average_precision"] = float(np.sum(np.diff(np.r_[0.0, tps / tps[-1]])
+                                                    * precision))
         # Weighted confusion matrix in one pass: cell = 2 * truth + guess.
         cm = np.bincount(self.cell, weights=ww, minlength=4).reshape(2, 2)
         seen = np.bincount(self.cell, weights=(ww > 0), minlength=4).reshape(2, 2)
