@@ -64,7 +64,11 @@ def load_job(ctx: WorkerContext, job_id: str) -> LoadedJob:
     parallel, threads = run.config.max_parallel_trials, run.config.num_threads
     if run.effective.get("parallelism") == "machine":
         # Neither was asked for: every core, as trials or as threads by the table's size.
+        # A job shared by several workers runs one trial at a time in each (on all its
+        # cores), which keeps the budget bound: at most one trial per other worker over.
         parallel, threads = machine_split(len(run.plan.train_idx), cores)
+        if max_workers > 1:
+            parallel = 1
     parallel = max(1, min(parallel, cores))
     config = dataclasses.replace(run.config, max_parallel_trials=parallel,
                                  num_threads=min(threads, cores))
