@@ -15,7 +15,9 @@ from service.tables import (
     ApiKey,
     Channel,
     ChannelEvent,
+    Comparison,
     Dataset,
+    DriftCounts,
     Job,
     JobStatus,
     Model,
@@ -188,6 +190,25 @@ def get_model(session: Session, model_id: str) -> Model:
     return model
 
 
+def delete_model(session: Session, model_id: str) -> Model:
+    """Delete a model's row; refused while a channel points at it or a scoring run of it
+    is queued or running (callers would lose their answers)."""
+    model = get_model(session, model_id)
+    behind = channels_for_model(session, model_id)
+    if behind:
+        raise Conflict(f"model {model_id!r} is behind channel(s) {', '.join(behind)}; move "
+                       "them first", errors=[{"field": "model_id", "channel": c,
+                                              "message": f"channel '{c}' serves it"}
+                                             for c in behind])
+    busy = session.scalars(sa.select(Scoring.id).where(Scoring.model_id == model_id,
+                                                       Scoring.status.in_(ACTIVE))).all()
+    if busy:
+        raise Conflict(f"model {model_id!r} is used by scoring runs: {', '.join(busy)}")
+    session.delete(model)
+    session.flush()
+    return model
+
+
 def list_models(
     session: Session, *, dataset_id: str | None, job_id: str | None, target: str | None,
     limit: int, after: tuple[datetime, str] | None,
@@ -355,3 +376,73 @@ def finish_scoring(session: Session, *, scoring_id: str, worker_id: str, status:
     session.execute(sa.update(Scoring).where(Scoring.id == scoring_id,
                                              Scoring.worker_id == worker_id)
                     .values(status=status, finished_at=utcnow(), **fields))
+
+
+# -- comparisons ------------------------------------------------------------
+
+
+def add_comparison(session: Session, **fields: Any) -> Comparison:
+    comparison = Comparison(**fields)
+    session.add(comparison)
+    session.flush()
+    return comparison
+
+
+def get_comparison(session: Session, comparison_id: str) -> Comparison:
+    comparison = session.get(Comparison, comparison_id)
+    if comparison is None:
+        raise NotFound(f"no comparison with id {comparison_id!r}")
+    return comparison
+
+
+def claim_comparison(session: Session, *, worker_id: str,
+                     stale_after_seconds: float) -> str | None:
+    """Take the oldest queued comparison, or one whose worker went quiet."""
+    now = utcnow()
+    stale = now - timedelta(seconds=stale_after_seconds)
+    claimable = sa.or_(
+        Comparison.status == JobStatus.QUEUED.value,
+        sa.and_(Comparison.status == JobStatus.RUNNING.value, Comparison.heartbeat_at < stale))
+    candidate = (sa.select(Comparison.id).where(claimable)
+                 .order_by(Comparison.created_at, Comparison.id).limit(1)
+                 .with_for_update(skip_locked=True).scalar_subquery())
+    stmt = (sa.update(Comparison).where(Comparison.id == candidate, claimable)
+            .values(status=JobStatus.RUNNING.value, worker_id=worker_id, heartbeat_at=now,
+                    started_at=sa.func.coalesce(Comparison.started_at, now),
+                    attempts=Comparison.attempts + 1)
+            .returning(Comparison.id).execution_options(synchronize_session=False))
+    return session.execute(stmt).scalar_one_or_none()
+
+
+def finish_comparison(session: Session, *, comparison_id: str, worker_id: str, status: str,
+                      **fields: Any) -> None:
+    session.execute(sa.update(Comparison).where(Comparison.id == comparison_id,
+                                                Comparison.worker_id == worker_id)
+                    .values(status=status, finished_at=utcnow(), **fields))
+
+
+# -- drift ------------------------------------------------------------------
+
+
+def add_drift_counts(session: Session, *, model_id: str, day: str, rows: int,
+                     counts: list[list[int]]) -> None:
+    """Add one flush's counts to the (model, day) row, creating it on first use."""
+    row = session.scalar(sa.select(DriftCounts).where(DriftCounts.model_id == model_id,
+                                                      DriftCounts.day == day)
+                         .with_for_update())
+    if row is None:
+        session.add(DriftCounts(model_id=model_id, day=day, rows=rows, counts=counts))
+    else:
+        row.counts = [[a + b for a, b in zip(old, new, strict=True)]
+                      for old, new in zip(row.counts, counts, strict=True)]
+        row.rows = row.rows + rows
+        row.updated_at = utcnow()
+    session.flush()
+
+
+def drift_counts(session: Session, *, model_id: str,
+                 since: str | None = None) -> Sequence[DriftCounts]:
+    query = sa.select(DriftCounts).where(DriftCounts.model_id == model_id)
+    if since is not None:
+        query = query.where(DriftCounts.day >= since)
+    return session.scalars(query.order_by(DriftCounts.day)).all()

@@ -10,10 +10,12 @@ from fastapi.middleware.cors import CORSMiddleware
 
 from service.api import openapi_examples, problems
 from service.api.deps import AuthDep
+from service.api.drift import DriftRecorder
 from service.api.predictors import PredictorCache
 from service.api.routes import (
     bundle,
     channels,
+    comparisons,
     datasets,
     events,
     health,
@@ -42,6 +44,7 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
             settings.ensure_dirs()
             init_db(settings.db_url)
         yield
+        app.state.drift.close()  # what this process counted since the last flush
 
     app = FastAPI(
         title="Grovekeeper",
@@ -51,7 +54,8 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
     )
     app.state.settings = settings
     app.state.store = ArtifactStore(settings.artifacts_url, settings.tmp_dir)
-    app.state.predictors = PredictorCache(app.state.store)
+    app.state.drift = DriftRecorder(settings.db_url, settings.drift_flush_seconds)
+    app.state.predictors = PredictorCache(app.state.store, recorder=app.state.drift)
     app.state.keys = KeyChecker(settings.db_url, open_without_keys=loopback_only)
     problems.install(app)
     origins = [o.strip() for o in settings.cors_origins.split(",") if o.strip()]
@@ -60,7 +64,7 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
                            allow_headers=["Authorization", "Content-Type", "Accept"])
     app.include_router(health.router)
     for router in (datasets.router, jobs.router, models.router, channels.router,
-                   scorings.router):
+                   scorings.router, comparisons.router):
         app.include_router(router, dependencies=[AuthDep])
     # Practitioner-facing additions: live events, bundles, /metrics, documented examples.
     for router in (events.router, bundle.router):

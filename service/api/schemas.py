@@ -55,6 +55,14 @@ class DecisionSpec(Strict):
         return self
 
 
+class PromoteSpec(Strict):
+    """Move a channel to the job's model when it succeeds (see README, champion and
+    challenger)."""
+
+    channel: str = Field(pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,99}$")
+    rule: Literal["if_better", "always"] = "if_better"
+
+
 class JobCreate(Strict):
     """A tuning job request. Only ``dataset_id`` and ``target`` are required."""
 
@@ -99,6 +107,7 @@ class JobCreate(Strict):
     warm_start_job_id: str | None = Field(default=None, min_length=1, max_length=64)
     # Binary only: the threshold the model serves labels with comes from these costs.
     decision: DecisionSpec | None = None
+    promote: PromoteSpec | None = None
 
 
 class ColumnOut(BaseModel):
@@ -154,6 +163,8 @@ class JobOut(BaseModel):
     spec: dict[str, Any]
     progress: Progress
     model_id: str | None
+    # With a promote request, once the job has succeeded: what happened to the channel.
+    promotion: dict[str, Any] | None = None
     error: str | None
     warnings: list[str]
     cancel_requested: bool
@@ -339,6 +350,29 @@ class ScoringOut(BaseModel):
     result_url: str | None
     cancel_requested: bool
     attempts: int
+    created_at: datetime
+    started_at: datetime | None
+    finished_at: datetime | None
+
+
+class ComparisonCreate(Strict):
+    model_config = ConfigDict(extra="forbid", json_schema_extra={"examples": [
+        {"models": ["mdl_4567cdef89ab0123", "mdl_0f1e2d3c4b5a6978"],
+         "dataset_id": "ds_0123abcd4567ef89"}]})
+
+    models: list[str] = Field(min_length=2, max_length=2)
+    dataset_id: str = Field(min_length=1, max_length=64)
+
+
+class ComparisonOut(BaseModel):
+    id: str
+    models: list[str]
+    dataset_id: str
+    status: str
+    # When succeeded: scores per model, difference (second minus first) with its 95%
+    # paired bootstrap interval, better (a model id or null), comparable, reasons.
+    result: dict[str, Any] | None
+    error: str | None
     created_at: datetime
     started_at: datetime | None
     finished_at: datetime | None

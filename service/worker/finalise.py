@@ -6,8 +6,11 @@ import logging
 import traceback
 from typing import Any
 
+import numpy as np
+
 import tuner
 import tuner.decision
+import tuner.drift
 from service import repository
 from service.db import session_scope
 from service.jobspec import RunPlan
@@ -68,6 +71,23 @@ def decide_safely(fitted: tuner.FittedModel, run: RunPlan, best: tuner.TrialReco
     return out
 
 
+def drift_reference(fitted: tuner.FittedModel, run: RunPlan) -> dict[str, Any] | None:
+    """The training rows' bins per feature (tuner/drift.py), kept with the model."""
+    from tuner._lgb import frame_matrix
+
+    try:
+        matrix = frame_matrix(fitted.booster, run.data.X.iloc[run.plan.train_idx])
+        if not isinstance(matrix, np.ndarray):
+            return None
+        specs = fitted.schema.to_dict()["features"]
+        return tuner.drift.reference_bins(
+            matrix, [f["name"] for f in specs], [f["kind"] for f in specs],
+            [len(f.get("levels") or []) for f in specs])
+    except Exception:  # noqa: BLE001 - drift summaries describe; they never cost the model
+        log.error("drift reference failed:\n%s", traceback.format_exc())
+        return None
+
+
 def fit_and_store(url: str, store: ArtifactStore, job_id: str, run: RunPlan,
                   best: tuner.TrialRecord) -> str:
     """Refit ``best``, evaluate it, save the model file and its row; returns the model id.
@@ -105,7 +125,8 @@ def fit_and_store(url: str, store: ArtifactStore, job_id: str, run: RunPlan,
                 feature_importance=fitted.feature_importance,
                 details={"manifest": run.effective, "evaluation": evaluation,
                          "selection": run.effective.get("selection_report"),
-                         "final_refit": fitted.refit},
+                         "final_refit": fitted.refit,
+                         "drift_reference": drift_reference(fitted, run)},
                 decision=decision,
                 sha256=sha,
                 file_key=key,

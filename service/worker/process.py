@@ -17,6 +17,7 @@ from service import queue, repository
 from service.db import init_db, session_scope
 from service.logs import log_context
 from service.settings import Settings
+from service.worker.comparison import run_comparison
 from service.worker.context import WorkerContext
 from service.worker.join import join_job
 from service.worker.lead import run_job
@@ -53,7 +54,7 @@ class Worker:
 
     def run_once(self) -> bool:
         """Sweep stale claims, then claim and run one job, or else one batch scoring run,
-        or else join a running job. False when there is nothing to do."""
+        or else one comparison, or else join a running job. False when there is nothing to do."""
         url = self.ctx.url
         with session_scope(url) as session:
             for job_id in queue.requeue_stale(
@@ -74,6 +75,14 @@ class Worker:
             with log_context(job_id=scoring_id, worker_id=self.worker_id):
                 run_scoring(url, self.ctx.store, scoring_id, self.worker_id, self.shutdown,
                             chunk_rows=self.settings.scoring_chunk_rows)
+            return True
+        with session_scope(url) as session:
+            comparison_id = repository.claim_comparison(
+                session, worker_id=self.worker_id,
+                stale_after_seconds=self.settings.stale_after_seconds)
+        if comparison_id is not None:
+            with log_context(job_id=comparison_id, worker_id=self.worker_id):
+                run_comparison(url, self.ctx.store, comparison_id, self.worker_id)
             return True
         with session_scope(url) as session:
             job_id = queue.join_next(session, worker_id=self.worker_id)

@@ -63,6 +63,7 @@ def to_out(job: Job) -> JobOut:
                 seconds_budget=effective["budget"].get("seconds")),
         ),
         model_id=job.model_id,
+        promotion=job.promotion,
         error=job.error,
         warnings=job.warnings,
         cancel_requested=job.cancel_requested,
