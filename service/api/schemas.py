@@ -77,6 +77,9 @@ class JobCreate(Strict):
     num_threads: int | None = Field(default=None, ge=1, le=64)
     selection: Literal["best", "one_se"] = "best"
     final_refit: Literal["train", "all"] = "train"
+    #: Classification: calibrate the served probabilities (a map fitted on the winner's
+    #: out-of-fold scores, kept only when it helps, written into the model file).
+    calibrate: bool = True
     warm_start_job_id: str | None = Field(default=None, min_length=1, max_length=64)
 
 
