@@ -48,6 +48,9 @@ class SearchConfig:
     #: Classification: fit a calibration map on the winner's out-of-fold scores and, when
     #: it lowers their cross-fitted log loss, write it into the model (tuner.calibration).
     calibrate: bool = True
+    #: Enqueue the portfolio of strong configurations (tuner.portfolio) after trial 0
+    #: and the warm-start configurations.
+    portfolio: bool = True
 
 
 #: ``median``: prune a trial whose running mean over its first folds is worse than the

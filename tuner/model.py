@@ -57,6 +57,9 @@ class FittedModel:
     #: probabilities are calibrated; ``method``, ``map``, out-of-fold and hold-out log
     #: loss and expected calibration error ``before``/``after``, or ``reason`` when not.
     calibration: dict[str, Any] | None = None
+    #: The scored model's hold-out predictions (before any refit on all rows), in the
+    #: convention of :mod:`tuner.metrics`; ``None`` without a hold-out. Not saved.
+    holdout_pred: np.ndarray | None = None
 
 
 def _importance(booster: lgb.Booster, names: list[str]) -> list[dict[str, Any]]:
@@ -114,6 +117,7 @@ def fit_final(data: PreparedData, plan: ValidationPlan, config: SearchConfig,
             cmap = None
             calibration = {**calibration, "applied": False, "method": None, "reason": problem}
     holdout: dict[str, Any] = {}
+    pred = None
     if len(rows):
         pred = predict(booster, data.task, data.X.iloc[rows])
         w = None if data.weight is None else data.weight[rows]
@@ -145,7 +149,7 @@ def fit_final(data: PreparedData, plan: ValidationPlan, config: SearchConfig,
         cv={"metric": config.metric, "mean": best.score, "std": best.score_std,
             "fold_scores": list(best.fold_scores)},
         holdout=holdout, feature_importance=_importance(booster, data.schema.names),
-        train_seconds=seconds, refit=refit, calibration=calibration,
+        train_seconds=seconds, refit=refit, calibration=calibration, holdout_pred=pred,
     )
 
 

@@ -80,6 +80,8 @@ class JobCreate(Strict):
     #: Classification: calibrate the served probabilities (a map fitted on the winner's
     #: out-of-fold scores, kept only when it helps, written into the model file).
     calibrate: bool = True
+    #: Run the fixed portfolio of strong configurations right after trial 0.
+    portfolio: bool = True
     warm_start_job_id: str | None = Field(default=None, min_length=1, max_length=64)
 
 

@@ -136,7 +136,8 @@ def _winner(model: dict[str, Any]) -> str:
         f'<section class="card" id="winner"><p>Model <code>{escape(model["id"])}</code>, '
         f"trial {model['trial_number']}, {model['boosting_rounds']} trees. "
         f"CV {escape(model['metric'])}: <strong>{_num(cv.get('mean'))}</strong> ± "
-        f"{_num(cv.get('std'), 2)} (folds: {folds}).</p>{gap_text}{_calibration(model)}"
+        f"{_num(cv.get('std'), 2)} (folds: {folds}).</p>{_gain(model)}{gap_text}"
+        f"{_calibration(model)}"
         f"{table}"
         + (f"<p class='note'>{escape('; '.join(extra))}.</p>" if extra else "")
         + "</section>"
@@ -166,6 +167,24 @@ def _calibration(model: dict[str, Any]) -> str:
     return (f"<p id='calibration'>{head}: {escape('; '.join(parts))}. "
             "<span class='note'>Calibration error: mean gap between confidence and "
             "accuracy over 15 bins.</span></p>")
+
+
+def _gain(model: dict[str, Any]) -> str:
+    """One sentence: what tuning bought over LightGBM's defaults on the hold-out."""
+    gain = (model.get("details") or {}).get("gain_over_defaults")
+    if not gain:
+        return ""
+    if not gain.get("available"):
+        return (f"<p class='note' id='gain'>No comparison with LightGBM's defaults: "
+                f"{escape(gain.get('reason') or '')}.</p>")
+    text = gain["verdict"]
+    text = text[0].upper() + text[1:]
+    cls = "" if gain["helped"] or gain["same_trial"] else " class='warnings'"
+    return (f"<p id='gain'{cls}><strong>{escape(text)}.</strong> <span class='note'>The "
+            f"served model vs LightGBM's defaults (trial {gain['baseline_trial']}, refit on "
+            f"the same rows with its own {gain['baseline_rounds']} rounds, uncalibrated), "
+            f"both scored on the same {gain['rows']} hold-out rows; paired percentile "
+            f"bootstrap, {gain['resamples']} resamples.</span></p>")
 
 
 def _leaderboard(rows: list[dict[str, Any]], count: int, winner: int | None) -> str:

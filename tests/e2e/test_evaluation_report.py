@@ -253,3 +253,17 @@ def test_report_page_shows_calibration(server: Server, jobs: dict) -> None:
     paragraph = html.split("id='calibration'>")[1].split("</p>")[0]
     assert ("Probabilities calibrated" in paragraph) == cal["applied"]
     assert "out-of-fold log loss" in paragraph and "hold-out log loss" in paragraph
+
+
+def test_gain_over_defaults_is_reported(server: Server, jobs: dict) -> None:
+    for name in ("kiln", "green"):
+        model = jobs[f"{name}_model"]
+        gain = model["details"]["gain_over_defaults"]
+        assert gain["available"] and gain["baseline_trial"] == 0
+        assert gain["low"] <= gain["gain"] <= gain["high"]
+        assert gain["tuned"] == pytest.approx(model["holdout"][model["metric"]], rel=1e-9)
+        with server.client() as client:
+            html = client.get(f"/v1/jobs/{jobs[name]['id']}/report").text
+        sentence = html.split("id='gain'")[1].split("</p>")[0]
+        assert ("Tuning gained" in sentence) == (gain["helped"] and not gain["same_trial"])
+        assert ("did not help" in sentence) == (not gain["helped"] and not gain["same_trial"])
