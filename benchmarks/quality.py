@@ -29,6 +29,7 @@ score is within one standard error of the unpruned best.
 from __future__ import annotations
 
 import argparse
+import json
 import math
 import sys
 import tempfile
@@ -282,6 +283,8 @@ def main(argv: list[str] | None = None) -> int:
     with tempfile.TemporaryDirectory() as tmp:
         for case in chosen:
             rows.append(run_case(case, trials=trials, folder=Path(tmp), seeds=seeds))
+            # Each row as soon as it is known: a long run that is stopped keeps its rows.
+            print(f"# row {json.dumps(rows[-1])}", file=sys.stderr, flush=True)
             if pruners:
                 pruned.append(run_pruners(case, trials=trials, pruners=pruners,
                                           folder=Path(tmp)))
