@@ -186,6 +186,25 @@ def get_model(session: Session, model_id: str) -> Model:
     return model
 
 
+def delete_model(session: Session, model_id: str) -> Model:
+    """Delete a model's row; refused while a channel points at it or a scoring run of it
+    is queued or running (callers would lose their answers)."""
+    model = get_model(session, model_id)
+    behind = channels_for_model(session, model_id)
+    if behind:
+        raise Conflict(f"model {model_id!r} is behind channel(s) {', '.join(behind)}; move "
+                       "them first", errors=[{"field": "model_id", "channel": c,
+                                              "message": f"channel '{c}' serves it"}
+                                             for c in behind])
+    busy = session.scalars(sa.select(Scoring.id).where(Scoring.model_id == model_id,
+                                                       Scoring.status.in_(ACTIVE))).all()
+    if busy:
+        raise Conflict(f"model {model_id!r} is used by scoring runs: {', '.join(busy)}")
+    session.delete(model)
+    session.flush()
+    return model
+
+
 def list_models(
     session: Session, *, dataset_id: str | None, job_id: str | None, target: str | None,
     limit: int, after: tuple[datetime, str] | None,
