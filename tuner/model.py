@@ -33,7 +33,7 @@ class FittedModel:
     Attributes:
         params: The complete LightGBM parameters used (shared and tuned).
         classes: Original class labels, index = encoded class (``None`` for regression).
-        cv: ``{"metric", "mean", "std", "fold_scores"}`` of the chosen trial.
+        cv: ``{"metric", "mean", "std", "se", "fold_scores"}`` of the chosen trial.
         holdout: ``score_all`` on the hold-out rows plus ``"rows"``; ``{}`` without one.
         feature_importance: ``[{"feature", "gain", "split"}]``, sorted by gain, descending.
     """
@@ -147,7 +147,7 @@ def fit_final(data: PreparedData, plan: ValidationPlan, config: SearchConfig,
         booster=booster, task=data.task, metric=config.metric, params=params,
         boosting_rounds=best.boosting_rounds, classes=data.classes, schema=data.schema,
         cv={"metric": config.metric, "mean": best.score, "std": best.score_std,
-            "fold_scores": list(best.fold_scores)},
+            "se": best.score_se, "fold_scores": list(best.fold_scores)},
         holdout=holdout, feature_importance=_importance(booster, data.schema.names),
         train_seconds=seconds, refit=refit, calibration=calibration, holdout_pred=pred,
     )
@@ -169,9 +169,11 @@ def out_of_fold_raw(data: PreparedData, plan: ValidationPlan, config: SearchConf
     """
     train = plan.train_idx
     counts = list(best.best_iterations)
-    exact = len(counts) == plan.n_folds
+    # Large tables score only their first folds (validation_splits): refit those.
+    used = plan.folds[:len(counts)] if 0 < len(counts) <= plan.n_folds else plan.folds
+    exact = len(counts) == len(used)
     raws, positions, folds = [], [], []
-    for k, (fit, valid) in enumerate(plan.folds):
+    for k, (fit, valid) in enumerate(used):
         fit_rows, valid_rows = train[fit], train[valid]
         w_fit = None if data.weight is None else data.weight[fit_rows]
         dataset = make_dataset(data.X.iloc[fit_rows], data.y[fit_rows], w_fit, params)
@@ -194,7 +196,11 @@ def out_of_fold_raw(data: PreparedData, plan: ValidationPlan, config: SearchConf
         raws.append(raw.reshape(len(valid_rows), -1) if data.task == "multiclass" else raw)
         positions.append(valid_rows)
         folds.append(np.full(len(valid_rows), k))
-    return np.concatenate(raws), np.concatenate(positions), np.concatenate(folds)
+    fold_of = np.concatenate(folds)
+    if len(used) == 1:
+        # One validation split: cross-fit the map over interleaved fifths of its rows.
+        fold_of = np.arange(len(fold_of)) % 5
+    return np.concatenate(raws), np.concatenate(positions), fold_of
 
 
 def _raw(booster: lgb.Booster, task: str, frame: Any) -> np.ndarray:
