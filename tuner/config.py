@@ -48,6 +48,12 @@ class SearchConfig:
     #: LightGBM parameters every trial and the final fit share: the job's fixed ones and
     #: its constraints (see :mod:`tuner.controls`); the search space holds the tuned ones.
     fixed_params: dict[str, Any] = field(default_factory=dict)
+    #: Classification: fit a calibration map on the winner's out-of-fold scores and, when
+    #: it lowers their cross-fitted log loss, write it into the model (tuner.calibration).
+    calibrate: bool = True
+    #: Enqueue the portfolio of strong configurations (tuner.portfolio) after trial 0
+    #: and the warm-start configurations.
+    portfolio: bool = True
 
 
 #: ``median``: prune a trial whose score so far (inside a fold at the boosting
