@@ -75,6 +75,9 @@ class Job(Base):
     # that joiners never race for a WAITING trial (unsafe on SQLite, LIBRARIES.md §2).
     joinable: Mapped[bool] = mapped_column(default=False, server_default=sa.false())
     attempts: Mapped[int] = mapped_column(default=0)
+    # The fencing token: raised by every claim. A lead's writes (status, trial copy, model)
+    # carry the epoch of its claim and are refused once another claim has raised it.
+    epoch: Mapped[int] = mapped_column(default=0, server_default="0")
     warnings: Mapped[list[Any]] = mapped_column(default=list)
     created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
     started_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
