@@ -106,6 +106,10 @@ def cmd_serve(args: argparse.Namespace) -> int:
     _setup_logging(settings)
     settings.ensure_dirs()
     init_db(settings.db_url)  # once, here, so workers and API never race on the schema
+    from service.storage import ArtifactStore
+
+    # Temporary files of an earlier life of this server (kill -9 mid-upload) go now.
+    ArtifactStore(settings.artifacts_url, settings.tmp_dir).sweep_temp()
     if not is_loopback(args.host) and not any_key_exists(settings.db_url):
         print(
             f"grovekeeper: refusing to listen on {args.host} while no API key exists; "

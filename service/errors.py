@@ -70,3 +70,9 @@ class Unprocessable(ServiceError):
         super().__init__(detail, errors=errors)
         if code:
             self.code = code
+
+
+class InsufficientStorage(ServiceError):
+    status = 507
+    code = "disk_full"
+    title = "Insufficient storage"
