@@ -12,6 +12,7 @@ import subprocess
 import sys
 import threading
 from collections.abc import Iterator
+from datetime import datetime, timedelta
 from typing import Any
 
 import uvicorn
@@ -190,11 +191,26 @@ def cmd_keys_create(args: argparse.Namespace) -> int:
     settings = _settings(args)
     settings.ensure_dirs()
     init_db(settings.db_url)
-    key_id, secret = create_key(settings.db_url, scope=args.scope)
+    key_id, secret = create_key(settings.db_url, scope=args.scope, expires_in=args.expires_in)
     print(secret)
-    print(f"key {key_id} ({args.scope}); shown once, only its hash is stored",
+    until = f", expires in {args.expires_in}" if args.expires_in else ""
+    print(f"key {key_id} ({args.scope}{until}); shown once, only its hash is stored",
           file=sys.stderr)
     return 0
+
+
+def duration(text: str) -> timedelta:
+    """``90s``, ``30m``, ``12h``, ``7d`` or plain seconds, for ``keys create --expires-in``."""
+    units = {"s": 1, "m": 60, "h": 3600, "d": 86400}
+    number, unit = (text[:-1], text[-1]) if text and text[-1] in units else (text, "s")
+    try:
+        seconds = float(number) * units[unit]
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"'{text}' is not a duration (e.g. 90s, 30m, 12h, 7d)") from None
+    if seconds <= 0:
+        raise argparse.ArgumentTypeError("the duration must be positive")
+    return timedelta(seconds=seconds)
 
 
 def cmd_keys_list(args: argparse.Namespace) -> int:
@@ -204,10 +220,14 @@ def cmd_keys_list(args: argparse.Namespace) -> int:
     settings = _settings(args)
     settings.ensure_dirs()
     init_db(settings.db_url)
-    print(f"{'id':<28} {'scope':<6} {'created':<20} revoked")
+    def when(stamp: datetime | None) -> str:
+        return stamp.strftime("%Y-%m-%d %H:%M:%S") if stamp else "-"
+
+    print(f"{'id':<28} {'scope':<6} {'created':<20} {'expires':<20} {'last used':<20} revoked")
     for key in list_keys(settings.db_url):
-        revoked = key.revoked_at.strftime("%Y-%m-%d %H:%M:%S") if key.revoked_at else "-"
-        print(f"{key.id:<28} {key.scope:<6} {key.created_at:%Y-%m-%d %H:%M:%S} {revoked}")
+        print(f"{key.id:<28} {key.scope:<6} {when(key.created_at):<20} "
+              f"{when(key.expires_at):<20} {when(key.last_used_at):<20} "
+              f"{when(key.revoked_at)}")
     return 0
 
 
@@ -264,6 +284,9 @@ def build_parser() -> argparse.ArgumentParser:
     create = keys_sub.add_parser("create", help="print a new API key once")
     common(create)
     create.add_argument("--scope", choices=["read", "write", "admin"], required=True)
+    create.add_argument("--expires-in", type=duration, default=None, metavar="DURATION",
+                        help="the key stops working after this long (90s, 30m, 12h, 7d); "
+                        "default: never")
     create.set_defaults(func=cmd_keys_create)
     listing = keys_sub.add_parser("list", help="list keys (ids, scopes, dates; never secrets)")
     common(listing)

@@ -279,3 +279,20 @@ class ChannelList(BaseModel):
     items: list[ChannelSummary]
     total: int
     next: str | None = None
+
+
+class AuditOut(BaseModel):
+    id: int
+    at: datetime
+    key_id: str | None
+    action: str
+    target: str | None
+    method: str | None
+    path: str | None
+    status: int | None
+
+
+class AuditPage(BaseModel):
+    items: list[AuditOut]
+    total: int
+    next: str | None
