@@ -11,8 +11,10 @@ import signal
 import subprocess
 import sys
 import threading
+import time
 from collections.abc import Iterator
 from datetime import datetime, timedelta
+from pathlib import Path
 from typing import Any
 
 import uvicorn
@@ -78,12 +80,24 @@ class WorkerPool:
         self._watch.start()
 
     def _supervise(self) -> None:
+        next_prune = time.monotonic() + 60.0  # the first a minute after start
         while not self.stopping.wait(2.0):
             for i, proc in enumerate(self.procs):
                 if proc.poll() is not None and not self.stopping.is_set():
                     log.warning("worker pid %d exited with %s; starting another",
                                 proc.pid, proc.returncode)
                     self.procs[i] = self._spawn()
+            if time.monotonic() >= next_prune:
+                next_prune = time.monotonic() + self.settings.retention_every_hours * 3600
+                self._retention()
+
+    def _retention(self) -> None:
+        from service.housekeeping import prune
+
+        try:
+            prune(self.settings, trials_days=self.settings.retain_trials_days)
+        except Exception:  # noqa: BLE001 - retention is housekeeping: log, retry later
+            log.exception("retention failed; it runs again at its next interval")
 
     def stop(self, timeout: float = 60.0) -> None:
         """SIGTERM: each worker finishes or hands back its trial and releases its job."""
@@ -162,7 +176,6 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 def cmd_migrate(args: argparse.Namespace) -> int:
     """Create or upgrade the schema (ours and Optuna's); the containers' prestart step."""
-    import time
 
     from service.db import init_db, ping
     from service.migrations import SCHEMA_VERSION
@@ -196,6 +209,43 @@ def cmd_keys_create(args: argparse.Namespace) -> int:
     until = f", expires in {args.expires_in}" if args.expires_in else ""
     print(f"key {key_id} ({args.scope}{until}); shown once, only its hash is stored",
           file=sys.stderr)
+    return 0
+
+
+def cmd_backup(args: argparse.Namespace) -> int:
+    from service.db import init_db, is_sqlite
+    from service.housekeeping import backup
+
+    settings = _settings(args)
+    init_db(settings.db_url)
+    if not is_sqlite(settings.db_url):
+        print("grovekeeper: PostgreSQL is copied with pg_dump (see README, Backups); run it "
+              "first, then this command copies the artifacts its rows refer to",
+              file=sys.stderr)
+    try:
+        report = backup(settings, Path(args.dest))
+    except ValueError as exc:
+        print(f"grovekeeper: {exc}", file=sys.stderr)
+        return 2
+    what = "database and " if report.database else ""
+    print(f"copied the {what}{report.artifacts} artifact file(s) to {args.dest}",
+          file=sys.stderr)
+    for key in report.missing:
+        print(f"grovekeeper: {key} was deleted while the copy ran; its row is in the copy",
+              file=sys.stderr)
+    return 0
+
+
+def cmd_prune(args: argparse.Namespace) -> int:
+    from service.db import init_db
+    from service.housekeeping import prune
+
+    settings = _settings(args)
+    init_db(settings.db_url)
+    days = args.trials_days if args.trials_days is not None else settings.retain_trials_days
+    report = prune(settings, trials_days=days)
+    print(f"deleted the trials of {report.jobs} finished job(s) ({report.trials} rows) and "
+          f"{len(report.files)} unreferenced file(s)", file=sys.stderr)
     return 0
 
 
@@ -296,6 +346,18 @@ def build_parser() -> argparse.ArgumentParser:
     common(revoke)
     revoke.add_argument("key_id", help="the key's id, as 'keys list' shows it")
     revoke.set_defaults(func=cmd_keys_revoke)
+
+    back = sub.add_parser("backup", help="copy the database (SQLite) and its artifacts into "
+                          "a new folder while the service runs")
+    common(back)
+    back.add_argument("dest", help="a new or empty folder")
+    back.set_defaults(func=cmd_backup)
+    prune_p = sub.add_parser("prune", help="apply the retention settings once")
+    common(prune_p)
+    prune_p.add_argument("--trials-days", type=float, default=None,
+                         help="delete trials of jobs finished more than this many days ago "
+                         "(default $GROVEKEEPER_RETAIN_TRIALS_DAYS; unset keeps them)")
+    prune_p.set_defaults(func=cmd_prune)
 
     from client.cli import register  # upload, tune, board, predict, ...
 
