@@ -16,12 +16,14 @@ from service.api.routes import (
     audit,
     bundle,
     channels,
+    comparisons,
     datasets,
     events,
     health,
     jobs,
     metrics,
     models,
+    scorings,
 )
 from service.api.routes import report as report_routes
 from service.auth import KeyChecker
@@ -60,7 +62,8 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
         app.add_middleware(CORSMiddleware, allow_origins=origins, allow_methods=["*"],
                            allow_headers=["Authorization", "Content-Type", "Accept"])
     app.include_router(health.router)
-    for router in (datasets.router, jobs.router, models.router, channels.router):
+    for router in (datasets.router, jobs.router, models.router, channels.router,
+                   scorings.router, comparisons.router):
         app.include_router(router, dependencies=[AuthDep])
     # Practitioner-facing additions: live events, bundles, /metrics, documented examples.
     for router in (events.router, bundle.router):

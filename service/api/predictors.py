@@ -34,8 +34,10 @@ class PredictorCache:
             return found
         path = self.store.local_path(model.file_key)
         booster = tuner.load_booster(path, expected_sha256=model.sha256)
+        threshold = float((model.decision or {}).get("threshold", 0.5))
         predictor = tuner.Predictor(
-            booster, tuner.FeatureSchema.from_dict(model.feature_schema), model.task, model.classes
+            booster, tuner.FeatureSchema.from_dict(model.feature_schema), model.task,
+            model.classes, threshold=threshold,
         )
         with self._lock:
             self._items[model.id] = predictor

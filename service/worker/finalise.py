@@ -7,6 +7,7 @@ import traceback
 from typing import Any
 
 import tuner
+import tuner.decision
 from service import queue, repository
 from service.db import is_transient, session_scope, with_reconnect
 from service.jobspec import RunPlan
@@ -50,6 +51,40 @@ def evaluate_safely(fitted: tuner.FittedModel, run: RunPlan, url: str,
         return {"error": f"evaluation failed: {exc!r}", "warnings": []}
 
 
+def decide_safely(fitted: tuner.FittedModel, run: RunPlan, best: tuner.TrialRecord,
+                  costs: dict[str, float] | None, job_id: str) -> dict[str, Any] | None:
+    """The binary model's decision threshold (tuner/decision.py); None for other tasks.
+
+    Out-of-fold predictions refit each fold of the chosen trial, so a failure there falls
+    back to the cost ratio and says so rather than costing the model.
+    """
+    if fitted.task != "binary":
+        return None
+    # Probabilities count as calibrated only when the model says it applied a calibration.
+    calibrated = bool(((fitted.refit or {}).get("calibration") or {}).get("applied"))
+    rows = run.plan.holdout_idx
+    holdout = None
+    if len(rows):
+        prob = tuner.predict(fitted.booster, "binary", run.data.X.iloc[rows])
+        weight = None if run.data.weight is None else run.data.weight[rows]
+        holdout = (run.data.y[rows], prob, weight)
+    try:
+        oof = None
+        if costs and not calibrated:
+            positions, prob = tuner.decision.out_of_fold(
+                run.data, run.plan, fitted.params, list(best.best_iterations))
+            oof = (run.data.y[positions], prob)
+        out = tuner.decision.decide(costs, calibrated=calibrated, oof=oof, holdout=holdout)
+    except Exception as exc:  # noqa: BLE001 - see the docstring
+        log.error("job %s: decision threshold failed:\n%s", job_id, traceback.format_exc())
+        out = tuner.decision.decide(costs, calibrated=True, oof=None, holdout=holdout)
+        out["error"] = f"out-of-fold threshold failed ({exc!r}); used the cost ratio"
+    if costs and not (fitted.refit or {}).get("served_is_scored", True):
+        out["holdout_note"] = ("the served model was refit on every row, hold-out "
+                               "included: its hold-out cost is optimistic")
+    return out
+
+
 def fit_and_store(url: str, store: ArtifactStore, job_id: str, run: RunPlan,
                   best: tuner.TrialRecord, *, worker_id: str | None = None,
                   epoch: int | None = None) -> str:
@@ -62,6 +97,12 @@ def fit_and_store(url: str, store: ArtifactStore, job_id: str, run: RunPlan,
     """
     fitted = tuner.fit_final(run.data, run.plan, run.config, best)
     evaluation = evaluate_safely(fitted, run, url, job_id)
+    def read_costs() -> dict[str, float] | None:
+        with session_scope(url) as session:
+            return repository.get_job(session, job_id).spec["request"].get("decision")
+
+    costs = with_reconnect(read_costs, f"job {job_id}: reading its costs")
+    decision = decide_safely(fitted, run, best, costs, job_id)
     model_id = repository.new_id("mdl")
     key = f"models/{model_id}.txt"
     try:
@@ -92,6 +133,7 @@ def fit_and_store(url: str, store: ArtifactStore, job_id: str, run: RunPlan,
         details={"manifest": run.effective, "evaluation": evaluation,
                  "selection": run.effective.get("selection_report"),
                  "final_refit": fitted.refit},
+        decision=decision,
         sha256=sha,
         file_key=key,
         size_bytes=size,

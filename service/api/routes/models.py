@@ -26,6 +26,7 @@ from service.api.schemas import (
 from service.api.tabular import csv_response, wants_csv
 from service.errors import Unprocessable
 from service.tables import Model
+from tuner.decision import DEFAULT_DECISION
 
 router = APIRouter(prefix="/v1/models", tags=["models"])
 Unseen = Literal["error", "missing"]
@@ -38,6 +39,7 @@ def to_out(model: Model) -> ModelOut:
         trial_number=model.trial_number, cv=model.cv, holdout=model.holdout,
         feature_schema=model.feature_schema, classes=model.classes,
         feature_importance=model.feature_importance, details=model.details,
+        decision=model.decision or (dict(DEFAULT_DECISION) if model.task == "binary" else None),
         sha256=model.sha256, size_bytes=model.size_bytes, created_at=as_utc(model.created_at),
     )
 
@@ -130,6 +132,7 @@ async def predict(
     unseen: Annotated[Unseen, Query()] = "error",
     explain: Annotated[bool, Query()] = False,
     keep: Annotated[str | None, Query(description="input columns to return, a,b")] = None,
+    threshold: predicting.ThresholdQuery = None,
 ) -> PredictResponse | Response:
     predictors = request.app.state.predictors
     predictor = predictors.cached(model_id)
@@ -138,4 +141,5 @@ async def predict(
         predictor = await run_in_threadpool(predictors.get, model)
     session.close()
     return await predicting.answer(request, predictor, model_id, settings=settings,
-                                   store=store, unseen=unseen, explain=explain, keep=keep)
+                                   store=store, unseen=unseen, explain=explain, keep=keep,
+                                   threshold=threshold)
