@@ -17,6 +17,7 @@ from service.tables import (
     ChannelEvent,
     Comparison,
     Dataset,
+    DriftCounts,
     Job,
     JobStatus,
     Model,
@@ -186,6 +187,25 @@ def get_model(session: Session, model_id: str) -> Model:
     model = session.get(Model, model_id)
     if model is None:
         raise NotFound(f"no model with id {model_id!r}")
+    return model
+
+
+def delete_model(session: Session, model_id: str) -> Model:
+    """Delete a model's row; refused while a channel points at it or a scoring run of it
+    is queued or running (callers would lose their answers)."""
+    model = get_model(session, model_id)
+    behind = channels_for_model(session, model_id)
+    if behind:
+        raise Conflict(f"model {model_id!r} is behind channel(s) {', '.join(behind)}; move "
+                       "them first", errors=[{"field": "model_id", "channel": c,
+                                              "message": f"channel '{c}' serves it"}
+                                             for c in behind])
+    busy = session.scalars(sa.select(Scoring.id).where(Scoring.model_id == model_id,
+                                                       Scoring.status.in_(ACTIVE))).all()
+    if busy:
+        raise Conflict(f"model {model_id!r} is used by scoring runs: {', '.join(busy)}")
+    session.delete(model)
+    session.flush()
     return model
 
 
@@ -399,3 +419,30 @@ def finish_comparison(session: Session, *, comparison_id: str, worker_id: str, s
     session.execute(sa.update(Comparison).where(Comparison.id == comparison_id,
                                                 Comparison.worker_id == worker_id)
                     .values(status=status, finished_at=utcnow(), **fields))
+
+
+# -- drift ------------------------------------------------------------------
+
+
+def add_drift_counts(session: Session, *, model_id: str, day: str, rows: int,
+                     counts: list[list[int]]) -> None:
+    """Add one flush's counts to the (model, day) row, creating it on first use."""
+    row = session.scalar(sa.select(DriftCounts).where(DriftCounts.model_id == model_id,
+                                                      DriftCounts.day == day)
+                         .with_for_update())
+    if row is None:
+        session.add(DriftCounts(model_id=model_id, day=day, rows=rows, counts=counts))
+    else:
+        row.counts = [[a + b for a, b in zip(old, new, strict=True)]
+                      for old, new in zip(row.counts, counts, strict=True)]
+        row.rows = row.rows + rows
+        row.updated_at = utcnow()
+    session.flush()
+
+
+def drift_counts(session: Session, *, model_id: str,
+                 since: str | None = None) -> Sequence[DriftCounts]:
+    query = sa.select(DriftCounts).where(DriftCounts.model_id == model_id)
+    if since is not None:
+        query = query.where(DriftCounts.day >= since)
+    return session.scalars(query.order_by(DriftCounts.day)).all()

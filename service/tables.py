@@ -233,6 +233,19 @@ class Comparison(Base):
     finished_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
 
 
+class DriftCounts(Base):
+    """Per model and day, the scored rows' counts in the training bins of each feature
+    (tuner/drift.py), added to by every API process's periodic flush."""
+
+    __tablename__ = "gk_drift_counts"
+
+    model_id: Mapped[str] = mapped_column(sa.String(40), primary_key=True)
+    day: Mapped[str] = mapped_column(sa.String(10), primary_key=True)  # YYYY-MM-DD, UTC
+    rows: Mapped[int] = mapped_column(sa.BigInteger, default=0)
+    counts: Mapped[list[Any]]  # per feature, per bin (missing last)
+    updated_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+
+
 class ApiKey(Base):
     __tablename__ = "gk_api_keys"
 

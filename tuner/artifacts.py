@@ -13,7 +13,7 @@ import numpy as np
 import optuna
 import pandas as pd
 
-from tuner._lgb import predict
+from tuner._lgb import frame_matrix, predict
 from tuner._rows import RowEncoder
 from tuner.errors import ArtifactError
 from tuner.evaluation.explain import contribution_scale, contributions
@@ -107,6 +107,9 @@ class Predictor:
         self.task = task
         self.classes = classes
         self.threshold = threshold
+        # Called with each batch of rows in model input form (drift summaries); never
+        # allowed to fail a prediction.
+        self.observer: Any = None
         self._rows = RowEncoder(schema, booster)
 
     @classmethod
@@ -114,6 +117,17 @@ class Predictor:
         """Build from a booster and the dict of :func:`model_metadata`."""
         return cls(booster, FeatureSchema.from_dict(metadata["schema"]), metadata["task"],
                    metadata["classes"])
+
+    def _observe(self, matrix: Any) -> None:
+        if self.observer is None:
+            return
+        try:
+            if not isinstance(matrix, np.ndarray):
+                matrix = frame_matrix(self.booster, matrix)
+            if isinstance(matrix, np.ndarray):
+                self.observer(matrix)
+        except Exception:  # noqa: BLE001, S110 - a summary is never worth a failed answer
+            pass
 
     def _binary_labels(self, p1: np.ndarray, threshold: float | None) -> np.ndarray:
         cut = self.threshold if threshold is None else threshold
@@ -139,6 +153,7 @@ class Predictor:
         which cost more than LightGBM's own predict on large batches.
         """
         pred = predict(self.booster, self.task, frame)
+        self._observe(frame)
         if self.task == "regression":
             return pd.DataFrame({"prediction": pred})
         probs = np.column_stack([1.0 - pred, pred]) if pred.ndim == 1 else pred
@@ -189,8 +204,10 @@ class Predictor:
         if fast is not None:
             matrix, ignored = fast
             pred = np.asarray(self.booster.predict(matrix), dtype="float64")
+            self._observe(matrix)
             return {**self._answer(pred, threshold), "ignored_columns": ignored}
         frame, ignored = self.schema.frame_from_rows(rows, unseen=unseen)
+        self._observe(frame)
         out = {**self.predict_frame(frame, threshold), "ignored_columns": ignored}
         return {**out, **self.explain_frame(frame)} if explain else out
 

@@ -11,6 +11,7 @@ from fastapi.middleware.cors import CORSMiddleware
 from service.api import openapi_examples, problems
 from service.api.audit import AuditTrail
 from service.api.deps import AdminDep, AuthDep
+from service.api.drift import DriftRecorder
 from service.api.predictors import PredictorCache
 from service.api.routes import (
     audit,
@@ -45,6 +46,7 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
             settings.ensure_dirs()
             init_db(settings.db_url)
         yield
+        app.state.drift.close()  # what this process counted since the last flush
 
     app = FastAPI(
         title="Grovekeeper",
@@ -54,7 +56,8 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
     )
     app.state.settings = settings
     app.state.store = ArtifactStore(settings.artifacts_url, settings.tmp_dir)
-    app.state.predictors = PredictorCache(app.state.store)
+    app.state.drift = DriftRecorder(settings.db_url, settings.drift_flush_seconds)
+    app.state.predictors = PredictorCache(app.state.store, recorder=app.state.drift)
     app.state.keys = KeyChecker(settings.db_url, open_without_keys=loopback_only)
     problems.install(app)
     origins = [o.strip() for o in settings.cors_origins.split(",") if o.strip()]

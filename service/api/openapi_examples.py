@@ -164,6 +164,18 @@ EXAMPLES: dict[tuple[str, str], dict[str, Any]] = {
              f"{MODEL['id']},{JOB['id']},{DATASET['id']},binary,roc_auc,defect,97,11,"
              '"{""roc_auc"":0.8655}",c0ffee…,2026-03-14T09:33:00+00:00\n'}}},
     ("get", "/v1/models/{model_id}"): {"responses": {"200": {JSON: MODEL}}},
+    ("delete", "/v1/models/{model_id}"): {"responses": {}},
+    ("get", "/v1/models/{model_id}/drift"): {"responses": {"200": {JSON: {
+        "model_id": MODEL["id"], "rows": 5000, "training_rows": 960,
+        "days": [{"day": "2026-04-02", "rows": 5000}],
+        "features": [{"name": "peak_temp_c", "kind": "numeric", "rows": 5000, "psi": 0.31,
+                      "reading": "significant", "missing_rate": 0.0,
+                      "training_missing_rate": 0.0,
+                      "bins": {"training": [96, 96, 96, 96, 96, 96, 96, 96, 96, 96, 0],
+                               "scored": [20, 31, 60, 140, 300, 510, 800, 1000, 1039, 1100,
+                                          0],
+                               "edges": [1182.0, 1197.5, 1209.0, 1218.1, 1226.0, 1234.2,
+                                         1243.0, 1252.8, 1266.4]}}]}}}},
     ("get", "/v1/models/{model_id}/file"): {"responses": {"200": {
         "text/plain": "tree\nversion=v4\nnum_class=1\n…"}}},
     ("get", "/v1/models/{model_id}/bundle"): {"responses": {}},

@@ -1,5 +1,6 @@
 """Loaded models kept in memory, so a prediction never re-reads the model file, nor
-(once loaded) its database row: a stored model is never changed."""
+(once loaded) its database row: a stored model is never changed (only deleted, which a
+channel prevents for the models callers use)."""
 
 from __future__ import annotations
 
@@ -7,6 +8,7 @@ import threading
 from collections import OrderedDict
 
 import tuner
+from service.api.drift import DriftRecorder
 from service.storage import LocalStore
 from service.tables import Model
 
@@ -14,8 +16,10 @@ CAPACITY = 16
 
 
 class PredictorCache:
-    def __init__(self, store: LocalStore, capacity: int = CAPACITY) -> None:
+    def __init__(self, store: LocalStore, capacity: int = CAPACITY,
+                 recorder: DriftRecorder | None = None) -> None:
         self.store = store
+        self.recorder = recorder
         self.capacity = capacity
         self._items: OrderedDict[str, tuner.Predictor] = OrderedDict()
         self._lock = threading.Lock()
@@ -28,6 +32,11 @@ class PredictorCache:
                 self._items.move_to_end(model_id)
             return found
 
+    def forget(self, model_id: str) -> None:
+        """Drop a deleted model (this process only; others drop it when it falls out)."""
+        with self._lock:
+            self._items.pop(model_id, None)
+
     def get(self, model: Model) -> tuner.Predictor:
         found = self.cached(model.id)
         if found is not None:
@@ -39,6 +48,9 @@ class PredictorCache:
             booster, tuner.FeatureSchema.from_dict(model.feature_schema), model.task,
             model.classes, threshold=threshold,
         )
+        reference = (model.details or {}).get("drift_reference")
+        if reference and self.recorder is not None:
+            predictor.observer = self.recorder.observer(model.id, reference)
         with self._lock:
             self._items[model.id] = predictor
             while len(self._items) > self.capacity:

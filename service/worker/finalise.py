@@ -6,8 +6,11 @@ import logging
 import traceback
 from typing import Any
 
+import numpy as np
+
 import tuner
 import tuner.decision
+import tuner.drift
 from service import queue, repository
 from service.db import is_transient, session_scope, with_reconnect
 from service.jobspec import RunPlan
@@ -85,6 +88,23 @@ def decide_safely(fitted: tuner.FittedModel, run: RunPlan, best: tuner.TrialReco
     return out
 
 
+def drift_reference(fitted: tuner.FittedModel, run: RunPlan) -> dict[str, Any] | None:
+    """The training rows' bins per feature (tuner/drift.py), kept with the model."""
+    from tuner._lgb import frame_matrix
+
+    try:
+        matrix = frame_matrix(fitted.booster, run.data.X.iloc[run.plan.train_idx])
+        if not isinstance(matrix, np.ndarray):
+            return None
+        specs = fitted.schema.to_dict()["features"]
+        return tuner.drift.reference_bins(
+            matrix, [f["name"] for f in specs], [f["kind"] for f in specs],
+            [len(f.get("levels") or []) for f in specs])
+    except Exception:  # noqa: BLE001 - drift summaries describe; they never cost the model
+        log.error("drift reference failed:\n%s", traceback.format_exc())
+        return None
+
+
 def fit_and_store(url: str, store: ArtifactStore, job_id: str, run: RunPlan,
                   best: tuner.TrialRecord, *, worker_id: str | None = None,
                   epoch: int | None = None) -> str:
@@ -97,6 +117,7 @@ def fit_and_store(url: str, store: ArtifactStore, job_id: str, run: RunPlan,
     """
     fitted = tuner.fit_final(run.data, run.plan, run.config, best)
     evaluation = evaluate_safely(fitted, run, url, job_id)
+
     def read_costs() -> dict[str, float] | None:
         with session_scope(url) as session:
             return repository.get_job(session, job_id).spec["request"].get("decision")
@@ -132,7 +153,8 @@ def fit_and_store(url: str, store: ArtifactStore, job_id: str, run: RunPlan,
         feature_importance=fitted.feature_importance,
         details={"manifest": run.effective, "evaluation": evaluation,
                  "selection": run.effective.get("selection_report"),
-                 "final_refit": fitted.refit},
+                 "final_refit": fitted.refit,
+                 "drift_reference": drift_reference(fitted, run)},
         decision=decision,
         sha256=sha,
         file_key=key,

@@ -15,6 +15,7 @@ import httpx
 import numpy as np
 import pandas as pd
 import pytest
+from prometheus_client.parser import text_string_to_metric_families
 
 from examples.demo_data import kilns
 from service.api.schemas import JobCreate
@@ -424,3 +425,70 @@ def test_batch_scoring_cancel(env: Served) -> None:
     assert cancelled.status_code == 202 and cancelled.json()["cancel_requested"] is True
     assert run["status"] == "cancelled" and run["result_url"] is None
     assert result.status_code == 409 and again.status_code == 409
+
+
+def _drift(client: httpx.Client, model_id: str) -> dict[str, dict]:
+    answer = client.get(f"/v1/models/{model_id}/drift")
+    assert answer.status_code == 200, answer.text
+    return {f["name"]: f for f in answer.json()["features"]}
+
+
+def test_drift_stable_in_distribution_and_significant_on_the_shifted_feature(
+        env: Served) -> None:
+    steady, moved = env.models["costly"], env.models["narrow"]
+    fresh = kilns(n_rows=5000, seed=31).drop(columns=["defect"])
+    # One standard deviation of the training values (the narrow model's own dataset).
+    sd = env.stored_table(env.other_dataset_id)["peak_temp_c"].std()
+    shifted = fresh.drop(columns=["glaze_thickness_mm"]).copy()
+    shifted["peak_temp_c"] = shifted["peak_temp_c"] + sd
+    with env.client() as client:
+        before = _drift(client, moved["id"])
+        for model, rows in ((steady, fresh), (moved, shifted)):
+            # Half as JSON rows, half as CSV: both kinds of request are counted.
+            half = len(rows) // 2
+            client.post(f"/v1/models/{model['id']}/predictions", json={
+                "rows": json.loads(rows.iloc[:half].to_json(orient="records"))}
+            ).raise_for_status()
+            client.post(f"/v1/models/{model['id']}/predictions",
+                        content=rows.iloc[half:].to_csv(index=False).encode(),
+                        headers={"Content-Type": "text/csv"}).raise_for_status()
+        stable = _drift(client, steady["id"])
+        drifted = _drift(client, moved["id"])
+    assert all(f["rows"] == 0 and f["psi"] is None for f in before.values())
+    assert {f["rows"] for f in drifted.values()} == {5000}
+    assert min(f["rows"] for f in stable.values()) >= 5000
+    assert {n: f["psi"] for n, f in stable.items() if f["psi"] >= 0.1} == {}
+    assert all(f["reading"] == "stable" for f in stable.values())
+    assert drifted["peak_temp_c"]["psi"] > 0.25
+    assert drifted["peak_temp_c"]["reading"] == "significant"
+    others = {n: f["psi"] for n, f in drifted.items() if n != "peak_temp_c"}
+    assert max(others.values()) < 0.25, others
+    assert drifted["humidity_pct"]["missing_rate"] == pytest.approx(
+        shifted["humidity_pct"].isna().mean())
+
+
+def test_psi_gauges_only_for_models_behind_a_channel(env: Served) -> None:
+    steady = env.models["costly"]
+    name = f"gauged-{env.server.port}"
+    rows = kilns(n_rows=200, seed=32).drop(columns=["defect"])
+
+    def psi_samples(client: httpx.Client) -> list:
+        client.get(f"/v1/models/{steady['id']}/drift").raise_for_status()  # flushes
+        text = client.get("/metrics").text
+        return [s for f in text_string_to_metric_families(text) for s in f.samples
+                if s.name == "grovekeeper_feature_psi"]
+
+    with env.client() as client:
+        client.post(f"/v1/models/{steady['id']}/predictions", json={
+            "rows": json.loads(rows.to_json(orient="records"))}).raise_for_status()
+        # Scored rows, but no channel points at it yet: no series.
+        before = psi_samples(client)
+        client.put(f"/v1/channels/{name}", json={"model_id": steady["id"]}).raise_for_status()
+        after = psi_samples(client)
+        behind = {c["model_id"] for c in client.get("/v1/channels").json()["items"]}
+    assert not [s for s in before if s.labels["model_id"] == steady["id"]]
+    mine = [s for s in after if s.labels["channel"] == name]
+    assert mine and all(s.labels["model_id"] == steady["id"] for s in mine)
+    assert {s.labels["feature"] for s in mine} == {
+        f["name"] for f in steady["feature_schema"]["features"]}
+    assert {s.labels["model_id"] for s in after} <= behind
