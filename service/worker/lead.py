@@ -80,11 +80,26 @@ def run_job(ctx: WorkerContext, job_id: str, epoch: int | None = None) -> None:
         log.error("job %s: database unreachable; the stale sweep will hand it on", job_id)
 
 
+def _record_parallelism(ctx: WorkerContext, job_id: str, config: tuner.SearchConfig) -> None:
+    """Write what this worker chose for the job (trials at once, threads) into its spec."""
+    def write() -> None:
+        with session_scope(ctx.url) as session:
+            row = repository.get_job(session, job_id)
+            effective = {**row.spec["effective"],
+                         "max_parallel_trials": config.max_parallel_trials,
+                         "num_threads": config.num_threads}
+            row.spec = {**row.spec, "effective": effective}
+
+    with_reconnect(write, f"job {job_id}: recording its parallelism")
+
+
 def _execute(ctx: WorkerContext, job_id: str, flags: heartbeat.JobFlags,
              epoch: int | None) -> Outcome:
     job = with_reconnect(lambda: load_job(ctx, job_id), f"job {job_id}: loading")
     run, config = job.run, job.config
     resync_trials(ctx.url, job_id, job.study_name)
+    if run.effective.get("parallelism") == "machine":
+        _record_parallelism(ctx, job_id, config)
 
     def should_stop() -> bool:
         return flags.cancel or flags.lost or ctx.shutdown.is_set()

@@ -40,8 +40,10 @@ def record_trial(url: str, job_id: str, worker_id: str, record: tuner.TrialRecor
                     "the job (claim epoch %s superseded)", job_id, record.number, worker_id,
                     epoch if lead else "of its joiner row")
         return False
+    # Parallel trials call this from the sampler's threads, which do not inherit the
+    # worker's log context: name the job and worker on the line itself.
     log.info("trial %d %s, score %s", record.number, record.state, record.score,
-             extra={"trial": record.number})
+             extra={"trial": record.number, "job_id": job_id, "worker_id": worker_id})
     return True
 
 
