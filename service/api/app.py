@@ -10,6 +10,8 @@ from fastapi.middleware.cors import CORSMiddleware
 
 from service.api import openapi_examples, problems
 from service.api.deps import AuthDep
+from service.api.guard import RequestGuard
+from service.api.jobwatch import WatchHub
 from service.api.predictors import PredictorCache
 from service.api.routes import bundle, datasets, events, health, jobs, metrics, models
 from service.api.routes import report as report_routes
@@ -43,8 +45,14 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
     app.state.store = ArtifactStore(settings.artifacts_url, settings.tmp_dir)
     app.state.predictors = PredictorCache(app.state.store)
     app.state.keys = KeyChecker(settings.db_url, open_without_keys=loopback_only)
-    problems.install(app)
+    app.state.watch_hub = WatchHub(settings.db_url, per_key=settings.max_streams_per_key,
+                                   total=settings.max_streams)
     origins = [o.strip() for o in settings.cors_origins.split(",") if o.strip()]
+    app.state.cors_origins = set(origins)
+    # Size, key, host and origin checks before routing, so no body is read first;
+    # added before problems.install so that its catch-all wraps the guard too.
+    app.add_middleware(RequestGuard)
+    problems.install(app)
     if origins:  # closed by default: no CORS headers at all unless origins are configured
         app.add_middleware(CORSMiddleware, allow_origins=origins, allow_methods=["*"],
                            allow_headers=["Authorization", "Content-Type", "Accept"])
