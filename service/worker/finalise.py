@@ -9,6 +9,7 @@ from typing import Any
 import tuner
 from service import repository
 from service.db import session_scope
+from service.errors import describe_failure
 from service.jobspec import RunPlan
 from service.storage import ArtifactStore
 from tuner.evaluation.holdout import evaluate_model
@@ -30,7 +31,7 @@ def evaluate_safely(fitted: tuner.FittedModel, run: RunPlan, url: str,
                               study_name=study_name, seed=run.config.seed)
     except Exception as exc:  # noqa: BLE001 - see the docstring
         log.error("job %s: evaluation failed:\n%s", job_id, traceback.format_exc())
-        return {"error": f"evaluation failed: {exc!r}", "warnings": []}
+        return {"error": f"evaluation failed: {describe_failure(exc)}", "warnings": []}
 
 
 def fit_and_store(url: str, store: ArtifactStore, job_id: str, run: RunPlan,

@@ -11,6 +11,7 @@ from collections.abc import Callable
 import tuner
 from service import queue
 from service.db import session_scope
+from service.errors import describe_failure
 from service.tables import JobStatus
 from service.worker import heartbeat
 from service.worker.context import WorkerContext, load_job
@@ -31,7 +32,9 @@ def run_job(ctx: WorkerContext, job_id: str) -> None:
         status, error, model_id = JobStatus.FAILED, str(exc), None
         log.warning("job %s failed: %s", job_id, exc)
     except Exception as exc:  # noqa: BLE001 - any crash must end as a failed job
-        status, error, model_id = JobStatus.FAILED, f"internal error: {exc!r}", None
+        # The message is shown to every reader of the job: no paths or hosts in it.
+        status, model_id = JobStatus.FAILED, None
+        error = f"internal error: {describe_failure(exc)}"
         log.error("job %s crashed:\n%s", job_id, traceback.format_exc())
     finally:
         heartbeat.stop(flags, beat)

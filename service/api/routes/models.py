@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from typing import Annotated, Literal
+from urllib.parse import quote
 
 import pandas as pd
 from fastapi import APIRouter, Query, Request
@@ -68,6 +69,13 @@ def _contribution_columns(predictor: tuner.Predictor, features: pd.DataFrame) ->
     return pd.DataFrame(flat, columns=[f"contribution_{c}_{n}" for c in classes for n in names])
 
 
+def ignored_header(names: list[str]) -> str:
+    """Column names as one header value: each percent-encoded as UTF-8 (RFC 3986), joined
+    by commas. A raw name could hold commas, CR/LF or characters outside Latin-1, which a
+    header cannot carry."""
+    return ",".join(quote(name, safe="") for name in names)
+
+
 def _predict_csv(predictor: tuner.Predictor, store: LocalStore, body: bytes, unseen: str,
                  limit: int, explain: bool = False) -> Response:
     if not body.strip():
@@ -80,7 +88,7 @@ def _predict_csv(predictor: tuner.Predictor, store: LocalStore, body: bytes, uns
     out = predictor.predict_columns(features)
     if explain:
         out = pd.concat([out, _contribution_columns(predictor, features)], axis=1)
-    headers = {"X-Ignored-Columns": ",".join(ignored)} if ignored else None
+    headers = {"X-Ignored-Columns": ignored_header(ignored)} if ignored else None
     return Response(frame_csv(out), media_type="text/csv; charset=utf-8", headers=headers)
 
 
@@ -92,7 +100,8 @@ def _predict_csv(predictor: tuner.Predictor, store: LocalStore, body: bytes, uns
         "Missing feature columns and wrong types are a 422 naming row and column. Unseen "
         "categories are a 422 unless `unseen=missing`, which sends them down LightGBM's "
         "missing-value branch. Columns the model does not use are ignored and listed in "
-        "`ignored_columns` (CSV: the `X-Ignored-Columns` header). An empty batch is a 422; "
+        "`ignored_columns` (CSV: the `X-Ignored-Columns` header, each name percent-encoded "
+        "as UTF-8 and the names joined by commas). An empty batch is a 422; "
         "more rows than `GROVEKEEPER_MAX_PREDICTION_ROWS`, or a body over "
         "`GROVEKEEPER_MAX_UPLOAD_MB`, is a 413. "
         "`explain=true` adds per-row TreeSHAP contributions (bias plus one value per "
