@@ -4,13 +4,24 @@ from __future__ import annotations
 
 import secrets
 from collections.abc import Sequence
+from datetime import datetime
 from typing import Any
 
 import sqlalchemy as sa
 from sqlalchemy.orm import Session
 
 from service.errors import Conflict, NotFound
-from service.tables import Dataset, Job, JobStatus, Model, Trial, utcnow
+from service.tables import (
+    ApiKey,
+    Channel,
+    ChannelEvent,
+    Dataset,
+    Job,
+    JobStatus,
+    Model,
+    Trial,
+    utcnow,
+)
 
 ACTIVE = (JobStatus.QUEUED.value, JobStatus.RUNNING.value)
 
@@ -170,3 +181,103 @@ def get_model(session: Session, model_id: str) -> Model:
     if model is None:
         raise NotFound(f"no model with id {model_id!r}")
     return model
+
+
+def list_models(
+    session: Session, *, dataset_id: str | None, job_id: str | None, target: str | None,
+    limit: int, after: tuple[datetime, str] | None,
+) -> tuple[Sequence[tuple[Model, str]], int]:
+    """Models newest first (ties by id), each with its job's dataset id; and the total.
+
+    ``after`` is the (created_at, id) of the last model of the previous page: keyset
+    paging, so models stored while a caller pages never shift or repeat a page.
+    """
+    where: list[Any] = []
+    if dataset_id is not None:
+        where.append(Job.dataset_id == dataset_id)
+    if job_id is not None:
+        where.append(Model.job_id == job_id)
+    if target is not None:
+        where.append(Model.target == target)
+    base = sa.select(Model, Job.dataset_id).join(Job, Job.id == Model.job_id).where(*where)
+    total = session.scalar(
+        sa.select(sa.func.count()).select_from(Model).join(Job, Job.id == Model.job_id)
+        .where(*where)) or 0
+    if after is not None:
+        stamp, last_id = after
+        base = base.where(sa.or_(Model.created_at < stamp,
+                                 sa.and_(Model.created_at == stamp, Model.id < last_id)))
+    rows = session.execute(
+        base.order_by(Model.created_at.desc(), Model.id.desc()).limit(limit)).all()
+    return [(m, d) for m, d in rows], total
+
+
+# -- channels ---------------------------------------------------------------
+
+
+def get_channel(session: Session, name: str, *, lock: bool = False) -> Channel:
+    query = sa.select(Channel).where(Channel.name == name)
+    if lock:  # PostgreSQL: one mover at a time; SQLite serialises writers anyway
+        query = query.with_for_update()
+    channel = session.scalar(query)
+    if channel is None:
+        raise NotFound(f"no channel named {name!r}")
+    return channel
+
+
+def channel_model_id(session: Session, name: str) -> str:
+    """The model a channel points at now: one primary-key read per prediction."""
+    model_id = session.scalar(sa.select(Channel.model_id).where(Channel.name == name))
+    if model_id is None:
+        raise NotFound(f"no channel named {name!r}")
+    return model_id
+
+
+def list_channels(session: Session, *, limit: int,
+                  after: str | None) -> tuple[Sequence[Channel], int]:
+    query = sa.select(Channel)
+    if after is not None:
+        query = query.where(Channel.name > after)
+    rows = session.scalars(query.order_by(Channel.name).limit(limit)).all()
+    return rows, session.scalar(sa.select(sa.func.count()).select_from(Channel)) or 0
+
+
+def channel_history(session: Session, *, name: str, limit: int = 100) -> Sequence[ChannelEvent]:
+    """A channel's moves, newest first."""
+    return session.scalars(
+        sa.select(ChannelEvent).where(ChannelEvent.channel == name)
+        .order_by(ChannelEvent.id.desc()).limit(limit)).all()
+
+
+def last_channel_event(session: Session, *, name: str) -> ChannelEvent | None:
+    return session.scalar(sa.select(ChannelEvent).where(ChannelEvent.channel == name)
+                          .order_by(ChannelEvent.id.desc()).limit(1))
+
+
+def move_channel(session: Session, *, channel: Channel | None, name: str, model_id: str,
+                 action: str, forced: bool = False, key_id: str | None = None,
+                 job_id: str | None = None) -> Channel:
+    """Point ``name`` at ``model_id`` (creating it when ``channel`` is None) and record
+    the move, in the caller's transaction."""
+    now = utcnow()
+    previous = channel.model_id if channel is not None else None
+    if channel is None:
+        channel = Channel(name=name, model_id=model_id, created_at=now, updated_at=now)
+        session.add(channel)
+    else:
+        channel.model_id = model_id
+        channel.updated_at = now
+    session.add(ChannelEvent(channel=name, model_id=model_id, previous_model_id=previous,
+                             action=action, forced=forced, key_id=key_id, job_id=job_id,
+                             at=now))
+    session.flush()
+    return channel
+
+
+def channels_for_model(session: Session, model_id: str) -> list[str]:
+    return list(session.scalars(sa.select(Channel.name).where(Channel.model_id == model_id)
+                                .order_by(Channel.name)))
+
+
+def key_id_for_hash(session: Session, key_hash: str) -> str | None:
+    return session.scalar(sa.select(ApiKey.id).where(ApiKey.key_hash == key_hash))

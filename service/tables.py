@@ -146,6 +146,37 @@ class Model(Base):
     created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
 
 
+class Channel(Base):
+    """A stable name callers predict through; it points at one model at a time."""
+
+    __tablename__ = "gk_channels"
+
+    name: Mapped[str] = mapped_column(sa.String(100), primary_key=True)
+    model_id: Mapped[str] = mapped_column(sa.String(40), index=True)
+    created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+    updated_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+
+
+class ChannelEvent(Base):
+    """One move of a channel: set, rollback or promotion; never updated or deleted."""
+
+    __tablename__ = "gk_channel_events"
+    __table_args__ = (sa.Index("ix_gk_channel_events_channel", "channel", "id"),)
+
+    id: Mapped[int] = mapped_column(sa.BigInteger().with_variant(sa.Integer, "sqlite"),
+                                    primary_key=True, autoincrement=True)
+    channel: Mapped[str] = mapped_column(sa.String(100))
+    model_id: Mapped[str] = mapped_column(sa.String(40))
+    previous_model_id: Mapped[str | None] = mapped_column(sa.String(40))
+    action: Mapped[str] = mapped_column(sa.String(16))
+    forced: Mapped[bool] = mapped_column(default=False)
+    # The API key that made the change (None on a server without keys, or a worker's
+    # promotion, which names its job in ``job_id``).
+    key_id: Mapped[str | None] = mapped_column(sa.String(40))
+    job_id: Mapped[str | None] = mapped_column(sa.String(40))
+    at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+
+
 class ApiKey(Base):
     __tablename__ = "gk_api_keys"
 

@@ -13,7 +13,16 @@ from service.api.deps import AuthDep
 from service.api.guard import RequestGuard
 from service.api.jobwatch import WatchHub
 from service.api.predictors import PredictorCache
-from service.api.routes import bundle, datasets, events, health, jobs, metrics, models
+from service.api.routes import (
+    bundle,
+    channels,
+    datasets,
+    events,
+    health,
+    jobs,
+    metrics,
+    models,
+)
 from service.api.routes import report as report_routes
 from service.auth import KeyChecker
 from service.db import init_db
@@ -57,7 +66,7 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
         app.add_middleware(CORSMiddleware, allow_origins=origins, allow_methods=["*"],
                            allow_headers=["Authorization", "Content-Type", "Accept"])
     app.include_router(health.router)
-    for router in (datasets.router, jobs.router, models.router):
+    for router in (datasets.router, jobs.router, models.router, channels.router):
         app.include_router(router, dependencies=[AuthDep])
     # Practitioner-facing additions: live events, bundles, /metrics, documented examples.
     for router in (events.router, bundle.router):

@@ -60,6 +60,9 @@ MODEL = {
     "details": {}, "sha256": "c0ffee…", "size_bytes": 48211,
     "created_at": "2026-03-14T09:33:00Z",
 }
+MODEL_SUMMARY = {k: MODEL[k] for k in ("id", "job_id", "task", "metric", "target",
+                                        "boosting_rounds", "trial_number", "cv", "holdout",
+                                        "sha256", "created_at")} | {"dataset_id": DATASET["id"]}
 ROW = {"kiln": "north", "clay_body": "raku", "peak_temp_c": 1240, "ramp_rate_c_per_h": 150,
        "hold_minutes": 20, "cooling_rate_c_per_h": 120, "humidity_pct": 55,
        "glaze_thickness_mm": 0.8, "load_fraction": 0.7, "shelf_position": "middle",
@@ -69,6 +72,22 @@ PREDICTIONS = {"model_id": MODEL["id"], "predictions": [0], "classes": [0, 1],
 
 JSON = "application/json"
 CSV = "text/csv"
+CHANNEL_MOVE = {"model_id": MODEL["id"], "previous_model_id": "mdl_0f1e2d3c4b5a6978",
+                "action": "set", "forced": False, "key_id": "key_5a5a5a5a5a5a5a5a",
+                "job_id": None, "at": "2026-04-02T08:00:00Z"}
+CHANNEL = {"name": "kilns", "model_id": MODEL["id"], "created_at": "2026-03-14T10:00:00Z",
+           "updated_at": "2026-04-02T08:00:00Z",
+           "history": [CHANNEL_MOVE,
+                       {**CHANNEL_MOVE, "model_id": "mdl_0f1e2d3c4b5a6978",
+                        "previous_model_id": None, "at": "2026-03-14T10:00:00Z"}]}
+KEPT_ROW = {"firing_id": "F-000417", **ROW}
+PREDICT_EXAMPLES = {
+    "request": {JSON: {"rows": [KEPT_ROW], "keep": ["firing_id"]},
+                CSV: ",".join(KEPT_ROW) + "\n" + ",".join(str(v) for v in KEPT_ROW.values())
+                + "\n"},
+    "responses": {"200": {JSON: {**PREDICTIONS, "kept": [{"firing_id": "F-000417"}]},
+                          CSV: "firing_id,prediction,probability_0,probability_1\n"
+                               "F-000417,0,0.83,0.17\n"}}}
 JOB_CREATE = {"dataset_id": DATASET["id"], "target": "defect", "budget": {"trials": 40},
               "cv": {"folds": 5}, "seed": 0}
 
@@ -114,15 +133,30 @@ EXAMPLES: dict[tuple[str, str], dict[str, Any]] = {
             '<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 640 360">…</svg>'}}},
     ("get", "/v1/jobs/{job_id}/report"): {"responses": {"200": {
         "text/html": "<!doctype html><html><head><title>Job job_5c0f9a1e2b3d4e6f</title>…"}}},
+    ("get", "/v1/models"): {"responses": {"200": {
+        JSON: {"items": [MODEL_SUMMARY], "total": 1, "next": None},
+        CSV: "id,job_id,dataset_id,task,metric,target,boosting_rounds,trial_number,holdout,"
+             "sha256,created_at\n"
+             f"{MODEL['id']},{JOB['id']},{DATASET['id']},binary,roc_auc,defect,97,11,"
+             '"{""roc_auc"":0.8655}",c0ffee…,2026-03-14T09:33:00+00:00\n'}}},
     ("get", "/v1/models/{model_id}"): {"responses": {"200": {JSON: MODEL}}},
     ("get", "/v1/models/{model_id}/file"): {"responses": {"200": {
         "text/plain": "tree\nversion=v4\nnum_class=1\n…"}}},
     ("get", "/v1/models/{model_id}/bundle"): {"responses": {}},
-    ("post", "/v1/models/{model_id}/predictions"): {
-        "request": {JSON: {"rows": [ROW]}, CSV: ",".join(ROW) + "\n"
-                    + ",".join(str(v) for v in ROW.values()) + "\n"},
-        "responses": {"200": {JSON: PREDICTIONS,
-                              CSV: "prediction,probability_0,probability_1\n0,0.83,0.17\n"}}},
+    ("post", "/v1/models/{model_id}/predictions"): PREDICT_EXAMPLES,
+    ("put", "/v1/channels/{name}"): {"request": {JSON: {"model_id": MODEL["id"]}},
+                                     "responses": {"200": {JSON: CHANNEL}}},
+    ("get", "/v1/channels/{name}"): {"responses": {"200": {JSON: CHANNEL}}},
+    ("get", "/v1/channels"): {"responses": {"200": {JSON: {
+        "items": [{k: CHANNEL[k] for k in ("name", "model_id", "updated_at")}],
+        "total": 1, "next": None}}}},
+    ("post", "/v1/channels/{name}/rollback"): {"responses": {"200": {JSON: {
+        **CHANNEL, "model_id": "mdl_0f1e2d3c4b5a6978",
+        "history": [{**CHANNEL_MOVE, "model_id": "mdl_0f1e2d3c4b5a6978",
+                     "previous_model_id": MODEL["id"], "action": "rollback",
+                     "at": "2026-04-02T08:05:00Z"},
+                    *CHANNEL["history"]]}}}},
+    ("post", "/v1/channels/{name}/predictions"): PREDICT_EXAMPLES,
 }
 
 

@@ -200,6 +200,30 @@ class ModelOut(BaseModel):
     created_at: datetime
 
 
+class ModelSummary(BaseModel):
+    """A model as listed: enough to choose one; ``GET /v1/models/{id}`` has the rest."""
+
+    id: str
+    job_id: str
+    dataset_id: str
+    task: str
+    metric: str
+    target: str
+    boosting_rounds: int
+    trial_number: int
+    cv: dict[str, Any]
+    holdout: dict[str, Any]
+    sha256: str
+    created_at: datetime
+
+
+class ModelList(BaseModel):
+    items: list[ModelSummary]
+    total: int
+    # Pass as ?cursor= for the next page; null on the last page.
+    next: str | None = None
+
+
 class PredictRequest(Strict):
     model_config = ConfigDict(
         extra="forbid",
@@ -209,6 +233,8 @@ class PredictRequest(Strict):
     # The row limit itself is a setting (max_prediction_rows, a 413); this bound only
     # stops a list far beyond any setting before it is built.
     rows: list[dict[str, Any]] = Field(min_length=1, max_length=10_000_000)
+    # Input columns to return unchanged beside each prediction (also ?keep=a,b).
+    keep: list[Name] | None = Field(default=None, max_length=MAX_COLUMNS)
 
 
 class PredictResponse(BaseModel):
@@ -220,3 +246,45 @@ class PredictResponse(BaseModel):
     # With ?explain=true: per row {"bias", "features": {name: value}} (TreeSHAP).
     contributions: list[dict[str, Any]] | None = None
     contribution_scale: str | None = None
+    # With keep: per row, the kept columns as sent, aligned with predictions.
+    kept: list[dict[str, Any]] | None = None
+
+
+class ChannelPut(Strict):
+    model_config = ConfigDict(extra="forbid", json_schema_extra={
+        "examples": [{"model_id": "mdl_4567cdef89ab0123"}]})
+
+    model_id: str = Field(min_length=1, max_length=64)
+    # Switch even when the new model needs other input columns than the current one.
+    force: bool = False
+
+
+class ChannelMove(BaseModel):
+    model_id: str
+    previous_model_id: str | None
+    action: str  # "set", "rollback" or "promote"
+    forced: bool
+    key_id: str | None
+    job_id: str | None
+    at: datetime
+
+
+class ChannelOut(BaseModel):
+    name: str
+    model_id: str
+    created_at: datetime
+    updated_at: datetime
+    # Newest first (at most the last 100 moves).
+    history: list[ChannelMove]
+
+
+class ChannelSummary(BaseModel):
+    name: str
+    model_id: str
+    updated_at: datetime
+
+
+class ChannelList(BaseModel):
+    items: list[ChannelSummary]
+    total: int
+    next: str | None = None

@@ -64,8 +64,8 @@ def csv_response(header: Sequence[str], rows: Iterable[Sequence[Any]]) -> Respon
 
 def neutralised_frame(frame: pd.DataFrame, exact: Collection[str] = ()) -> pd.DataFrame:
     """``frame`` with formula-like headers and text cells neutralised, except the
-    ``exact`` columns (their values; their header is still neutralised)."""
-    out = frame.rename(columns=lambda c: neutralise(str(c)))
+    ``exact`` columns (name and values as the caller sent them)."""
+    out = frame.rename(columns=lambda c: c if c in exact else neutralise(str(c)))
     for i, name in enumerate(frame.columns):
         column = frame.iloc[:, i]
         if name in exact or not (pd.api.types.is_object_dtype(column.dtype)

@@ -26,7 +26,14 @@ ROUTES = [
     ("POST", "/v1/jobs/{queued_job}/cancel", "write", 202),
     ("GET", "/v1/jobs/{job}/trials", "read", 200),
     ("GET", "/v1/jobs/{job}/leaderboard", "read", 200),
+    ("GET", "/v1/models", "read", 200),
     ("GET", "/v1/models/{model}", "read", 200),
+    ("PUT", "/v1/channels/{channel}", "write", 200),
+    ("GET", "/v1/channels/{channel}", "read", 200),
+    ("GET", "/v1/channels", "read", 200),
+    # The seeded channel has had one model only: allowed, then refused for that (409).
+    ("POST", "/v1/channels/{channel}/rollback", "write", 409),
+    ("POST", "/v1/channels/{channel}/predictions", "write", 200),
     ("GET", "/v1/models/{model}/file", "read", 200),
     ("GET", "/v1/models/{model}/bundle", "read", 200),
     ("GET", "/v1/jobs/{job}/events", "read", 200),
@@ -72,14 +79,20 @@ def _request(k: Keyed, method: str, path: str) -> dict:  # type: ignore[type-arg
         return {"content": b"x,y\n1,0\n2,1\n", "headers": {"Content-Type": "text/csv"}}
     if method == "POST" and path == "/v1/jobs":
         return {"json": {"dataset_id": s.dataset_id, "target": "defect"}}
+    if method == "PUT" and path.startswith("/v1/channels/"):
+        return {"json": {"model_id": s.model_id}}
     if path.endswith("/predictions"):
         return {"json": {"rows": [s.row]}}
     return {}
 
 
 def _fill(k: Keyed, path: str) -> str:
-    ids = {"ds": k.s.dataset_id, "job": k.s.job_id, "model": k.s.model_id}
+    ids = {"ds": k.s.dataset_id, "job": k.s.job_id, "model": k.s.model_id,
+           "channel": "scoped"}
     with k.admin() as client:  # fresh resources for the calls that use them up
+        if "{channel}" in path:
+            client.put("/v1/channels/scoped",
+                       json={"model_id": k.s.model_id}).raise_for_status()
         if "{spare_ds}" in path:
             made = client.post("/v1/datasets", content=b"x,y\n1,0\n2,1\n",
                                headers={"Content-Type": "text/csv"})
@@ -97,7 +110,8 @@ def test_the_table_covers_every_route(keyed: Keyed) -> None:
     documented = {(m.upper(), p) for p, item in spec["paths"].items() for m in item}
     listed = {(m, p.replace("{ds}", "{dataset_id}").replace("{spare_ds}", "{dataset_id}")
                .replace("{queued_job}", "{job_id}").replace("{job}", "{job_id}")
-               .replace("{model}", "{model_id}").replace("history.svg", "{name}.svg"))
+               .replace("{model}", "{model_id}").replace("{channel}", "{name}")
+               .replace("history.svg", "{name}.svg"))
               for m, p, _, _ in ROUTES}
     assert documented <= listed, documented - listed
 

@@ -1,13 +1,10 @@
-"""The fast CSV parse: pyarrow's multithreaded reader, for files pandas would read the same.
+"""The CSV parse: pyarrow's multithreaded reader, for every CSV upload.
 
-pyarrow refuses rows with the wrong number of fields by itself, so a plain file needs no
-separate row-length pass. Its type inference differs from pandas' C engine in a few
-corners, though: it reads ISO dates and times as dates, ``+1`` as a float, ``0x10`` as
-an integer, ``NAN`` as NaN, integers beyond 2**63 as floats, and it leaves mixed-case
-``TrUe`` and padded numbers as text. Uploads must get the same columns whichever parser
-ran, so :func:`read_plain_csv` answers ``None`` (use pandas) whenever one of those corners
-may be present, and any pyarrow error also sends the file to the checked pandas path,
-which names the line at fault.
+pyarrow is the one parser. Its type rules are ours, with one addition (numbers padded with
+spaces are numbers), and differ from pandas' ``read_csv`` in a few documented corners
+(DEVELOPERS.md, "Reading CSV files"): ``+1`` is a float, ``NAN`` in any case is missing,
+integers past 64 bits are floats, and mixed-case ``TrUe`` stays text. Dates, times and
+hex-looking codes stay text here; the profile decides whether a column holds datetimes.
 """
 
 from __future__ import annotations
@@ -17,58 +14,79 @@ from typing import Any
 
 import pandas as pd
 
-#: pandas' default missing-value spellings (``pandas.read_csv`` ``na_values``), so both
-#: parsers turn the same fields into missing values.
+#: Spellings read as missing values (the same set pandas uses by default, so files that
+#: pandas users prepared mean what they meant).
 NA_VALUES = sorted({"", "#N/A", "#N/A N/A", "#NA", "-1.#IND", "-1.#QNAN", "-NaN", "-nan",
                     "1.#IND", "1.#QNAN", "<NA>", "N/A", "NA", "NULL", "NaN", "None", "n/a",
                     "nan", "null"})
-_BOOL_WORDS = {"true", "false"}
-_SAMPLE = 1000  # text values looked at to rule out a column pandas would read as numbers
-_INT64_LIMIT = 2.0**63
-_HUGE_INTEGER = r"^\s*[+-]?[0-9]{19,}\s*$"
 
 
-def read_plain_csv(path: str | os.PathLike[str], header: list[str], *,
-                   plus_signs: bool) -> pd.DataFrame | None:
-    """Parse a quote-free CSV whose first line is ``header``; ``None`` means use pandas.
+# A decimal number with optional spaces around it (no hex, no inf or nan words).
+_DECIMAL = r"^\s*[-+]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][-+]?[0-9]+)?\s*$"
 
-    The frame has the dtypes pandas' C engine would give (int64, float64, bool, ``str``).
-    ``plus_signs`` says whether the file holds a "+" anywhere.
+
+class ArrowParseError(Exception):
+    """pyarrow refused the file; the caller finds and names the fault."""
+
+
+def read_csv(path: str | os.PathLike[str], header: list[str], *, skip_rows: int,
+             quoted: bool, hex_prefix: bool = False) -> pd.DataFrame:
+    """Parse a CSV file whose header (already checked) is ``header``.
+
+    ``skip_rows`` lines come before the data (the header line and any blank ones above
+    it); ``quoted`` allows line breaks inside quoted fields; ``hex_prefix`` says the file
+    holds "0x" somewhere (pyarrow reads ``0x10`` as 16; such columns stay text, since
+    codes like ``0x1F`` are rarely meant as numbers). The frame has numpy dtypes
+    (int64, float64, bool) or pandas' ``str`` for text.
     """
     import pyarrow as pa
 
     convert = {"strings_can_be_null": True, "null_values": NA_VALUES,
                "true_values": ["True", "TRUE", "true"],
                "false_values": ["False", "FALSE", "false"]}
-    table = _parse(path, convert)
-    if table is None:
-        return None
-    dated = [f.name for f in table.schema if _is_temporal(pa, f.type)]
-    if dated:  # pandas keeps dates as text: parse again with those columns as text
+    table = _parse(path, header, skip_rows, quoted, convert)
+    as_text = [f.name for f in table.schema if _is_temporal(pa, f.type)
+               or (hex_prefix and pa.types.is_integer(f.type))]
+    if as_text:  # dates, times (and maybe hex) stay text: parse again with them as text
+        integers = {f.name for f in table.schema if pa.types.is_integer(f.type)} & set(as_text)
         del table
-        table = _parse(path, {**convert, "column_types": {n: pa.string() for n in dated}})
-        if table is None:
-            return None
-    if table.column_names != header:
-        return None
-    columns = []
-    for field, column in zip(table.schema, table.columns, strict=True):
-        kind = field.type
-        if pa.types.is_null(kind):
-            column = column.cast(pa.float64())  # an all-missing column: float NaN in pandas
-        elif not _same_as_pandas(pa, kind, column, plus_signs):
-            return None
-        columns.append(column)
+        table = _parse(path, header, skip_rows, quoted,
+                       {**convert, "column_types": {n: pa.string() for n in as_text}})
+        table = _integers_back(pa, table, integers)
+    columns = [_column(pa, field.type, column)
+               for field, column in zip(table.schema, table.columns, strict=True)]
     table = pa.Table.from_arrays(columns, names=header)
-    del columns, column
+    del columns
     # One block per column and the Arrow buffers released as they are converted, so the
     # table is never held twice.
-    return table.to_pandas(split_blocks=True, self_destruct=True, use_threads=False,
-                           memory_pool=_pool())
+    frame = table.to_pandas(split_blocks=True, self_destruct=True, use_threads=False,
+                            memory_pool=_pool(), types_mapper=_text_as_str)
+    return frame
 
 
-def _parse(path: str | os.PathLike[str], convert: dict[str, Any]) -> Any:
-    """The file as an Arrow table, or ``None`` when pyarrow refuses it.
+def _integers_back(pa: Any, table: Any, integers: set[str]) -> Any:
+    """Integer columns read again as text (because of a "0x" in the file) go back to
+    integers unless one of their values is written in hex."""
+    import pyarrow.compute as pc
+
+    for i, name in enumerate(table.column_names):
+        if name in integers and not pc.any(
+                pc.match_substring_regex(table.column(i), r"^\s*[-+]?0[xX]")).as_py():
+            table = table.set_column(i, name, pc.cast(table.column(i), pa.int64()))
+    return table
+
+
+def _text_as_str(kind: Any) -> Any:
+    import pyarrow as pa
+
+    if pa.types.is_string(kind) or pa.types.is_large_string(kind):
+        return pd.StringDtype(na_value=float("nan"))  # pandas' default ``str`` dtype
+    return None
+
+
+def _parse(path: str | os.PathLike[str], header: list[str], skip_rows: int, quoted: bool,
+           convert: dict[str, Any]) -> Any:
+    """The file as an Arrow table; :class:`ArrowParseError` when pyarrow refuses it.
 
     ``read_csv`` parses blocks on every core and infers types from the whole file. Its
     streaming reader held half the peak memory but took about twice as long (one
@@ -78,10 +96,46 @@ def _parse(path: str | os.PathLike[str], convert: dict[str, Any]) -> Any:
     import pyarrow.csv as pacsv
 
     try:
-        return pacsv.read_csv(path, convert_options=pacsv.ConvertOptions(**convert),
-                              memory_pool=_pool())
-    except (pa.ArrowException, OSError):
-        return None  # a ragged row, a cell pyarrow cannot convert, ...: the checked path
+        return pacsv.read_csv(
+            path,
+            read_options=pacsv.ReadOptions(column_names=header, skip_rows=skip_rows),
+            parse_options=pacsv.ParseOptions(newlines_in_values=quoted),
+            convert_options=pacsv.ConvertOptions(**convert),
+            memory_pool=_pool())
+    except (pa.ArrowException, OSError) as exc:
+        raise ArrowParseError(str(exc)) from None
+
+
+def _column(pa: Any, kind: Any, column: Any) -> Any:
+    if pa.types.is_null(kind):
+        return column.cast(pa.float64())  # an all-missing column: float NaN
+    if pa.types.is_string(kind) or pa.types.is_large_string(kind):
+        return _padded_numbers(pa, column)
+    return column
+
+
+def _padded_numbers(pa: Any, column: Any) -> Any:
+    """A text column whose values are all numbers once spaces are trimmed, as numbers.
+
+    pyarrow reads ``" 1"`` as text; a file written with ``", "`` between fields is common
+    enough that such columns should be numbers.
+    """
+    import pyarrow.compute as pc
+
+    if column.null_count == len(column):
+        return column
+    values = column.drop_null()
+    if not pc.all(pc.match_substring_regex(values.slice(0, 1000), _DECIMAL)).as_py():
+        return column  # surely text: skip the whole-column check
+    if not pc.all(pc.match_substring_regex(values, _DECIMAL)).as_py():
+        return column
+    trimmed = pc.utf8_trim_whitespace(column)
+    for target in (pa.int64(), pa.float64()):
+        try:
+            return pc.cast(trimmed, target)
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+            continue
+    return column
 
 
 def _pool() -> Any:
@@ -101,52 +155,6 @@ def _pool() -> Any:
     return pool
 
 
-def _is_temporal(pa: object, kind: object) -> bool:
-    t = pa.types  # type: ignore[attr-defined]
+def _is_temporal(pa: Any, kind: Any) -> bool:
+    t = pa.types
     return bool(t.is_date(kind) or t.is_time(kind) or t.is_timestamp(kind))
-
-
-def _same_as_pandas(pa: object, kind: object, column: object, plus_signs: bool) -> bool:
-    """Whether pandas' C engine would have read ``column`` with the matching dtype."""
-    import pyarrow.compute as pc
-
-    t = pa.types  # type: ignore[attr-defined]
-    if t.is_int64(kind):
-        return True
-    if t.is_float64(kind):
-        if column.null_count == len(column):  # type: ignore[attr-defined]
-            return True
-        if pc.any(pc.is_nan(column)).as_py():
-            return False  # "NAN" or the like: text to pandas
-        huge = pc.and_(pc.greater_equal(pc.abs(column), _INT64_LIMIT), pc.is_finite(column))
-        if pc.any(huge).as_py():
-            return False  # integers past 64 bits: pandas reads uint64 or Python integers
-        if plus_signs and column.null_count == 0:  # type: ignore[attr-defined]
-            # "+1" is a float to pyarrow but an integer to pandas: whole numbers throughout
-            # may have been integers in the text.
-            return not pc.all(pc.equal(pc.floor(column), column)).as_py()
-        return True
-    if t.is_boolean(kind):
-        return column.null_count == 0  # type: ignore[attr-defined]  # else pandas: object
-    if t.is_string(kind) or t.is_large_string(kind):
-        # An integer past 64 bits changes how pandas reads the whole column (it then keeps
-        # "NA" and the like as text), so such columns are left to pandas.
-        distinct = pc.unique(column)
-        return _surely_text(column) and not pc.any(
-            pc.match_substring_regex(distinct, _HUGE_INTEGER)).as_py()
-    return False
-
-
-def _surely_text(column: object) -> bool:
-    """Whether some value rules out pandas reading the column as numbers or booleans."""
-    sample = column.slice(0, _SAMPLE).drop_null().to_pylist()  # type: ignore[attr-defined]
-    for value in sample:
-        word = value.strip()
-        if not word or word.lower() in _BOOL_WORDS:
-            continue
-        try:
-            float(word)
-        except ValueError:
-            return True
-    # Every sampled value could be a number or a boolean to pandas: let pandas decide.
-    return False

@@ -1,10 +1,10 @@
-"""Checks on CSV text that pandas would otherwise repair silently.
+"""Checks on CSV text that a parser would otherwise repair silently or report vaguely.
 
-pandas pads short rows with missing values, renames duplicate columns to ``a.1``, reads a
-semicolon-separated file as one column and accepts stray text after a closing quote. Each
+Parsers pad short rows with missing values, rename duplicate columns to ``a.1``, read a
+semicolon-separated file as one column and accept stray text after a closing quote. Each
 of those is a guess about what the sender meant, so they are refused here instead, with the
-line number, before pandas parses the file. One pass of the standard ``csv`` module (C
-code) costs far less than the pandas parse that follows.
+line number. Quote-free files are checked with numpy byte counts; files with quotes take
+one pass of the standard ``csv`` module (C code) before pyarrow parses them.
 """
 
 from __future__ import annotations
@@ -36,8 +36,7 @@ class ByteScan:
     """What one pass over the raw bytes found, besides the faults it refuses."""
 
     quoted: bool  # a double quote anywhere (else the numpy row check applies)
-    plus: bool  # a "+" anywhere (pyarrow reads "+1" as a float, pandas as an integer)
-    hex_prefix: bool  # "0x" or "0X" anywhere (pyarrow reads "0x10" as 16, pandas as text)
+    hex_prefix: bool  # "0x" or "0X" anywhere (pyarrow reads "0x10" as 16; see arrowcsv)
 
 
 def scan_bytes(path: str | os.PathLike[str]) -> ByteScan:
@@ -47,11 +46,12 @@ def scan_bytes(path: str | os.PathLike[str]) -> ByteScan:
     ``isascii``); only a chunk with non-ASCII bytes is decoded, and lines are counted
     only to name the line of a fault, so a plain ASCII file costs a few fast passes.
     """
-    quoted = plus = hex_prefix = False
+    quoted = hex_prefix = False
     buffer = bytearray(16 * _CHUNK)
     view = memoryview(buffer)
     done = 0  # bytes of the file before ``pending``
     pending = b""
+    last = b""  # the previous chunk's last byte, so a "0x" across a border is seen
     with open(path, "rb") as handle:
         while size := handle.readinto(buffer):
             chunk = view[:size] if size < len(buffer) else buffer
@@ -59,10 +59,11 @@ def scan_bytes(path: str | os.PathLike[str]) -> ByteScan:
                 raise _fail("file", "the file is UTF-16 text; re-save it as UTF-8")
             block = chunk if isinstance(chunk, bytearray) else bytearray(chunk)
             quoted = quoted or b'"' in block
-            plus = plus or b"+" in block
             # memchr for the letter first: a two-byte search is slow in digit-heavy text.
             hex_prefix = hex_prefix or (b"x" in block and b"0x" in block) or (
-                b"X" in block and b"0X" in block)
+                b"X" in block and b"0X" in block) or (
+                last == b"0" and block[:1] in (b"x", b"X"))
+            last = bytes(block[-1:])
             nul = block.find(b"\x00")
             if nul >= 0:
                 where = f"line {_line_at(path, done + len(pending) + nul)}"
@@ -79,9 +80,7 @@ def scan_bytes(path: str | os.PathLike[str]) -> ByteScan:
             done += cut
             pending = data[cut:]
         _decode(pending, path, done)
-    # A "0x" split by a chunk border is missed; the pandas path would still read the file,
-    # only the fast parse could disagree with it, and a hex literal in a CSV is rare.
-    return ByteScan(quoted=quoted, plus=plus, hex_prefix=hex_prefix)
+    return ByteScan(quoted=quoted, hex_prefix=hex_prefix)
 
 
 def _line_at(path: str | os.PathLike[str], offset: int) -> int:
@@ -244,7 +243,7 @@ def check_csv(path: str | os.PathLike[str], *, max_columns: int = MAX_COLUMNS,
             for row in reader:
                 line, start = start, reader.line_num + 1
                 if not row:
-                    continue  # a blank line; pandas skips them too
+                    continue  # a blank line; the parser skips them too
                 if header is None:
                     if all(not name.strip() for name in row):
                         continue  # a line of empty fields is no header; look further

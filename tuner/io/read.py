@@ -4,7 +4,6 @@ the parse honest; profiling the columns is :mod:`tuner.profile`."""
 from __future__ import annotations
 
 import os
-import re
 
 import pandas as pd
 from pandas.api import types as ptypes
@@ -13,10 +12,8 @@ from tuner.columns import (
     as_level_strings,
 )
 from tuner.errors import DatasetError
-from tuner.io.arrowcsv import read_plain_csv
+from tuner.io.arrowcsv import ArrowParseError, read_csv
 from tuner.io.csvcheck import MAX_COLUMNS, MAX_NAME_LENGTH, check_csv, plain_header, scan_bytes
-
-_LINE_RE = re.compile(r"line (\d+)")
 
 
 def _fail(field: str, message: str) -> DatasetError:
@@ -24,26 +21,31 @@ def _fail(field: str, message: str) -> DatasetError:
 
 
 def _read_csv(path: str | os.PathLike[str], max_columns: int) -> pd.DataFrame:
-    scan = scan_bytes(path)
-    if not scan.quoted and not scan.hex_prefix:
-        # A plain file: pyarrow's parser refuses ragged rows itself and uses both cores;
-        # whatever it cannot read exactly as pandas would goes down the checked path.
-        header = plain_header(path, max_columns)
-        if header is not None and len(header) > 1:  # one column: blank-line rules differ
-            frame = read_plain_csv(path, header, plus_signs=scan.plus)
-            if frame is not None:
-                return frame
-    check_csv(path, max_columns=max_columns, scan=scan)  # what pandas would silently repair
+    scan = scan_bytes(path)  # binary data, UTF-16, text that is not UTF-8: refused here
+    header = None if scan.quoted else plain_header(path, max_columns)
+    if header is None:
+        # Quotes, or blank lines above the header: the csv module checks quoting and row
+        # lengths first, since pyarrow accepts stray text after a closing quote and reports
+        # faults without a line number.
+        header = check_csv(path, max_columns=max_columns, scan=scan)
     try:
-        # low_memory=False: chunked type inference would emit DtypeWarning on mixed columns.
-        return pd.read_csv(path, engine="c", encoding="utf-8-sig", low_memory=False)
-    except pd.errors.EmptyDataError:
-        raise _fail("file", "the file is empty") from None
-    except pd.errors.ParserError as exc:
-        found = _LINE_RE.search(str(exc))
-        where = f"line {found.group(1)}" if found else "file"
-        detail = str(exc).replace("Error tokenizing data. C error: ", "").strip()
-        raise _fail(where, f"cannot parse the CSV file: {detail}") from None
+        return read_csv(path, header, skip_rows=_header_line(path, scan.quoted),
+                        quoted=scan.quoted, hex_prefix=scan.hex_prefix)
+    except ArrowParseError as exc:
+        # A ragged row or the like: find it again with the line number to report.
+        check_csv(path, max_columns=max_columns, scan=scan)
+        reason = str(exc).replace(str(path), "<upload>")
+        raise _fail("file", f"cannot parse the CSV file: {reason}") from None
+
+
+def _header_line(path: str | os.PathLike[str], quoted: bool) -> int:
+    """Lines up to and including the header: blank lines and lines of empty fields above
+    it are skipped, as the header check does."""
+    with open(path, encoding="utf-8-sig", newline="") as handle:
+        for number, line in enumerate(handle, start=1):
+            if line.strip() and any(f.strip() for f in line.rstrip("\r\n").split(",")):
+                return number
+    return 0
 
 
 def _read_parquet(path: str | os.PathLike[str], max_columns: int) -> pd.DataFrame:
