@@ -17,6 +17,7 @@ from service.api.routes import (
     bundle,
     channels,
     datasets,
+    docs,
     events,
     health,
     jobs,
@@ -49,6 +50,8 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
         version="0.1.0",
         summary="Tunes gradient-boosted trees on uploaded tables and serves the winners.",
         lifespan=lifespan,
+        docs_url=None,  # served by routes/docs.py, with its scripts from this server
+        redoc_url=None,
     )
     app.state.settings = settings
     app.state.store = ArtifactStore(settings.artifacts_url, settings.tmp_dir)
@@ -66,6 +69,7 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
         app.add_middleware(CORSMiddleware, allow_origins=origins, allow_methods=["*"],
                            allow_headers=["Authorization", "Content-Type", "Accept"])
     app.include_router(health.router)
+    app.include_router(docs.router)
     for router in (datasets.router, jobs.router, models.router, channels.router):
         app.include_router(router, dependencies=[AuthDep])
     # Practitioner-facing additions: live events, bundles, /metrics, documented examples.
