@@ -161,7 +161,7 @@ def check_parquet_footer(path: Path, limit: int) -> None:
     try:
         meta = pq.ParquetFile(path).metadata
     except (pa.ArrowException, OSError) as exc:
-        raise Unprocessable(f"the Parquet file cannot be read: {exc}",
+        raise Unprocessable(f"cannot read the Parquet file: {exc}",
                             errors=[{"field": "file", "message": "unreadable Parquet footer"}],
                             ) from None
     uncompressed = sum(meta.row_group(i).total_byte_size for i in range(meta.num_row_groups))

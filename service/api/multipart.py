@@ -67,8 +67,8 @@ class _Reader:
         self.name = options.get(b"name", b"").decode("utf-8", "replace")
         if self.name == "file":
             if self.form.has_file:
-                raise Unprocessable("send one file per upload",
-                                    errors=[{"field": "file", "message": "more than one"}])
+                raise BadRequest("a multipart upload carries one file; this one has more "
+                                 "files than that")
             self.in_file = self.form.has_file = True
             filename = options.get(b"filename")
             self.form.filename = filename.decode("utf-8", "replace") if filename else None
@@ -112,7 +112,7 @@ async def read_form(request: Any, dest: Path, *, limit: int) -> Form:
             async for chunk in request.stream():
                 parser.write(chunk)
             parser.finalize()
-        except (PayloadTooLarge, Unprocessable):
+        except (PayloadTooLarge, Unprocessable, BadRequest):
             raise
         except Exception as exc:
             if type(exc).__module__.startswith("python_multipart"):
