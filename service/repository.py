@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import secrets
 from collections.abc import Sequence
-from datetime import datetime
+from datetime import datetime, timedelta
 from typing import Any
 
 import sqlalchemy as sa
@@ -15,10 +15,13 @@ from service.tables import (
     ApiKey,
     Channel,
     ChannelEvent,
+    Comparison,
     Dataset,
+    DriftCounts,
     Job,
     JobStatus,
     Model,
+    Scoring,
     Trial,
     utcnow,
 )
@@ -281,3 +284,142 @@ def channels_for_model(session: Session, model_id: str) -> list[str]:
 
 def key_id_for_hash(session: Session, key_hash: str) -> str | None:
     return session.scalar(sa.select(ApiKey.id).where(ApiKey.key_hash == key_hash))
+
+
+# -- scorings ---------------------------------------------------------------
+
+
+def add_scoring(session: Session, **fields: Any) -> Scoring:
+    scoring = Scoring(**fields)
+    session.add(scoring)
+    session.flush()
+    return scoring
+
+
+def get_scoring(session: Session, scoring_id: str) -> Scoring:
+    scoring = session.get(Scoring, scoring_id)
+    if scoring is None:
+        raise NotFound(f"no scoring run with id {scoring_id!r}")
+    return scoring
+
+
+def cancel_scoring(session: Session, scoring_id: str) -> Scoring:
+    """Cancel a queued run at once; ask the worker of a running one to stop."""
+    scoring = get_scoring(session, scoring_id)
+    if scoring.status == JobStatus.QUEUED:
+        scoring.status = JobStatus.CANCELLED.value
+        scoring.finished_at = utcnow()
+        scoring.cancel_requested = True
+    elif scoring.status == JobStatus.RUNNING:
+        scoring.cancel_requested = True
+    else:
+        raise Conflict(f"scoring run {scoring_id!r} is already {scoring.status}")
+    session.flush()
+    return scoring
+
+
+def claim_scoring(session: Session, *, worker_id: str, stale_after_seconds: float) -> str | None:
+    """Take the oldest queued scoring run, or one whose worker stopped heart-beating."""
+    now = utcnow()
+    stale = now - timedelta(seconds=stale_after_seconds)
+    claimable = sa.or_(
+        sa.and_(Scoring.status == JobStatus.QUEUED.value, Scoring.cancel_requested.is_(False)),
+        sa.and_(Scoring.status == JobStatus.RUNNING.value, Scoring.heartbeat_at < stale))
+    candidate = (sa.select(Scoring.id).where(claimable)
+                 .order_by(Scoring.created_at, Scoring.id).limit(1)
+                 .with_for_update(skip_locked=True).scalar_subquery())
+    stmt = (sa.update(Scoring).where(Scoring.id == candidate, claimable)
+            .values(status=JobStatus.RUNNING.value, worker_id=worker_id, heartbeat_at=now,
+                    started_at=sa.func.coalesce(Scoring.started_at, now), rows_done=0,
+                    attempts=Scoring.attempts + 1)
+            .returning(Scoring.id).execution_options(synchronize_session=False))
+    return session.execute(stmt).scalar_one_or_none()
+
+
+def scoring_progress(session: Session, *, scoring_id: str, worker_id: str,
+                     rows_done: int) -> bool:
+    """Record progress and beat; True when the run should stop (cancelled, or taken over
+    by another worker)."""
+    session.execute(sa.update(Scoring).where(Scoring.id == scoring_id,
+                                             Scoring.worker_id == worker_id)
+                    .values(rows_done=rows_done, heartbeat_at=utcnow()))
+    row = session.execute(sa.select(Scoring.cancel_requested, Scoring.worker_id)
+                          .where(Scoring.id == scoring_id)).one()
+    return bool(row.cancel_requested) or row.worker_id != worker_id
+
+
+def finish_scoring(session: Session, *, scoring_id: str, worker_id: str, status: str,
+                   **fields: Any) -> None:
+    session.execute(sa.update(Scoring).where(Scoring.id == scoring_id,
+                                             Scoring.worker_id == worker_id)
+                    .values(status=status, finished_at=utcnow(), **fields))
+
+
+# -- comparisons ------------------------------------------------------------
+
+
+def add_comparison(session: Session, **fields: Any) -> Comparison:
+    comparison = Comparison(**fields)
+    session.add(comparison)
+    session.flush()
+    return comparison
+
+
+def get_comparison(session: Session, comparison_id: str) -> Comparison:
+    comparison = session.get(Comparison, comparison_id)
+    if comparison is None:
+        raise NotFound(f"no comparison with id {comparison_id!r}")
+    return comparison
+
+
+def claim_comparison(session: Session, *, worker_id: str,
+                     stale_after_seconds: float) -> str | None:
+    """Take the oldest queued comparison, or one whose worker went quiet."""
+    now = utcnow()
+    stale = now - timedelta(seconds=stale_after_seconds)
+    claimable = sa.or_(
+        Comparison.status == JobStatus.QUEUED.value,
+        sa.and_(Comparison.status == JobStatus.RUNNING.value, Comparison.heartbeat_at < stale))
+    candidate = (sa.select(Comparison.id).where(claimable)
+                 .order_by(Comparison.created_at, Comparison.id).limit(1)
+                 .with_for_update(skip_locked=True).scalar_subquery())
+    stmt = (sa.update(Comparison).where(Comparison.id == candidate, claimable)
+            .values(status=JobStatus.RUNNING.value, worker_id=worker_id, heartbeat_at=now,
+                    started_at=sa.func.coalesce(Comparison.started_at, now),
+                    attempts=Comparison.attempts + 1)
+            .returning(Comparison.id).execution_options(synchronize_session=False))
+    return session.execute(stmt).scalar_one_or_none()
+
+
+def finish_comparison(session: Session, *, comparison_id: str, worker_id: str, status: str,
+                      **fields: Any) -> None:
+    session.execute(sa.update(Comparison).where(Comparison.id == comparison_id,
+                                                Comparison.worker_id == worker_id)
+                    .values(status=status, finished_at=utcnow(), **fields))
+
+
+# -- drift ------------------------------------------------------------------
+
+
+def add_drift_counts(session: Session, *, model_id: str, day: str, rows: int,
+                     counts: list[list[int]]) -> None:
+    """Add one flush's counts to the (model, day) row, creating it on first use."""
+    row = session.scalar(sa.select(DriftCounts).where(DriftCounts.model_id == model_id,
+                                                      DriftCounts.day == day)
+                         .with_for_update())
+    if row is None:
+        session.add(DriftCounts(model_id=model_id, day=day, rows=rows, counts=counts))
+    else:
+        row.counts = [[a + b for a, b in zip(old, new, strict=True)]
+                      for old, new in zip(row.counts, counts, strict=True)]
+        row.rows = row.rows + rows
+        row.updated_at = utcnow()
+    session.flush()
+
+
+def drift_counts(session: Session, *, model_id: str,
+                 since: str | None = None) -> Sequence[DriftCounts]:
+    query = sa.select(DriftCounts).where(DriftCounts.model_id == model_id)
+    if since is not None:
+        query = query.where(DriftCounts.day >= since)
+    return session.scalars(query.order_by(DriftCounts.day)).all()

@@ -28,6 +28,10 @@ class Settings(BaseSettings):
     max_streams: int = Field(default=200, ge=1)
     # Rows one prediction request may carry; bigger batches belong in several requests.
     max_prediction_rows: int = Field(default=100_000, ge=1)
+    # Seconds between flushes of the drift summaries an API process keeps in memory.
+    drift_flush_seconds: float = Field(default=5.0, gt=0, le=3600)
+    # Rows a batch scoring run reads, predicts and writes at a time (its memory bound).
+    scoring_chunk_rows: int = Field(default=50_000, ge=1, le=10_000_000)
     # Seconds without a heartbeat after which a running job is handed back to the queue.
     stale_after_seconds: float = Field(default=60.0, gt=0)
     heartbeat_seconds: float = Field(default=5.0, gt=0)

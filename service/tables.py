@@ -67,6 +67,8 @@ class Job(Base):
     cancel_requested: Mapped[bool] = mapped_column(default=False)
     error: Mapped[str | None] = mapped_column(sa.Text)
     model_id: Mapped[str | None] = mapped_column(sa.String(40))
+    # What the job's ``promote`` request did (service/comparing.py); None without one.
+    promotion: Mapped[dict[str, Any] | None] = mapped_column(sa.JSON)
     # The lead worker: it created or resumed the study and finishes the job (refit, status).
     worker_id: Mapped[str | None] = mapped_column(sa.String(120))
     # Worker processes allowed on this job at once (lead included); see queue.join_next.
@@ -140,6 +142,9 @@ class Model(Base):
     target: Mapped[str] = mapped_column(sa.String(200))
     feature_importance: Mapped[list[Any]]
     details: Mapped[dict[str, Any]] = mapped_column(default=dict)
+    # Binary models: {"threshold", "method", ...} (tuner/decision.py); None before costs
+    # were supported, or for other tasks.
+    decision: Mapped[dict[str, Any] | None] = mapped_column(sa.JSON)
     sha256: Mapped[str] = mapped_column(sa.String(64))
     file_key: Mapped[str] = mapped_column(sa.String(200))
     size_bytes: Mapped[int] = mapped_column(sa.BigInteger)
@@ -175,6 +180,67 @@ class ChannelEvent(Base):
     key_id: Mapped[str | None] = mapped_column(sa.String(40))
     job_id: Mapped[str | None] = mapped_column(sa.String(40))
     at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+
+
+class Scoring(Base):
+    """A batch scoring run: one model over one stored dataset, run by a worker in chunks."""
+
+    __tablename__ = "gk_scorings"
+    __table_args__ = (sa.Index("ix_gk_scorings_claim", "status", "created_at"),)
+
+    id: Mapped[str] = mapped_column(sa.String(40), primary_key=True)
+    model_id: Mapped[str] = mapped_column(sa.String(40), index=True)
+    # The channel it was submitted through; its model was fixed at submission.
+    channel: Mapped[str | None] = mapped_column(sa.String(100))
+    dataset_id: Mapped[str] = mapped_column(sa.String(40))
+    keep: Mapped[list[Any]] = mapped_column(default=list)
+    unseen: Mapped[str] = mapped_column(sa.String(16), default="error")
+    status: Mapped[str] = mapped_column(sa.String(16), default=JobStatus.QUEUED.value)
+    rows_total: Mapped[int] = mapped_column(sa.BigInteger, default=0)
+    rows_done: Mapped[int] = mapped_column(sa.BigInteger, default=0)
+    cancel_requested: Mapped[bool] = mapped_column(default=False)
+    error: Mapped[str | None] = mapped_column(sa.Text)
+    result_key: Mapped[str | None] = mapped_column(sa.String(200))
+    result_sha256: Mapped[str | None] = mapped_column(sa.String(64))
+    worker_id: Mapped[str | None] = mapped_column(sa.String(120))
+    attempts: Mapped[int] = mapped_column(default=0)
+    created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+    started_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
+    heartbeat_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
+    finished_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
+
+
+class Comparison(Base):
+    """Two models scored on one dataset's rows by a worker, with their paired difference."""
+
+    __tablename__ = "gk_comparisons"
+    __table_args__ = (sa.Index("ix_gk_comparisons_claim", "status", "created_at"),)
+
+    id: Mapped[str] = mapped_column(sa.String(40), primary_key=True)
+    model_ids: Mapped[list[Any]]
+    dataset_id: Mapped[str] = mapped_column(sa.String(40))
+    status: Mapped[str] = mapped_column(sa.String(16), default=JobStatus.QUEUED.value)
+    result: Mapped[dict[str, Any] | None] = mapped_column(sa.JSON)
+    error: Mapped[str | None] = mapped_column(sa.Text)
+    worker_id: Mapped[str | None] = mapped_column(sa.String(120))
+    attempts: Mapped[int] = mapped_column(default=0)
+    created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
+    started_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
+    heartbeat_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
+    finished_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
+
+
+class DriftCounts(Base):
+    """Per model and day, the scored rows' counts in the training bins of each feature
+    (tuner/drift.py), added to by every API process's periodic flush."""
+
+    __tablename__ = "gk_drift_counts"
+
+    model_id: Mapped[str] = mapped_column(sa.String(40), primary_key=True)
+    day: Mapped[str] = mapped_column(sa.String(10), primary_key=True)  # YYYY-MM-DD, UTC
+    rows: Mapped[int] = mapped_column(sa.BigInteger, default=0)
+    counts: Mapped[list[Any]]  # per feature, per bin (missing last)
+    updated_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
 
 
 class ApiKey(Base):

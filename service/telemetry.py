@@ -24,7 +24,7 @@ from prometheus_client.core import (
 )
 
 from service.db import session_scope
-from service.tables import Job, JobStatus, Trial
+from service.tables import Channel, DriftCounts, Job, JobStatus, Model, Trial
 
 log = logging.getLogger("grovekeeper.metrics")
 
@@ -82,7 +82,31 @@ class DatabaseCollector:
         hist = HistogramMetricFamily("grovekeeper_trial_duration_seconds",
                                      "Wall time of finished trials (all folds)")
         hist.add_metric([], buckets, sum_value=float(total or 0.0))
-        return [jobs, queue, trials, hist]
+        return [jobs, queue, trials, hist, self._drift()]
+
+    def _drift(self) -> Metric:
+        """PSI per feature of the models behind a channel only, so the number of series
+        stays bounded by the channels, not by every model ever trained."""
+        from tuner.drift import psi
+
+        gauge = GaugeMetricFamily(
+            "grovekeeper_feature_psi",
+            "Population stability index of the rows scored against the training rows, per "
+            "feature of each channel's current model", labels=["channel", "model_id", "feature"])
+        with session_scope(self.db_url) as session:
+            pairs = session.execute(sa.select(Channel.name, Channel.model_id)).all()
+            for channel, model_id in pairs:
+                details = session.scalar(sa.select(Model.details).where(Model.id == model_id))
+                reference = (details or {}).get("drift_reference")
+                days = session.scalars(sa.select(DriftCounts.counts)
+                                       .where(DriftCounts.model_id == model_id)).all()
+                if not reference or not days:
+                    continue
+                for j, entry in enumerate(reference["features"]):
+                    actual = [sum(d[j][b] for d in days) for b in range(len(entry["counts"]))]
+                    gauge.add_metric([channel, model_id, entry["name"]],
+                                     psi(entry["counts"], actual))
+        return gauge
 
 
 def _le(bound: float) -> str:

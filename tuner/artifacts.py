@@ -13,7 +13,7 @@ import numpy as np
 import optuna
 import pandas as pd
 
-from tuner._lgb import predict
+from tuner._lgb import frame_matrix, predict
 from tuner._rows import RowEncoder
 from tuner.errors import ArtifactError
 from tuner.evaluation.explain import contribution_scale, contributions
@@ -96,12 +96,20 @@ class Predictor:
     """Predictions in original labels, from raw rows or tables checked against the schema."""
 
     def __init__(self, booster: lgb.Booster, schema: FeatureSchema, task: str,
-                 classes: list[Any] | None) -> None:
-        """Bind a booster to the schema, task and classes it was trained with."""
+                 classes: list[Any] | None, threshold: float = 0.5) -> None:
+        """Bind a booster to the schema, task and classes it was trained with.
+
+        ``threshold`` (binary): class 1 is predicted when its probability exceeds it (the
+        model's decision threshold, tuner/decision.py).
+        """
         self.booster = booster
         self.schema = schema
         self.task = task
         self.classes = classes
+        self.threshold = threshold
+        # Called with each batch of rows in model input form (drift summaries); never
+        # allowed to fail a prediction.
+        self.observer: Any = None
         self._rows = RowEncoder(schema, booster)
 
     @classmethod
@@ -110,7 +118,23 @@ class Predictor:
         return cls(booster, FeatureSchema.from_dict(metadata["schema"]), metadata["task"],
                    metadata["classes"])
 
-    def predict_frame(self, frame: pd.DataFrame) -> dict[str, Any]:
+    def _observe(self, matrix: Any) -> None:
+        if self.observer is None:
+            return
+        try:
+            if not isinstance(matrix, np.ndarray):
+                matrix = frame_matrix(self.booster, matrix)
+            if isinstance(matrix, np.ndarray):
+                self.observer(matrix)
+        except Exception:  # noqa: BLE001, S110 - a summary is never worth a failed answer
+            pass
+
+    def _binary_labels(self, p1: np.ndarray, threshold: float | None) -> np.ndarray:
+        cut = self.threshold if threshold is None else threshold
+        return (p1 > cut).astype("int64")
+
+    def predict_frame(self, frame: pd.DataFrame,
+                      threshold: float | None = None) -> dict[str, Any]:
         """Predict a frame already in training form (from the schema's ``frame_from_*``).
 
         Returns:
@@ -118,9 +142,10 @@ class Predictor:
             probability exceeds 0.5) or float values, plus ``"probabilities"`` for
             classification: one list per row, aligned with ``classes``.
         """
-        return self._answer(predict(self.booster, self.task, frame))
+        return self._answer(predict(self.booster, self.task, frame), threshold)
 
-    def predict_columns(self, frame: pd.DataFrame) -> pd.DataFrame:
+    def predict_columns(self, frame: pd.DataFrame,
+                        threshold: float | None = None) -> pd.DataFrame:
         """A table answer for a frame in training form: ``prediction``, then one
         ``probability_<class>`` column per class for classification.
 
@@ -128,24 +153,27 @@ class Predictor:
         which cost more than LightGBM's own predict on large batches.
         """
         pred = predict(self.booster, self.task, frame)
+        self._observe(frame)
         if self.task == "regression":
             return pd.DataFrame({"prediction": pred})
         probs = np.column_stack([1.0 - pred, pred]) if pred.ndim == 1 else pred
         classes = self.classes or list(range(probs.shape[1]))
-        labels = np.asarray(classes, dtype=object)[np.argmax(probs, axis=1)]
+        codes = (self._binary_labels(probs[:, 1], threshold) if pred.ndim == 1
+                 else np.argmax(probs, axis=1))
+        labels = np.asarray(classes, dtype=object)[codes]
         out = pd.DataFrame({"prediction": labels})
         for k, label in enumerate(classes):
             out[f"probability_{label}"] = probs[:, k]
         return out
 
-    def _answer(self, pred: np.ndarray) -> dict[str, Any]:
+    def _answer(self, pred: np.ndarray, threshold: float | None = None) -> dict[str, Any]:
         if self.task == "multiclass" and pred.ndim == 1:
             pred = pred.reshape(-1, len(self.classes or ()) or 1)
         if self.task == "regression":
             return {"predictions": [float(v) for v in pred]}
         probs = np.column_stack([1.0 - pred, pred]) if pred.ndim == 1 else pred
-        # argmax keeps class 0 on an exact 0.5 tie, the "exceeds 0.5" rule for binary.
-        labels = np.argmax(probs, axis=1)
+        labels = (self._binary_labels(pred, threshold) if pred.ndim == 1
+                  else np.argmax(probs, axis=1))
         classes = self.classes or list(range(probs.shape[1]))
         return {
             "predictions": [classes[int(k)] for k in labels],
@@ -166,7 +194,7 @@ class Predictor:
                 "contribution_scale": contribution_scale(self.booster, self.task)}
 
     def predict_rows(self, rows: list[dict[str, Any]], unseen: str = "error",
-                     explain: bool = False) -> dict[str, Any]:
+                     explain: bool = False, threshold: float | None = None) -> dict[str, Any]:
         """Validate JSON-like rows and predict them (``explain``: add contributions).
 
         Raises:
@@ -176,9 +204,11 @@ class Predictor:
         if fast is not None:
             matrix, ignored = fast
             pred = np.asarray(self.booster.predict(matrix), dtype="float64")
-            return {**self._answer(pred), "ignored_columns": ignored}
+            self._observe(matrix)
+            return {**self._answer(pred, threshold), "ignored_columns": ignored}
         frame, ignored = self.schema.frame_from_rows(rows, unseen=unseen)
-        out = {**self.predict_frame(frame), "ignored_columns": ignored}
+        self._observe(frame)
+        out = {**self.predict_frame(frame, threshold), "ignored_columns": ignored}
         return {**out, **self.explain_frame(frame)} if explain else out
 
     def predict_table(self, df: pd.DataFrame, unseen: str = "error") -> dict[str, Any]:

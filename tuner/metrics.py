@@ -83,6 +83,32 @@ def roc_auc(y_true: np.ndarray, pred: np.ndarray, weight: np.ndarray | None) -> 
                           for k in range(pred.shape[1])]))
 
 
+def _binary_average_precision(positive: np.ndarray, score: np.ndarray, w: np.ndarray) -> float:
+    # Step-wise area under the precision-recall curve: sum over distinct thresholds of
+    # (recall gain) x precision, tied scores taken together, no interpolation.
+    order = np.argsort(score, kind="mergesort")[::-1]
+    s, pos, ww = score[order], positive[order].astype("float64"), w[order]
+    last = np.r_[np.flatnonzero(np.diff(s)), len(s) - 1]
+    tps = np.cumsum(pos * ww)[last]
+    fps = np.cumsum((1.0 - pos) * ww)[last]
+    if tps[-1] <= 0:
+        raise MetricUndefinedError("average_precision needs positive rows",
+                                   [{"field": "metric", "message": "no positive rows"}])
+    precision = tps / (tps + fps)
+    recall = tps / tps[-1]
+    return float(np.sum(np.diff(np.r_[0.0, recall]) * precision))
+
+
+def average_precision(y_true: np.ndarray, pred: np.ndarray, weight: np.ndarray | None) -> float:
+    """Average precision (area under the precision-recall curve, step-wise); for rare
+    classes. Multiclass is the unweighted mean over classes, one-vs-rest (macro)."""
+    w = _weights(len(y_true), weight)
+    if pred.ndim == 1:
+        return _binary_average_precision(y_true == 1, pred, w)
+    return float(np.mean([_binary_average_precision(y_true == k, pred[:, k], w)
+                          for k in range(pred.shape[1])]))
+
+
 def log_loss(y_true: np.ndarray, pred: np.ndarray, weight: np.ndarray | None) -> float:
     """Mean negative log-likelihood, probabilities clipped to ``[eps, 1 - eps]``."""
     p = np.clip(pred, _EPS, 1 - _EPS)
@@ -153,6 +179,9 @@ METRICS: dict[str, Metric] = {
         Metric("roc_auc", "maximize", CLASSIFICATION, True,
                {"binary": "auc", "multiclass": "multi_logloss"}, roc_auc),
         Metric("log_loss", "minimize", CLASSIFICATION, True, _LOGLOSS, log_loss),
+        Metric("average_precision", "maximize", CLASSIFICATION, True,
+               {"binary": "average_precision", "multiclass": "multi_logloss"},
+               average_precision),
         Metric("accuracy", "maximize", CLASSIFICATION, False,
                {"binary": "binary_error", "multiclass": "multi_error"}, accuracy),
         Metric("f1_macro", "maximize", CLASSIFICATION, False, _LOGLOSS, f1_macro),

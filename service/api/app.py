@@ -10,12 +10,14 @@ from fastapi.middleware.cors import CORSMiddleware
 
 from service.api import openapi_examples, problems
 from service.api.deps import AuthDep
+from service.api.drift import DriftRecorder
 from service.api.guard import RequestGuard
 from service.api.jobwatch import WatchHub
 from service.api.predictors import PredictorCache
 from service.api.routes import (
     bundle,
     channels,
+    comparisons,
     datasets,
     docs,
     events,
@@ -23,6 +25,7 @@ from service.api.routes import (
     jobs,
     metrics,
     models,
+    scorings,
 )
 from service.api.routes import report as report_routes
 from service.auth import KeyChecker
@@ -44,6 +47,7 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
             settings.ensure_dirs()
             init_db(settings.db_url)
         yield
+        app.state.drift.close()  # what this process counted since the last flush
 
     app = FastAPI(
         title="Grovekeeper",
@@ -55,7 +59,8 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
     )
     app.state.settings = settings
     app.state.store = ArtifactStore(settings.artifacts_url, settings.tmp_dir)
-    app.state.predictors = PredictorCache(app.state.store)
+    app.state.drift = DriftRecorder(settings.db_url, settings.drift_flush_seconds)
+    app.state.predictors = PredictorCache(app.state.store, recorder=app.state.drift)
     app.state.keys = KeyChecker(settings.db_url, open_without_keys=loopback_only)
     app.state.watch_hub = WatchHub(settings.db_url, per_key=settings.max_streams_per_key,
                                    total=settings.max_streams)
@@ -70,7 +75,8 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
                            allow_headers=["Authorization", "Content-Type", "Accept"])
     app.include_router(health.router)
     app.include_router(docs.router)
-    for router in (datasets.router, jobs.router, models.router, channels.router):
+    for router in (datasets.router, jobs.router, models.router, channels.router,
+                   scorings.router, comparisons.router):
         app.include_router(router, dependencies=[AuthDep])
     # Practitioner-facing additions: live events, bundles, /metrics, documented examples.
     for router in (events.router, bundle.router):

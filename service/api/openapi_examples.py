@@ -57,7 +57,14 @@ MODEL = {
          "levels": ["earthenware", "porcelain", "raku", "stoneware"]}]},
     "classes": [0, 1],
     "feature_importance": [{"feature": "peak_temp_c", "gain": 812.4, "split": 140}],
-    "details": {}, "sha256": "c0ffee…", "size_bytes": 48211,
+    "details": {},
+    "decision": {"threshold": 0.23, "method": "out_of_fold", "false_positive_cost": 1.0,
+                 "false_negative_cost": 5.0,
+                 "note": "probabilities not calibrated: the cut with the least cost on 768 "
+                         "out-of-fold search rows (never the hold-out)",
+                 "holdout": {"rows": 240, "expected_cost_per_row": 0.41,
+                             "expected_cost_per_row_at_0_5": 0.62}},
+    "sha256": "c0ffee…", "size_bytes": 48211,
     "created_at": "2026-03-14T09:33:00Z",
 }
 MODEL_SUMMARY = {k: MODEL[k] for k in ("id", "job_id", "task", "metric", "target",
@@ -72,6 +79,23 @@ PREDICTIONS = {"model_id": MODEL["id"], "predictions": [0], "classes": [0, 1],
 
 JSON = "application/json"
 CSV = "text/csv"
+SCORING = {"id": "scr_2b2b2b2b2b2b2b2b", "model_id": MODEL["id"], "channel": None,
+           "dataset_id": DATASET["id"], "keep": ["firing_id"], "unseen": "error",
+           "status": "queued",
+           "progress": {"rows_done": 0, "rows_total": 1000000, "fraction": 0.0},
+           "error": None, "result_url": None, "cancel_requested": False, "attempts": 0,
+           "created_at": "2026-04-02T08:10:00Z", "started_at": None, "finished_at": None}
+COMPARISON = {
+    "id": "cmp_3c3c3c3c3c3c3c3c", "models": [MODEL["id"], "mdl_0f1e2d3c4b5a6978"],
+    "dataset_id": DATASET["id"], "status": "succeeded", "error": None,
+    "result": {"models": [MODEL["id"], "mdl_0f1e2d3c4b5a6978"], "rows": 1200,
+               "metric": "roc_auc", "direction": "maximize",
+               "scores": {MODEL["id"]: 0.861, "mdl_0f1e2d3c4b5a6978": 0.874},
+               "difference": 0.013, "interval": [0.004, 0.022], "resamples": 1000,
+               "better": "mdl_0f1e2d3c4b5a6978", "comparable": True, "reasons": [],
+               "difference_is": f"mdl_0f1e2d3c4b5a6978 minus {MODEL['id']}"},
+    "created_at": "2026-04-02T08:20:00Z", "started_at": "2026-04-02T08:20:01Z",
+    "finished_at": "2026-04-02T08:20:03Z"}
 CHANNEL_MOVE = {"model_id": MODEL["id"], "previous_model_id": "mdl_0f1e2d3c4b5a6978",
                 "action": "set", "forced": False, "key_id": "key_5a5a5a5a5a5a5a5a",
                 "job_id": None, "at": "2026-04-02T08:00:00Z"}
@@ -140,6 +164,17 @@ EXAMPLES: dict[tuple[str, str], dict[str, Any]] = {
              f"{MODEL['id']},{JOB['id']},{DATASET['id']},binary,roc_auc,defect,97,11,"
              '"{""roc_auc"":0.8655}",c0ffee…,2026-03-14T09:33:00+00:00\n'}}},
     ("get", "/v1/models/{model_id}"): {"responses": {"200": {JSON: MODEL}}},
+    ("get", "/v1/models/{model_id}/drift"): {"responses": {"200": {JSON: {
+        "model_id": MODEL["id"], "rows": 5000, "training_rows": 960,
+        "days": [{"day": "2026-04-02", "rows": 5000}],
+        "features": [{"name": "peak_temp_c", "kind": "numeric", "rows": 5000, "psi": 0.31,
+                      "reading": "significant", "missing_rate": 0.0,
+                      "training_missing_rate": 0.0,
+                      "bins": {"training": [96, 96, 96, 96, 96, 96, 96, 96, 96, 96, 0],
+                               "scored": [20, 31, 60, 140, 300, 510, 800, 1000, 1039, 1100,
+                                          0],
+                               "edges": [1182.0, 1197.5, 1209.0, 1218.1, 1226.0, 1234.2,
+                                         1243.0, 1252.8, 1266.4]}}]}}}},
     ("get", "/v1/models/{model_id}/file"): {"responses": {"200": {
         "text/plain": "tree\nversion=v4\nnum_class=1\n…"}}},
     ("get", "/v1/models/{model_id}/bundle"): {"responses": {}},
@@ -157,6 +192,26 @@ EXAMPLES: dict[tuple[str, str], dict[str, Any]] = {
                      "at": "2026-04-02T08:05:00Z"},
                     *CHANNEL["history"]]}}}},
     ("post", "/v1/channels/{name}/predictions"): PREDICT_EXAMPLES,
+    ("post", "/v1/models/{model_id}/scorings"): {
+        "request": {JSON: {"dataset_id": DATASET["id"], "keep": ["firing_id"]}},
+        "responses": {"202": {JSON: SCORING}}},
+    ("post", "/v1/channels/{name}/scorings"): {
+        "request": {JSON: {"dataset_id": DATASET["id"], "keep": ["firing_id"]}},
+        "responses": {"202": {JSON: {**SCORING, "channel": "kilns"}}}},
+    ("get", "/v1/scorings/{scoring_id}"): {"responses": {"200": {JSON: {
+        **SCORING, "status": "running", "started_at": "2026-04-02T08:10:02Z",
+        "progress": {"rows_done": 400000, "rows_total": 1000000, "fraction": 0.4}}}}},
+    ("post", "/v1/scorings/{scoring_id}/cancel"): {"responses": {"202": {JSON: {
+        **SCORING, "cancel_requested": True, "status": "cancelled"}}}},
+    ("post", "/v1/comparisons"): {
+        "request": {JSON: {"models": [MODEL["id"], "mdl_0f1e2d3c4b5a6978"],
+                           "dataset_id": DATASET["id"]}},
+        "responses": {"202": {JSON: {**COMPARISON, "status": "queued", "result": None,
+                                     "finished_at": None}}}},
+    ("get", "/v1/comparisons/{comparison_id}"): {"responses": {"200": {JSON: COMPARISON}}},
+    ("get", "/v1/scorings/{scoring_id}/result"): {"responses": {"200": {
+        "application/vnd.apache.parquet": "(Parquet bytes)",
+        CSV: "firing_id,prediction,probability_0,probability_1\nF-000417,0,0.83,0.17\n"}}},
 }
 
 

@@ -5,11 +5,11 @@ from __future__ import annotations
 
 import csv
 import io
-from typing import Any
+from typing import Annotated, Any
 from urllib.parse import quote
 
 import pandas as pd
-from fastapi import Request
+from fastapi import Query, Request
 from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import Response
 
@@ -33,8 +33,15 @@ PREDICT_DESCRIPTION = (
     "feature, summing to the raw score; CSV: `contribution_<feature>` columns). "
     "`keep=a,b` (or the JSON field `keep`) returns those input columns unchanged beside "
     "each prediction (JSON: `kept`, one object per row; CSV: the first columns, the text "
-    "exactly as sent); a column only kept is never checked as a feature."
+    "exactly as sent); a column only kept is never checked as a feature. Binary labels "
+    "are class 1 when its probability exceeds the model's `decision.threshold` (0.5 "
+    "unless the job gave costs); `threshold=` overrides it for this request."
 )
+
+
+ThresholdQuery = Annotated[float | None, Query(
+    gt=0, lt=1, description="binary: class 1 above this probability, instead of the "
+                            "model's decision threshold")]
 
 
 def parse_keep(query: str | None) -> list[str]:
@@ -105,7 +112,7 @@ def _contribution_columns(predictor: tuner.Predictor, features: pd.DataFrame) ->
 
 def _predict_csv(predictor: tuner.Predictor, store: LocalStore, body: bytes, unseen: str,
                  limit: int, explain: bool, keep: list[str],
-                 headers: dict[str, str]) -> Response:
+                 headers: dict[str, str], threshold: float | None) -> Response:
     if not body.strip():
         raise Unprocessable("the CSV body is empty; send a header row and at least one row",
                             errors=[{"field": "body", "message": "empty"}])
@@ -114,7 +121,7 @@ def _predict_csv(predictor: tuner.Predictor, store: LocalStore, body: bytes, uns
         raise PayloadTooLarge(f"at most {limit} rows per request; got {len(frame)}")
     kept = _kept_csv(body, keep, len(frame)) if keep else None
     features, ignored = predictor.schema.frame_from_table(frame, unseen=unseen)
-    out = predictor.predict_columns(features)
+    out = predictor.predict_columns(features, threshold)
     if explain:
         out = pd.concat([out, _contribution_columns(predictor, features)], axis=1)
     if kept is not None:
@@ -141,17 +148,21 @@ def ignored_header(names: list[str]) -> str:
 
 async def answer(request: Request, predictor: tuner.Predictor, model_id: str, *,
                  settings: Settings, store: LocalStore, unseen: str, explain: bool,
-                 keep: str | None) -> PredictResponse | Response:
+                 keep: str | None, threshold: float | None = None
+                 ) -> PredictResponse | Response:
     """Read the body and answer it with ``predictor``; the answer names ``model_id``
     (JSON ``model_id``, header ``X-Model-Id``)."""
     media = (request.headers.get("content-type") or "").split(";")[0].strip().lower()
     limit = settings.max_prediction_rows
     headers = {"X-Model-Id": model_id}
     keep_names = parse_keep(keep)
+    if threshold is not None and predictor.task != "binary":
+        message = f"threshold applies to binary models; this one is {predictor.task}"
+        raise Unprocessable(message, errors=[{"field": "threshold", "message": message}])
     body = await ingest.read_body(request, limit=settings.max_upload_mb * (1 << 20))
     if media == "text/csv":
         return await run_in_threadpool(_predict_csv, predictor, store, body, unseen, limit,
-                                       explain, keep_names, headers)
+                                       explain, keep_names, headers, threshold)
     if media not in ("application/json", ""):
         raise UnsupportedMediaType(f"send application/json or text/csv, not {media}")
     if not body.strip():
@@ -163,10 +174,11 @@ async def answer(request: Request, predictor: tuner.Predictor, model_id: str, *,
     keep_names = list(dict.fromkeys([*keep_names, *(payload.keep or [])]))
     kept = _kept_json(payload.rows, keep_names) if keep_names else None
     if len(payload.rows) <= 64:  # a few rows: cheaper inline than a thread hop
-        result = predictor.predict_rows(payload.rows, unseen=unseen, explain=explain)
+        result = predictor.predict_rows(payload.rows, unseen=unseen, explain=explain,
+                                        threshold=threshold)
     else:
         result = await run_in_threadpool(predictor.predict_rows, payload.rows, unseen=unseen,
-                                         explain=explain)
+                                         explain=explain, threshold=threshold)
     answer = PredictResponse(
         model_id=model_id,
         predictions=result["predictions"],

@@ -7,6 +7,7 @@ import threading
 from collections import OrderedDict
 
 import tuner
+from service.api.drift import DriftRecorder
 from service.storage import LocalStore
 from service.tables import Model
 
@@ -14,8 +15,10 @@ CAPACITY = 16
 
 
 class PredictorCache:
-    def __init__(self, store: LocalStore, capacity: int = CAPACITY) -> None:
+    def __init__(self, store: LocalStore, capacity: int = CAPACITY,
+                 recorder: DriftRecorder | None = None) -> None:
         self.store = store
+        self.recorder = recorder
         self.capacity = capacity
         self._items: OrderedDict[str, tuner.Predictor] = OrderedDict()
         self._lock = threading.Lock()
@@ -34,9 +37,14 @@ class PredictorCache:
             return found
         path = self.store.local_path(model.file_key)
         booster = tuner.load_booster(path, expected_sha256=model.sha256)
+        threshold = float((model.decision or {}).get("threshold", 0.5))
         predictor = tuner.Predictor(
-            booster, tuner.FeatureSchema.from_dict(model.feature_schema), model.task, model.classes
+            booster, tuner.FeatureSchema.from_dict(model.feature_schema), model.task,
+            model.classes, threshold=threshold,
         )
+        reference = (model.details or {}).get("drift_reference")
+        if reference and self.recorder is not None:
+            predictor.observer = self.recorder.observer(model.id, reference)
         with self._lock:
             self._items[model.id] = predictor
             while len(self._items) > self.capacity:

@@ -48,6 +48,27 @@ class CVSpec(Strict):
     time_column: Name | None = None
 
 
+class DecisionSpec(Strict):
+    """The costs of a binary model's two mistakes, in any one unit."""
+
+    false_positive_cost: float = Field(ge=0, le=1e12)
+    false_negative_cost: float = Field(ge=0, le=1e12)
+
+    @model_validator(mode="after")
+    def _not_both_zero(self) -> DecisionSpec:
+        if self.false_positive_cost + self.false_negative_cost <= 0:
+            raise ValueError("at least one of the two costs must be above zero")
+        return self
+
+
+class PromoteSpec(Strict):
+    """Move a channel to the job's model when it succeeds (see README, champion and
+    challenger)."""
+
+    channel: str = Field(pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,99}$")
+    rule: Literal["if_better", "always"] = "if_better"
+
+
 class JobCreate(Strict):
     """A tuning job request. Only ``dataset_id`` and ``target`` are required."""
 
@@ -85,6 +106,9 @@ class JobCreate(Strict):
     selection: Literal["best", "one_se"] = "best"
     final_refit: Literal["train", "all"] = "train"
     warm_start_job_id: str | None = Field(default=None, min_length=1, max_length=64)
+    # Binary only: the threshold the model serves labels with comes from these costs.
+    decision: DecisionSpec | None = None
+    promote: PromoteSpec | None = None
 
 
 class ColumnOut(BaseModel):
@@ -140,6 +164,8 @@ class JobOut(BaseModel):
     spec: dict[str, Any]
     progress: Progress
     model_id: str | None
+    # With a promote request, once the job has succeeded: what happened to the channel.
+    promotion: dict[str, Any] | None = None
     error: str | None
     warnings: list[str]
     cancel_requested: bool
@@ -195,6 +221,8 @@ class ModelOut(BaseModel):
     classes: list[Any] | None
     feature_importance: list[dict[str, Any]]
     details: dict[str, Any]
+    # Binary: {"threshold", "method", "note", ...}; labels are class 1 above threshold.
+    decision: dict[str, Any] | None = None
     sha256: str
     size_bytes: int
     created_at: datetime
@@ -288,3 +316,61 @@ class ChannelList(BaseModel):
     items: list[ChannelSummary]
     total: int
     next: str | None = None
+
+
+class ScoringCreate(Strict):
+    model_config = ConfigDict(extra="forbid", json_schema_extra={
+        "examples": [{"dataset_id": "ds_0123abcd4567ef89", "keep": ["firing_id"]}]})
+
+    dataset_id: str = Field(min_length=1, max_length=64)
+    # Dataset columns written unchanged beside each prediction, first.
+    keep: list[str] = Field(default_factory=list, max_length=100)
+    unseen: Literal["error", "missing"] = "error"
+
+
+class ScoringProgress(BaseModel):
+    rows_done: int
+    rows_total: int
+    fraction: float
+
+
+class ScoringOut(BaseModel):
+    id: str
+    model_id: str
+    channel: str | None
+    dataset_id: str
+    keep: list[str]
+    unseen: str
+    status: str
+    progress: ScoringProgress
+    error: str | None
+    # When succeeded: GET it with Accept: text/csv for CSV, else Parquet.
+    result_url: str | None
+    cancel_requested: bool
+    attempts: int
+    created_at: datetime
+    started_at: datetime | None
+    finished_at: datetime | None
+
+
+class ComparisonCreate(Strict):
+    model_config = ConfigDict(extra="forbid", json_schema_extra={"examples": [
+        {"models": ["mdl_4567cdef89ab0123", "mdl_0f1e2d3c4b5a6978"],
+         "dataset_id": "ds_0123abcd4567ef89"}]})
+
+    models: list[str] = Field(min_length=2, max_length=2)
+    dataset_id: str = Field(min_length=1, max_length=64)
+
+
+class ComparisonOut(BaseModel):
+    id: str
+    models: list[str]
+    dataset_id: str
+    status: str
+    # When succeeded: scores per model, difference (second minus first) with its 95%
+    # paired bootstrap interval, better (a model id or null), comparable, reasons.
+    result: dict[str, Any] | None
+    error: str | None
+    created_at: datetime
+    started_at: datetime | None
+    finished_at: datetime | None

@@ -6,7 +6,11 @@ import logging
 import traceback
 from typing import Any
 
+import numpy as np
+
 import tuner
+import tuner.decision
+import tuner.drift
 from service import repository
 from service.db import session_scope
 from service.errors import describe_failure
@@ -34,6 +38,57 @@ def evaluate_safely(fitted: tuner.FittedModel, run: RunPlan, url: str,
         return {"error": f"evaluation failed: {describe_failure(exc)}", "warnings": []}
 
 
+def decide_safely(fitted: tuner.FittedModel, run: RunPlan, best: tuner.TrialRecord,
+                  costs: dict[str, float] | None, job_id: str) -> dict[str, Any] | None:
+    """The binary model's decision threshold (tuner/decision.py); None for other tasks.
+
+    Out-of-fold predictions refit each fold of the chosen trial, so a failure there falls
+    back to the cost ratio and says so rather than costing the model.
+    """
+    if fitted.task != "binary":
+        return None
+    # Probabilities count as calibrated only when the model says it applied a calibration.
+    calibrated = bool(((fitted.refit or {}).get("calibration") or {}).get("applied"))
+    rows = run.plan.holdout_idx
+    holdout = None
+    if len(rows):
+        prob = tuner.predict(fitted.booster, "binary", run.data.X.iloc[rows])
+        weight = None if run.data.weight is None else run.data.weight[rows]
+        holdout = (run.data.y[rows], prob, weight)
+    try:
+        oof = None
+        if costs and not calibrated:
+            positions, prob = tuner.decision.out_of_fold(
+                run.data, run.plan, fitted.params, list(best.best_iterations))
+            oof = (run.data.y[positions], prob)
+        out = tuner.decision.decide(costs, calibrated=calibrated, oof=oof, holdout=holdout)
+    except Exception as exc:  # noqa: BLE001 - see the docstring
+        log.error("job %s: decision threshold failed:\n%s", job_id, traceback.format_exc())
+        out = tuner.decision.decide(costs, calibrated=True, oof=None, holdout=holdout)
+        out["error"] = f"out-of-fold threshold failed ({exc!r}); used the cost ratio"
+    if costs and not (fitted.refit or {}).get("served_is_scored", True):
+        out["holdout_note"] = ("the served model was refit on every row, hold-out "
+                               "included: its hold-out cost is optimistic")
+    return out
+
+
+def drift_reference(fitted: tuner.FittedModel, run: RunPlan) -> dict[str, Any] | None:
+    """The training rows' bins per feature (tuner/drift.py), kept with the model."""
+    from tuner._lgb import frame_matrix
+
+    try:
+        matrix = frame_matrix(fitted.booster, run.data.X.iloc[run.plan.train_idx])
+        if not isinstance(matrix, np.ndarray):
+            return None
+        specs = fitted.schema.to_dict()["features"]
+        return tuner.drift.reference_bins(
+            matrix, [f["name"] for f in specs], [f["kind"] for f in specs],
+            [len(f.get("levels") or []) for f in specs])
+    except Exception:  # noqa: BLE001 - drift summaries describe; they never cost the model
+        log.error("drift reference failed:\n%s", traceback.format_exc())
+        return None
+
+
 def fit_and_store(url: str, store: ArtifactStore, job_id: str, run: RunPlan,
                   best: tuner.TrialRecord) -> str:
     """Refit ``best``, evaluate it, save the model file and its row; returns the model id.
@@ -43,6 +98,9 @@ def fit_and_store(url: str, store: ArtifactStore, job_id: str, run: RunPlan,
     """
     fitted = tuner.fit_final(run.data, run.plan, run.config, best)
     evaluation = evaluate_safely(fitted, run, url, job_id)
+    with session_scope(url) as session:
+        costs = repository.get_job(session, job_id).spec["request"].get("decision")
+    decision = decide_safely(fitted, run, best, costs, job_id)
     model_id = repository.new_id("mdl")
     key = f"models/{model_id}.txt"
     with store.temp_path(".txt") as tmp:
@@ -68,7 +126,9 @@ def fit_and_store(url: str, store: ArtifactStore, job_id: str, run: RunPlan,
                 feature_importance=fitted.feature_importance,
                 details={"manifest": run.effective, "evaluation": evaluation,
                          "selection": run.effective.get("selection_report"),
-                         "final_refit": fitted.refit},
+                         "final_refit": fitted.refit,
+                         "drift_reference": drift_reference(fitted, run)},
+                decision=decision,
                 sha256=sha,
                 file_key=key,
                 size_bytes=size,

@@ -8,10 +8,13 @@ import logging
 import traceback
 from collections.abc import Callable
 
+import pandas as pd
+
 import tuner
-from service import queue
+from service import comparing, queue, repository
 from service.db import session_scope
 from service.errors import describe_failure
+from service.jobspec import RunPlan
 from service.tables import JobStatus
 from service.worker import heartbeat
 from service.worker.context import WorkerContext, load_job
@@ -89,7 +92,29 @@ def _execute(ctx: WorkerContext, job_id: str, flags: heartbeat.JobFlags) -> Outc
     run = dataclasses.replace(run, effective={**run.effective,
                                               "selection_report": result.selection})
     model_id = fit_and_store(ctx.url, ctx.store, job_id, run, result.chosen)
+    promote_safely(ctx, job_id, model_id, run)
     return JobStatus.SUCCEEDED, None, model_id
+
+
+def promote_safely(ctx: WorkerContext, job_id: str, model_id: str, run: RunPlan) -> None:
+    """Apply the job's ``promote`` request; a failure is reported, never fails the job."""
+    try:
+        with session_scope(ctx.url) as session:
+            job = repository.get_job(session, job_id)
+            if not job.spec["request"].get("promote"):
+                return
+            dataset = repository.get_dataset(session, job.dataset_id)
+            path = ctx.store.local_path(dataset.file_key, dataset.file_sha256)
+        frame = pd.read_parquet(path)
+        # The rows prepare() kept (a missing target drops a row), in its order.
+        frame = frame[frame[run.data.target].notna()].reset_index(drop=True)
+        promotion = comparing.promote(ctx.url, ctx.store, job_id=job_id, model_id=model_id,
+                                      frame=frame, holdout_rows=run.plan.holdout_idx)
+    except Exception as exc:  # noqa: BLE001 - the model is stored; only the move failed
+        log.error("job %s: promotion failed:\n%s", job_id, traceback.format_exc())
+        promotion = {"moved": False, "error": f"promotion failed: {exc!r}"}
+    with session_scope(ctx.url) as session:
+        repository.get_job(session, job_id).promotion = promotion
 
 
 def _wait_for_joiners(ctx: WorkerContext, job_id: str, should_stop: Callable[[], bool]) -> None:

@@ -13,13 +13,15 @@ import signal
 import threading
 from typing import Any
 
-from service import queue
+from service import queue, repository
 from service.db import init_db, session_scope
 from service.logs import log_context
 from service.settings import Settings
+from service.worker.comparison import run_comparison
 from service.worker.context import WorkerContext
 from service.worker.join import join_job
 from service.worker.lead import run_job
+from service.worker.scoring import run_scoring
 
 log = logging.getLogger("grovekeeper.worker")
 
@@ -51,7 +53,8 @@ class Worker:
                 self.shutdown.set()
 
     def run_once(self) -> bool:
-        """Sweep stale claims, then claim and run one job. False when the queue is empty."""
+        """Sweep stale claims, then claim and run one job, or else one batch scoring run,
+        or else one comparison, or else join a running job. False when there is nothing to do."""
         url = self.ctx.url
         with session_scope(url) as session:
             for job_id in queue.requeue_stale(
@@ -63,6 +66,23 @@ class Worker:
         if job_id is not None:
             with log_context(job_id=job_id, worker_id=self.worker_id):  # ids on every line
                 run_job(self.ctx, job_id)
+            return True
+        with session_scope(url) as session:
+            scoring_id = repository.claim_scoring(
+                session, worker_id=self.worker_id,
+                stale_after_seconds=self.settings.stale_after_seconds)
+        if scoring_id is not None:
+            with log_context(job_id=scoring_id, worker_id=self.worker_id):
+                run_scoring(url, self.ctx.store, scoring_id, self.worker_id, self.shutdown,
+                            chunk_rows=self.settings.scoring_chunk_rows)
+            return True
+        with session_scope(url) as session:
+            comparison_id = repository.claim_comparison(
+                session, worker_id=self.worker_id,
+                stale_after_seconds=self.settings.stale_after_seconds)
+        if comparison_id is not None:
+            with log_context(job_id=comparison_id, worker_id=self.worker_id):
+                run_comparison(url, self.ctx.store, comparison_id, self.worker_id)
             return True
         with session_scope(url) as session:
             job_id = queue.join_next(session, worker_id=self.worker_id)

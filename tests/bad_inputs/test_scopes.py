@@ -8,8 +8,9 @@ from collections.abc import Iterator
 
 import pytest
 
+from service import repository
 from service.auth import SCOPES, create_key
-from service.db import init_db
+from service.db import init_db, session_scope
 from service.settings import Settings
 from tests.bad_inputs.conftest import LIMITS, Seeded, seed
 from tests.service.conftest import live_api
@@ -27,6 +28,7 @@ ROUTES = [
     ("GET", "/v1/jobs/{job}/trials", "read", 200),
     ("GET", "/v1/jobs/{job}/leaderboard", "read", 200),
     ("GET", "/v1/models", "read", 200),
+    ("GET", "/v1/models/{model}/drift", "read", 200),
     ("GET", "/v1/models/{model}", "read", 200),
     ("PUT", "/v1/channels/{channel}", "write", 200),
     ("GET", "/v1/channels/{channel}", "read", 200),
@@ -34,6 +36,15 @@ ROUTES = [
     # The seeded channel has had one model only: allowed, then refused for that (409).
     ("POST", "/v1/channels/{channel}/rollback", "write", 409),
     ("POST", "/v1/channels/{channel}/predictions", "write", 200),
+    ("POST", "/v1/models/{model}/scorings", "write", 202),
+    ("POST", "/v1/channels/{channel}/scorings", "write", 202),
+    ("GET", "/v1/scorings/{scoring}", "read", 200),
+    ("POST", "/v1/scorings/{queued_scoring}/cancel", "write", 202),
+    # No worker runs it here: allowed, then refused as not finished (409).
+    ("GET", "/v1/scorings/{scoring}/result", "read", 409),
+    # One model twice: allowed, then refused as a bad request (422).
+    ("POST", "/v1/comparisons", "write", 422),
+    ("GET", "/v1/comparisons/{comparison}", "read", 200),
     ("GET", "/v1/models/{model}/file", "read", 200),
     ("GET", "/v1/models/{model}/bundle", "read", 200),
     ("GET", "/v1/jobs/{job}/events", "read", 200),
@@ -81,6 +92,10 @@ def _request(k: Keyed, method: str, path: str) -> dict:  # type: ignore[type-arg
         return {"json": {"dataset_id": s.dataset_id, "target": "defect"}}
     if method == "PUT" and path.startswith("/v1/channels/"):
         return {"json": {"model_id": s.model_id}}
+    if path == "/v1/comparisons":
+        return {"json": {"models": [s.model_id, s.model_id], "dataset_id": s.dataset_id}}
+    if path.endswith("/scorings"):
+        return {"json": {"dataset_id": s.dataset_id}}
     if path.endswith("/predictions"):
         return {"json": {"rows": [s.row]}}
     return {}
@@ -90,6 +105,15 @@ def _fill(k: Keyed, path: str) -> str:
     ids = {"ds": k.s.dataset_id, "job": k.s.job_id, "model": k.s.model_id,
            "channel": "scoped"}
     with k.admin() as client:  # fresh resources for the calls that use them up
+        if "scoring}" in path:
+            made = client.post(f"/v1/models/{k.s.model_id}/scorings",
+                               json={"dataset_id": k.s.dataset_id})
+            ids["scoring"] = ids["queued_scoring"] = made.json()["id"]
+        if "{comparison}" in path:
+            with session_scope(k.s.api.settings.db_url) as session:
+                ids["comparison"] = repository.add_comparison(
+                    session, id=repository.new_id("cmp"), model_ids=[k.s.model_id] * 2,
+                    dataset_id=k.s.dataset_id).id
         if "{channel}" in path:
             client.put("/v1/channels/scoped",
                        json={"model_id": k.s.model_id}).raise_for_status()
@@ -111,6 +135,8 @@ def test_the_table_covers_every_route(keyed: Keyed) -> None:
     listed = {(m, p.replace("{ds}", "{dataset_id}").replace("{spare_ds}", "{dataset_id}")
                .replace("{queued_job}", "{job_id}").replace("{job}", "{job_id}")
                .replace("{model}", "{model_id}").replace("{channel}", "{name}")
+               .replace("{queued_scoring}", "{scoring_id}").replace("{scoring}", "{scoring_id}")
+               .replace("{comparison}", "{comparison_id}")
                .replace("history.svg", "{name}.svg"))
               for m, p, _, _ in ROUTES}
     assert documented <= listed, documented - listed

@@ -17,6 +17,7 @@ from examples.demo_data import kilns
 from service.auth import create_key
 from tests.conftest import Server, fresh_database, wait_for_job
 
+COSTS = {"false_positive_cost": 1.0, "false_negative_cost": 5.0}
 # A column the models never see: order numbers that look numeric, leading zeros included.
 ORDER = "order_no"
 
@@ -31,7 +32,8 @@ class Served:
     db_url: str
     dataset_id: str
     other_dataset_id: str
-    models: dict[str, dict]  # "a", "b": all features; "narrow": fewer features
+    # "a", "b": all features; "narrow": fewer features; "costly": with decision costs
+    models: dict[str, dict]
     jobs: dict[str, dict]
     rows: pd.DataFrame  # fresh rows to predict, with an order_no column
     admin_key: str
@@ -40,6 +42,11 @@ class Served:
     def client(self, key: str | None = None) -> httpx.Client:
         return self.server.client(
             headers={"Authorization": f"Bearer {key or self.admin_key}"})
+
+    def stored_table(self, dataset_id: str) -> pd.DataFrame:
+        """The dataset as the server stored it (its Parquet file)."""
+        (path,) = self.server.home.rglob(f"{dataset_id}.parquet")
+        return pd.read_parquet(path)
 
     def booster(self, model_id: str) -> lgb.Booster:
         with self.client() as client:
@@ -55,10 +62,13 @@ def upload(client, frame: pd.DataFrame, name: str) -> str:  # type: ignore[no-un
     return response.json()["id"]
 
 
-def job(client, dataset_id: str, **fields) -> str:  # type: ignore[no-untyped-def]
-    body = {"dataset_id": dataset_id, "target": "defect", "budget": {"trials": 3},
+def job_body(dataset_id: str, **fields) -> dict:  # type: ignore[no-untyped-def]
+    return {"dataset_id": dataset_id, "target": "defect", "budget": {"trials": 3},
             "cv": {"folds": 3}, "exclude": ["firing_id"], **fields}
-    response = client.post("/v1/jobs", json=body)
+
+
+def job(client, dataset_id: str, **fields) -> str:  # type: ignore[no-untyped-def]
+    response = client.post("/v1/jobs", json=job_body(dataset_id, **fields))
     assert response.status_code == 202, response.text
     return response.json()["id"]
 
@@ -66,7 +76,9 @@ def job(client, dataset_id: str, **fields) -> str:  # type: ignore[no-untyped-de
 @contextlib.contextmanager
 def served(kind: str, tmp: Path) -> Iterator[Served]:
     with fresh_database(kind, tmp) as url:
-        server = Server(home=tmp / "home", db_url=url, workers=1).start()
+        # Small scoring chunks, so a few thousand rows already take several.
+        server = Server(home=tmp / "home", db_url=url, workers=1,
+                        extra_env={"GROVEKEEPER_SCORING_CHUNK_ROWS": "700"}).start()
         try:
             # Keys exist, so every change is made by a known key (channel history names it).
             _, admin = create_key(url, scope="admin")
@@ -76,7 +88,8 @@ def served(kind: str, tmp: Path) -> Iterator[Served]:
                 other = upload(client, kilns(n_rows=200, seed=5), "kilns-later")
                 ids = {"a": job(client, ds, seed=1), "b": job(client, ds, seed=2),
                        "narrow": job(client, other, seed=3,
-                                     exclude=["firing_id", "glaze_thickness_mm"])}
+                                     exclude=["firing_id", "glaze_thickness_mm"]),
+                       "costly": job(client, ds, seed=4, decision=COSTS)}
                 jobs = {k: wait_for_job(client, j) for k, j in ids.items()}
                 assert all(j["status"] == "succeeded" for j in jobs.values()), (
                     jobs, server.log()[-3000:])

@@ -13,10 +13,23 @@ from pathlib import Path
 
 import httpx
 import numpy as np
+import pandas as pd
 import pytest
+from prometheus_client.parser import text_string_to_metric_families
 
+from examples.demo_data import kilns
+from service.api.schemas import JobCreate
+from service.jobspec import build_run
 from tests.conftest import DB_KINDS
-from tests.e2e.servingkit import ORDER, Served, lightgbm_positive, served
+from tests.e2e.servingkit import (
+    COSTS,
+    ORDER,
+    Served,
+    job_body,
+    lightgbm_positive,
+    order_numbers,
+    served,
+)
 
 pytestmark = pytest.mark.e2e
 
@@ -45,16 +58,16 @@ def test_models_list_newest_first_filtered_and_paged(env: Served) -> None:
         by_target = client.get("/v1/models", params={"target": "no_such_column"}).json()
         as_csv = client.get("/v1/models", headers={"Accept": "text/csv"})
         bad = client.get("/v1/models", params={"cursor": "not-a-cursor!"})
-    assert everything["total"] == 3 and everything["next"] is None
+    assert everything["total"] == 4 and everything["next"] is None
     listed = [m["id"] for m in everything["items"]]
     assert sorted(listed) == sorted(ids.values())
     stamps = [m["created_at"] for m in everything["items"]]
     assert stamps == sorted(stamps, reverse=True)  # newest first
     # Paging one at a time walks the same list, each model once.
     assert [p["items"][0]["id"] for p in pages] == listed
-    assert all(p["total"] == 3 for p in pages)
-    assert {m["id"] for m in by_dataset["items"]} == {ids["a"], ids["b"]}
-    assert by_dataset["total"] == 2
+    assert all(p["total"] == 4 for p in pages)
+    assert {m["id"] for m in by_dataset["items"]} == {ids["a"], ids["b"], ids["costly"]}
+    assert by_dataset["total"] == 3
     assert all(m["dataset_id"] == env.dataset_id for m in by_dataset["items"])
     assert [m["id"] for m in by_job["items"]] == [ids["b"]]
     assert by_target == {"items": [], "total": 0, "next": None}
@@ -278,3 +291,204 @@ def test_channel_switched_under_load_answers_every_request(env: Served) -> None:
     with env.client() as client:
         history = client.get(f"/v1/channels/{name}").json()["history"]
     assert len(history) == 21
+
+
+def test_decision_threshold_from_costs_is_served_and_costed(env: Served) -> None:
+    model, plain = env.models["costly"], env.models["a"]
+    decision = model["decision"]
+    t = decision["threshold"]
+    # Uncalibrated probabilities: the cut is chosen out of fold, never on the hold-out.
+    assert decision["method"] == "out_of_fold"
+    assert decision["false_positive_cost"] == 1 and decision["false_negative_cost"] == 5
+    assert 0 < t < 1
+    assert plain["decision"]["threshold"] == 0.5 and plain["decision"]["method"] == "default"
+    assert "no costs" in plain["decision"]["note"]
+    # The hold-out cost, recomputed here with numpy on LightGBM's own Booster.predict of
+    # the job's hold-out rows.
+    request = JobCreate(**job_body(env.dataset_id, seed=4, decision=COSTS)).model_dump(
+        mode="json")
+    run = build_run(request, env.stored_table(env.dataset_id))
+    rows = run.plan.holdout_idx
+    prob = env.booster(model["id"]).predict(run.data.X.iloc[rows])
+    y = run.data.y[rows]
+
+    def cost(cut: float) -> float:
+        said_yes = prob > cut
+        return float(np.mean(1.0 * (said_yes & (y == 0)) + 5.0 * (~said_yes & (y == 1))))
+
+    assert decision["holdout"]["rows"] == len(rows)
+    assert decision["holdout"]["expected_cost_per_row"] == pytest.approx(cost(t), abs=1e-12)
+    assert decision["holdout"]["expected_cost_per_row_at_0_5"] == pytest.approx(
+        cost(0.5), abs=1e-12)
+    # Labels are served with t; ?threshold= overrides it for one request.
+    records = json.loads(env.rows.to_json(orient="records"))
+    expected = lightgbm_positive(env.booster(model["id"]), model, env.rows)
+    with env.client() as client:
+        served_labels = client.post(f"/v1/models/{model['id']}/predictions",
+                                    json={"rows": records}).json()
+        high = client.post(f"/v1/models/{model['id']}/predictions",
+                           params={"threshold": 0.9}, json={"rows": records}).json()
+        as_csv = client.post(f"/v1/models/{model['id']}/predictions",
+                             params={"threshold": 0.05},
+                             content=env.rows.to_csv(index=False).encode(),
+                             headers={"Content-Type": "text/csv"})
+        bad = client.post(f"/v1/models/{model['id']}/predictions",
+                          params={"threshold": 1.5}, json={"rows": records})
+        wrong_task = client.post("/v1/jobs", json={
+            "dataset_id": env.dataset_id, "target": "peak_temp_c",
+            "decision": {"false_positive_cost": 1, "false_negative_cost": 2}})
+        zero = client.post("/v1/jobs", json={
+            "dataset_id": env.dataset_id, "target": "defect",
+            "decision": {"false_positive_cost": 0, "false_negative_cost": 0}})
+    assert served_labels["predictions"] == [int(p > t) for p in expected]
+    assert high["predictions"] == [int(p > 0.9) for p in expected]
+    labels = [int(r["prediction"]) for r in csv.DictReader(io.StringIO(as_csv.text))]
+    assert labels == [int(p > 0.05) for p in expected]
+    assert bad.status_code == 422 and bad.json()["errors"][0]["field"] == "threshold"
+    assert wrong_task.status_code == 422
+    assert wrong_task.json()["errors"][0]["field"] == "decision"
+    assert zero.status_code == 422 and zero.json()["errors"][0]["field"].startswith("decision")
+
+
+def upload_parquet(client: httpx.Client, frame: pd.DataFrame, name: str) -> str:
+    # Parquet keeps text ids as text (a CSV reader may take 007 for the number 7).
+    buffer = io.BytesIO()
+    frame.to_parquet(buffer, index=False)
+    response = client.post("/v1/datasets", params={"name": name}, content=buffer.getvalue(),
+                           headers={"Content-Type": "application/vnd.apache.parquet"})
+    assert response.status_code == 201, response.text
+    return response.json()["id"]
+
+
+def wait_scoring(client: httpx.Client, scoring_id: str, timeout: float = 300) -> dict:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        run = client.get(f"/v1/scorings/{scoring_id}").json()
+        if run["status"] in ("succeeded", "failed", "cancelled"):
+            return run
+        time.sleep(0.3)
+    raise AssertionError(f"scoring {scoring_id} did not finish: {run}")
+
+
+def test_batch_scoring_every_row_once_ids_kept_lightgbm_predictions(env: Served) -> None:
+    a = env.models["a"]
+    table = kilns(n_rows=2500, seed=11).drop(columns=["defect"])
+    table.insert(0, ORDER, order_numbers(len(table)))
+    name = f"batch-{env.server.port}"
+    with env.client() as client:
+        ds = upload_parquet(client, table, "to-score")
+        client.put(f"/v1/channels/{name}", json={"model_id": a["id"]}).raise_for_status()
+        made = client.post(f"/v1/channels/{name}/scorings",
+                           json={"dataset_id": ds, "keep": [ORDER, "firing_id"]})
+        assert made.status_code == 202, made.text
+        assert made.headers["Location"] == f"/v1/scorings/{made.json()['id']}"
+        # The model is fixed at submission: moving the channel now changes nothing.
+        client.put(f"/v1/channels/{name}", json={"model_id": env.models["b"]["id"]})
+        run = wait_scoring(client, made.json()["id"])
+        parquet = client.get(run["result_url"])
+        as_csv = client.get(run["result_url"], headers={"Accept": "text/csv"})
+        bad_keep = client.post(f"/v1/models/{a['id']}/scorings",
+                               json={"dataset_id": ds, "keep": ["nope"]})
+        bad_ds = client.post(f"/v1/models/{a['id']}/scorings", json={"dataset_id": "ds_no"})
+        narrow_ds = upload_parquet(client, table.drop(columns=["glaze_thickness_mm"]), "n")
+        lacking = client.post(f"/v1/models/{a['id']}/scorings", json={"dataset_id": narrow_ds})
+    assert run["status"] == "succeeded", run
+    assert run["model_id"] == a["id"] and run["channel"] == name
+    assert run["progress"] == {"rows_done": 2500, "rows_total": 2500, "fraction": 1.0}
+    result = pd.read_parquet(io.BytesIO(parquet.content))
+    assert list(result.columns[:3]) == [ORDER, "firing_id", "prediction"]
+    # Every row once, in order, ids exactly as stored (leading zeros kept).
+    assert list(result[ORDER]) == list(table[ORDER])
+    assert list(result["firing_id"]) == list(table["firing_id"])
+    expected = lightgbm_positive(env.booster(a["id"]), a, table)
+    np.testing.assert_allclose(result["probability_1"], expected, atol=1e-9)
+    rows = list(csv.DictReader(io.StringIO(as_csv.text)))
+    assert as_csv.headers["content-type"].startswith("text/csv")
+    assert [r[ORDER] for r in rows] == list(table[ORDER])
+    np.testing.assert_allclose([float(r["probability_1"]) for r in rows], expected, atol=1e-9)
+    assert bad_keep.status_code == 422 and bad_keep.json()["errors"][0]["field"] == "keep[0]"
+    assert bad_ds.status_code == 422 and bad_ds.json()["errors"][0]["field"] == "dataset_id"
+    assert lacking.status_code == 422
+    assert [e.get("column") for e in lacking.json()["errors"]] == ["glaze_thickness_mm"]
+
+
+def test_batch_scoring_cancel(env: Served) -> None:
+    a = env.models["a"]
+    table = kilns(n_rows=20_000, seed=12).drop(columns=["defect"])
+    with env.client() as client:
+        ds = upload_parquet(client, table, "to-cancel")
+        made = client.post(f"/v1/models/{a['id']}/scorings", json={"dataset_id": ds}).json()
+        cancelled = client.post(f"/v1/scorings/{made['id']}/cancel")
+        run = wait_scoring(client, made["id"])
+        result = client.get(f"/v1/scorings/{made['id']}/result")
+        again = client.post(f"/v1/scorings/{made['id']}/cancel")
+    assert cancelled.status_code == 202 and cancelled.json()["cancel_requested"] is True
+    assert run["status"] == "cancelled" and run["result_url"] is None
+    assert result.status_code == 409 and again.status_code == 409
+
+
+def _drift(client: httpx.Client, model_id: str) -> dict[str, dict]:
+    answer = client.get(f"/v1/models/{model_id}/drift")
+    assert answer.status_code == 200, answer.text
+    return {f["name"]: f for f in answer.json()["features"]}
+
+
+def test_drift_stable_in_distribution_and_significant_on_the_shifted_feature(
+        env: Served) -> None:
+    steady, moved = env.models["costly"], env.models["narrow"]
+    fresh = kilns(n_rows=5000, seed=31).drop(columns=["defect"])
+    # One standard deviation of the training values (the narrow model's own dataset).
+    sd = env.stored_table(env.other_dataset_id)["peak_temp_c"].std()
+    shifted = fresh.drop(columns=["glaze_thickness_mm"]).copy()
+    shifted["peak_temp_c"] = shifted["peak_temp_c"] + sd
+    with env.client() as client:
+        before = _drift(client, moved["id"])
+        for model, rows in ((steady, fresh), (moved, shifted)):
+            # Half as JSON rows, half as CSV: both kinds of request are counted.
+            half = len(rows) // 2
+            client.post(f"/v1/models/{model['id']}/predictions", json={
+                "rows": json.loads(rows.iloc[:half].to_json(orient="records"))}
+            ).raise_for_status()
+            client.post(f"/v1/models/{model['id']}/predictions",
+                        content=rows.iloc[half:].to_csv(index=False).encode(),
+                        headers={"Content-Type": "text/csv"}).raise_for_status()
+        stable = _drift(client, steady["id"])
+        drifted = _drift(client, moved["id"])
+    assert all(f["rows"] == 0 and f["psi"] is None for f in before.values())
+    assert {f["rows"] for f in drifted.values()} == {5000}
+    assert min(f["rows"] for f in stable.values()) >= 5000
+    assert {n: f["psi"] for n, f in stable.items() if f["psi"] >= 0.1} == {}
+    assert all(f["reading"] == "stable" for f in stable.values())
+    assert drifted["peak_temp_c"]["psi"] > 0.25
+    assert drifted["peak_temp_c"]["reading"] == "significant"
+    others = {n: f["psi"] for n, f in drifted.items() if n != "peak_temp_c"}
+    assert max(others.values()) < 0.25, others
+    assert drifted["humidity_pct"]["missing_rate"] == pytest.approx(
+        shifted["humidity_pct"].isna().mean())
+
+
+def test_psi_gauges_only_for_models_behind_a_channel(env: Served) -> None:
+    steady = env.models["costly"]
+    name = f"gauged-{env.server.port}"
+    rows = kilns(n_rows=200, seed=32).drop(columns=["defect"])
+
+    def psi_samples(client: httpx.Client) -> list:
+        client.get(f"/v1/models/{steady['id']}/drift").raise_for_status()  # flushes
+        text = client.get("/metrics").text
+        return [s for f in text_string_to_metric_families(text) for s in f.samples
+                if s.name == "grovekeeper_feature_psi"]
+
+    with env.client() as client:
+        client.post(f"/v1/models/{steady['id']}/predictions", json={
+            "rows": json.loads(rows.to_json(orient="records"))}).raise_for_status()
+        # Scored rows, but no channel points at it yet: no series.
+        before = psi_samples(client)
+        client.put(f"/v1/channels/{name}", json={"model_id": steady["id"]}).raise_for_status()
+        after = psi_samples(client)
+        behind = {c["model_id"] for c in client.get("/v1/channels").json()["items"]}
+    assert not [s for s in before if s.labels["model_id"] == steady["id"]]
+    mine = [s for s in after if s.labels["channel"] == name]
+    assert mine and all(s.labels["model_id"] == steady["id"] for s in mine)
+    assert {s.labels["feature"] for s in mine} == {
+        f["name"] for f in steady["feature_schema"]["features"]}
+    assert {s.labels["model_id"] for s in after} <= behind

@@ -89,7 +89,7 @@ def test_r2_constant_truth_follows_sklearn() -> None:
 def test_score_all_covers_task_and_skips_undefined() -> None:
     y, p = _binary()
     assert set(score_all("binary", y, p, WEIGHT)) == {"roc_auc", "log_loss", "accuracy",
-                                                      "f1_macro"}
+                                                      "f1_macro", "average_precision"}
     y_reg, pred = _regression()
     assert "poisson_deviance" in score_all("regression", y_reg, pred)
     assert "poisson_deviance" not in score_all("regression", y_reg - 10, pred)
@@ -107,3 +107,20 @@ def test_registry_lookup() -> None:
             get_metric(name, task)
         assert info.value.errors[0]["field"] == "metric"
         assert name in info.value.errors[0]["message"] and task in info.value.errors[0]["message"]
+
+
+@pytest.mark.parametrize("weight", [None, WEIGHT], ids=["unweighted", "weighted"])
+def test_average_precision_matches_sklearn(weight) -> None:
+    y, p = _binary()  # many tied scores
+    rare = (RNG.random(N) < 0.04).astype(int)  # a rare class, its scores mostly low
+    p_rare = np.clip(0.5 * rare + 0.6 * RNG.random(N), 0, 1)
+    y3, p3 = _multiclass(3)
+    # Reference: sklearn.metrics.average_precision_score (binary; multiclass one-vs-rest
+    # on the binarised labels, macro).
+    assert METRICS["average_precision"](y, p, weight) == pytest.approx(
+        skm.average_precision_score(y, p, sample_weight=weight), rel=1e-12)
+    assert METRICS["average_precision"](rare, p_rare, weight) == pytest.approx(
+        skm.average_precision_score(rare, p_rare, sample_weight=weight), rel=1e-12)
+    assert METRICS["average_precision"](y3, p3, weight) == pytest.approx(
+        skm.average_precision_score(np.eye(3)[y3], p3, average="macro",
+                                    sample_weight=weight), rel=1e-12)

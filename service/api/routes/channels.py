@@ -112,6 +112,7 @@ async def predict(
     unseen: Annotated[Unseen, Query()] = "error",
     explain: Annotated[bool, Query()] = False,
     keep: Annotated[str | None, Query(description="input columns to return, a,b")] = None,
+    threshold: predicting.ThresholdQuery = None,
 ) -> PredictResponse | Response:
     # The channel is read once, so the whole request is answered by one model even when
     # the channel moves meanwhile.
@@ -123,4 +124,5 @@ async def predict(
         predictor = await run_in_threadpool(predictors.get, model)
     session.close()
     return await predicting.answer(request, predictor, model_id, settings=settings,
-                                   store=store, unseen=unseen, explain=explain, keep=keep)
+                                   store=store, unseen=unseen, explain=explain, keep=keep,
+                                   threshold=threshold)

@@ -63,6 +63,7 @@ def to_out(job: Job) -> JobOut:
                 seconds_budget=effective["budget"].get("seconds")),
         ),
         model_id=job.model_id,
+        promotion=job.promotion,
         error=job.error,
         warnings=job.warnings,
         cancel_requested=job.cancel_requested,
@@ -110,6 +111,9 @@ def _submit(settings: Settings, store: LocalStore, body: JobCreate) -> JobOut:
     frame = pd.read_parquet(store.local_path(key, sha))
     # Every problem with the request surfaces here as a 422.
     run = build_run(request, frame, dataset_sha256=dataset_sha)
+    if body.decision is not None and run.data.task != "binary":
+        message = f"decision costs apply to binary tasks; this job is {run.data.task}"
+        raise Unprocessable(message, errors=[{"field": "decision", "message": message}])
     if warm_task is not None and warm_task != run.data.task:
         message = (f"job '{body.warm_start_job_id}' tuned a {warm_task} task; this job is "
                    f"{run.data.task}")

@@ -5,7 +5,7 @@ from __future__ import annotations
 import base64
 import json
 from datetime import datetime
-from typing import Annotated, Literal
+from typing import Annotated, Any, Literal
 
 from fastapi import APIRouter, Query, Request
 from fastapi.concurrency import run_in_threadpool
@@ -24,8 +24,11 @@ from service.api.schemas import (
     as_utc,
 )
 from service.api.tabular import csv_response, wants_csv
-from service.errors import Unprocessable
+from service.db import session_scope
+from service.errors import Conflict, Unprocessable
 from service.tables import Model
+from tuner.decision import DEFAULT_DECISION
+from tuner.drift import psi, reading
 
 router = APIRouter(prefix="/v1/models", tags=["models"])
 Unseen = Literal["error", "missing"]
@@ -38,6 +41,7 @@ def to_out(model: Model) -> ModelOut:
         trial_number=model.trial_number, cv=model.cv, holdout=model.holdout,
         feature_schema=model.feature_schema, classes=model.classes,
         feature_importance=model.feature_importance, details=model.details,
+        decision=model.decision or (dict(DEFAULT_DECISION) if model.task == "binary" else None),
         sha256=model.sha256, size_bytes=model.size_bytes, created_at=as_utc(model.created_at),
     )
 
@@ -100,6 +104,52 @@ def get_model(model_id: str, session: SessionDep) -> ModelOut:
     return to_out(repository.get_model(session, model_id))
 
 
+@router.get("/{model_id}/drift", summary="Do the rows being scored look like the training rows?")
+async def get_drift(
+    model_id: str, request: Request, settings: SettingsDep,
+    since: Annotated[str | None, Query(pattern=r"^\d{4}-\d{2}-\d{2}$",
+                                       description="first day counted, YYYY-MM-DD")] = None,
+) -> dict[str, Any]:
+    """Per feature: the population stability index of the rows scored (by any API
+    process) against the training rows, in the training bins, with its usual reading
+    (below 0.1 stable, 0.1-0.25 moderate, above 0.25 significant: common practice), the
+    rows counted and the missing-value rate. This process's unflushed counts are added
+    first."""
+    await run_in_threadpool(request.app.state.drift.flush)
+    with session_scope(settings.db_url) as session:
+        model = repository.get_model(session, model_id)
+        reference = (model.details or {}).get("drift_reference")
+        days = [(d.day, d.rows, d.counts)
+                for d in repository.drift_counts(session, model_id=model_id, since=since)]
+    if not reference:
+        raise Conflict(f"model {model_id!r} was stored without training bins; drift is "
+                       "reported for models trained since it was added")
+    return drift_report(model_id, reference, days)
+
+
+def drift_report(model_id: str, reference: dict[str, Any],
+                 days: list[tuple[str, int, list[list[int]]]]) -> dict[str, Any]:
+    rows = sum(r for _, r, _ in days)
+    features = []
+    for j, entry in enumerate(reference["features"]):
+        actual = [sum(day[2][j][b] for day in days) for b in range(len(entry["counts"]))]
+        item: dict[str, Any] = {"name": entry["name"], "kind": entry["kind"], "rows": rows}
+        if rows:
+            value = psi(entry["counts"], actual)
+            item.update(psi=round(value, 6), reading=reading(value),
+                        missing_rate=actual[-1] / rows,
+                        training_missing_rate=entry["counts"][-1] / reference["rows"])
+        else:
+            item.update(psi=None, reading=None, missing_rate=None,
+                        training_missing_rate=entry["counts"][-1] / reference["rows"])
+        item["bins"] = {"training": entry["counts"], "scored": actual,
+                        **({"edges": entry["edges"]} if "edges" in entry else {})}
+        features.append(item)
+    features.sort(key=lambda f: -(f["psi"] or 0.0))
+    return {"model_id": model_id, "rows": rows, "training_rows": reference["rows"],
+            "days": [{"day": d, "rows": r} for d, r, _ in days], "features": features}
+
+
 @router.get("/{model_id}/file", response_class=FileResponse,
             summary="The LightGBM text model, byte for byte as stored")
 def get_model_file(model_id: str, session: SessionDep, store: StoreDep) -> FileResponse:
@@ -130,6 +180,7 @@ async def predict(
     unseen: Annotated[Unseen, Query()] = "error",
     explain: Annotated[bool, Query()] = False,
     keep: Annotated[str | None, Query(description="input columns to return, a,b")] = None,
+    threshold: predicting.ThresholdQuery = None,
 ) -> PredictResponse | Response:
     predictors = request.app.state.predictors
     predictor = predictors.cached(model_id)
@@ -138,4 +189,5 @@ async def predict(
         predictor = await run_in_threadpool(predictors.get, model)
     session.close()
     return await predicting.answer(request, predictor, model_id, settings=settings,
-                                   store=store, unseen=unseen, explain=explain, keep=keep)
+                                   store=store, unseen=unseen, explain=explain, keep=keep,
+                                   threshold=threshold)
