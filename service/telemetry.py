@@ -129,7 +129,7 @@ class ApiMetrics:
                                     registry=self.registry)
 
 
-PREDICT_PATH = re.compile(r"^/v1/models/[^/]+/predictions/?$")
+PREDICT_PATH = re.compile(r"^/v1/(models|channels)/[^/]+/predictions/?$")
 UPLOAD_PATH = re.compile(r"^/v1/datasets/?$")
 
 

@@ -164,6 +164,7 @@ EXAMPLES: dict[tuple[str, str], dict[str, Any]] = {
              f"{MODEL['id']},{JOB['id']},{DATASET['id']},binary,roc_auc,defect,97,11,"
              '"{""roc_auc"":0.8655}",c0ffee…,2026-03-14T09:33:00+00:00\n'}}},
     ("get", "/v1/models/{model_id}"): {"responses": {"200": {JSON: MODEL}}},
+    ("delete", "/v1/models/{model_id}"): {"responses": {}},
     ("get", "/v1/models/{model_id}/drift"): {"responses": {"200": {JSON: {
         "model_id": MODEL["id"], "rows": 5000, "training_rows": 960,
         "days": [{"day": "2026-04-02", "rows": 5000}],

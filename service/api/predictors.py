@@ -1,5 +1,6 @@
 """Loaded models kept in memory, so a prediction never re-reads the model file, nor
-(once loaded) its database row: a stored model is never changed."""
+(once loaded) its database row: a stored model is never changed (only deleted, which a
+channel prevents for the models callers use)."""
 
 from __future__ import annotations
 
@@ -30,6 +31,11 @@ class PredictorCache:
             if found is not None:
                 self._items.move_to_end(model_id)
             return found
+
+    def forget(self, model_id: str) -> None:
+        """Drop a deleted model (this process only; others drop it when it falls out)."""
+        with self._lock:
+            self._items.pop(model_id, None)
 
     def get(self, model: Model) -> tuner.Predictor:
         found = self.cached(model.id)

@@ -162,6 +162,29 @@ def _leaderboard(rows: list[dict[str, Any]], count: int, winner: int | None) -> 
             + more)
 
 
+def _promotion(p: dict[str, Any] | None) -> str:
+    """What the job's promote request did, with the champion/challenger comparison."""
+    if not p:
+        return ""
+    moved = "moved to this job's model" if p.get("moved") else "not moved"
+    head = (f"<p>Channel <code>{escape(str(p.get('channel', '')))}</code>, rule "
+            f"<code>{escape(str(p.get('rule', '')))}</code>: <strong>{moved}</strong> · "
+            f"{escape(str(p.get('reason') or p.get('error') or ''))}</p>")
+    c = p.get("comparison") or {}
+    table = ""
+    if c.get("scores"):
+        rows = "".join(f"<tr><td><code>{escape(m)}</code></td><td class='num'>{_num(v)}</td>"
+                       "</tr>" for m, v in c["scores"].items())
+        low, high = c["interval"]
+        table = (f"<table><tr><th>model</th><th>{escape(c['metric'])} on "
+                 f"{c['rows']} hold-out rows</th></tr>{rows}</table>"
+                 f"<p class='note'>Difference (new minus current) {_num(c['difference'])}, "
+                 f"95% paired bootstrap interval {_num(low)} – {_num(high)}.</p>")
+    reasons = "".join(f"<li>{escape(r)}</li>" for r in c.get("reasons") or [])
+    return (f'<h2>Promotion</h2><section class="card" id="promotion">{head}{table}'
+            f"{'<ul>' + reasons + '</ul>' if reasons else ''}</section>")
+
+
 def _plots(names: list[str]) -> str:
     if not names:
         return "<p class='note'>Plots appear once trials complete.</p>"
@@ -200,6 +223,7 @@ scored by <strong>{escape(job['metric'])}</strong> · dataset
 <a href="leaderboard?format=csv">leaderboard CSV</a></p>
 {live}{_facts(job)}{error}{_warnings(warnings)}
 {'<h2>Winner</h2>' + winner if winner else ''}
+{_promotion(job.get('promotion'))}
 <h2>Plots</h2>{_plots(plots)}
 <h2>Leaderboard</h2><section class="card">{_leaderboard(board, count,
     (model or {}).get('trial_number'))}</section>

@@ -29,6 +29,8 @@ ROUTES = [
     ("GET", "/v1/jobs/{job}/leaderboard", "read", 200),
     ("GET", "/v1/models", "read", 200),
     ("GET", "/v1/models/{model}/drift", "read", 200),
+    # The seeded channel serves the seeded model: allowed, then refused for that (409).
+    ("DELETE", "/v1/models/{model}", "admin", 409),
     ("GET", "/v1/models/{model}", "read", 200),
     ("PUT", "/v1/channels/{channel}", "write", 200),
     ("GET", "/v1/channels/{channel}", "read", 200),
@@ -114,7 +116,7 @@ def _fill(k: Keyed, path: str) -> str:
                 ids["comparison"] = repository.add_comparison(
                     session, id=repository.new_id("cmp"), model_ids=[k.s.model_id] * 2,
                     dataset_id=k.s.dataset_id).id
-        if "{channel}" in path:
+        if "{channel}" in path or path == "/v1/models/{model}":
             client.put("/v1/channels/scoped",
                        json={"model_id": k.s.model_id}).raise_for_status()
         if "{spare_ds}" in path:

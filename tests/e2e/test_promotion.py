@@ -116,3 +116,30 @@ def test_comparison_of_two_models_matches_sklearn(promoted: dict) -> None:
     assert seen["status"] == "succeeded" and seen["result"]["comparable"] is False
     assert any("trained on some of these rows" in r for r in seen["result"]["reasons"])
     assert same.status_code == 422
+
+
+def test_models_behind_a_channel_cannot_be_deleted(promoted: dict) -> None:
+    server: Server = promoted["server"]
+    serving, spare = promoted["jobs"]["forced"]["model_id"], promoted["jobs"]["worse"][
+        "model_id"]
+    with server.client() as client:
+        refused = client.delete(f"/v1/models/{serving}")
+        still = client.get(f"/v1/models/{serving}/file")
+        deleted = client.delete(f"/v1/models/{spare}")
+        gone = client.get(f"/v1/models/{spare}")
+        listed = [m["id"] for m in client.get("/v1/models").json()["items"]]
+    assert refused.status_code == 409
+    assert [e["channel"] for e in refused.json()["errors"]] == ["kilns"]
+    assert still.status_code == 200
+    assert deleted.status_code == 204 and gone.status_code == 404
+    assert spare not in listed and serving in listed
+    assert not list(server.home.rglob(f"{spare}.txt"))
+
+
+def test_the_report_page_shows_the_comparison(promoted: dict) -> None:
+    good = promoted["jobs"]["good"]
+    with promoted["server"].client() as client:
+        page = client.get(f"/v1/jobs/{good['id']}/report").text
+    c = good["promotion"]["comparison"]
+    assert 'id="promotion"' in page and "moved to this job" in page
+    assert f"{c['interval'][0]:.4g}" in page and f"{c['interval'][1]:.4g}" in page

@@ -104,6 +104,17 @@ def get_model(model_id: str, session: SessionDep) -> ModelOut:
     return to_out(repository.get_model(session, model_id))
 
 
+@router.delete("/{model_id}", status_code=204,
+               summary="Delete a model (409 while a channel points at it)")
+def delete_model(model_id: str, session: SessionDep, store: StoreDep,
+                 request: Request) -> Response:
+    model = repository.delete_model(session, model_id)
+    session.commit()
+    store.delete(model.file_key)
+    request.app.state.predictors.forget(model_id)
+    return Response(status_code=204)
+
+
 @router.get("/{model_id}/drift", summary="Do the rows being scored look like the training rows?")
 async def get_drift(
     model_id: str, request: Request, settings: SettingsDep,
