@@ -111,6 +111,11 @@ class JobCreate(Strict):
     reproducible: bool = False
     selection: Literal["best", "one_se"] = "best"
     final_refit: Literal["train", "all"] = "train"
+    #: Classification: calibrate the served probabilities (a map fitted on the winner's
+    #: out-of-fold scores, kept only when it helps, written into the model file).
+    calibrate: bool = True
+    #: Run the fixed portfolio of strong configurations right after trial 0.
+    portfolio: bool = True
     warm_start_job_id: str | None = Field(default=None, min_length=1, max_length=64)
     # Binary only: the threshold the model serves labels with comes from these costs.
     decision: DecisionSpec | None = None
