@@ -164,6 +164,11 @@ class KeyChecker:
         self._known[digest] = known
         return known
 
+    def open_mode(self) -> bool:
+        """Requests need no key: a loopback server that has never had one."""
+        state = self.state()
+        return self.open_without_keys and not state.active_keys and not state.keys_have_existed
+
     def scope_of(self, secret: str) -> str | None:
         known = self.lookup(secret)
         return None if known is None else known.scope

@@ -13,6 +13,7 @@ import tuner.decision
 import tuner.drift
 from service import queue, repository
 from service.db import is_transient, session_scope, with_reconnect
+from service.errors import describe_failure
 from service.jobspec import RunPlan
 from service.storage import ArtifactStore, is_disk_full
 from tuner.evaluation.gain import gain_over_defaults
@@ -52,7 +53,7 @@ def evaluate_safely(fitted: tuner.FittedModel, run: RunPlan, url: str,
                               study_name=study_name, seed=run.config.seed)
     except Exception as exc:  # noqa: BLE001 - see the docstring
         log.error("job %s: evaluation failed:\n%s", job_id, traceback.format_exc())
-        return {"error": f"evaluation failed: {exc!r}", "warnings": []}
+        return {"error": f"evaluation failed: {describe_failure(exc)}", "warnings": []}
 
 
 def gain_safely(fitted: tuner.FittedModel, run: RunPlan, url: str, job_id: str,

@@ -19,6 +19,7 @@ import pandas as pd
 import tuner
 from service import comparing, queue, repository
 from service.db import is_transient, session_scope, with_reconnect
+from service.errors import describe_failure
 from service.jobspec import RunPlan
 from service.tables import JobStatus
 from service.worker import heartbeat
@@ -51,7 +52,9 @@ def run_job(ctx: WorkerContext, job_id: str, epoch: int | None = None) -> None:
                         job_id, type(exc).__name__)
             status, error, model_id = None, None, None
         else:
-            status, error, model_id = JobStatus.FAILED, f"internal error: {exc!r}", None
+            # The message is shown to every reader of the job: no paths or hosts in it.
+            status, model_id = JobStatus.FAILED, None
+            error = f"internal error: {describe_failure(exc)}"
             log.error("job %s crashed:\n%s", job_id, traceback.format_exc())
     finally:
         heartbeat.stop(flags, beat)
