@@ -84,7 +84,7 @@ class LiveServer:
 
 
 @contextmanager
-def live_server(home: Path, *, workers: int = 0, bench_routes: bool = False,
+def live_server(home: Path, *, workers: int | None = 0, bench_routes: bool = False,
                 env: dict[str, str] | None = None) -> Iterator[LiveServer]:
     """``grovekeeper serve`` (or the benchmark server with its echo route) on loopback."""
     port = free_port()
@@ -92,8 +92,9 @@ def live_server(home: Path, *, workers: int = 0, bench_routes: bool = False,
     if bench_routes:
         cmd = [sys.executable, "-m", "benchmarks._server", str(port)]
     else:
+        # workers=None: serve's own default (what suits the machine)
         cmd = [sys.executable, "-m", "service", "serve", "--port", str(port),
-               "--workers", str(workers)]
+               *([] if workers is None else ["--workers", str(workers)])]
     proc = subprocess.Popen(cmd, env=child, cwd=ROOT, stdout=subprocess.DEVNULL,
                             stderr=subprocess.DEVNULL)
     base = f"http://127.0.0.1:{port}"

@@ -97,6 +97,17 @@ class WorkerPool:
                 proc.kill()
 
 
+def default_workers(cores: int | None = None) -> int:
+    """Worker processes ``serve`` starts when not told: one per four cores, at least one.
+
+    A job already uses every core of its worker (parallel trials on small tables, LightGBM
+    threads on large ones), so one worker keeps a small machine busy; on a large one a few
+    more let several jobs run at once without each being squeezed onto a core or two.
+    """
+    cores = cores if cores is not None else (os.cpu_count() or 1)
+    return max(1, cores // 4)
+
+
 def cmd_serve(args: argparse.Namespace) -> int:
     from service.api.app import create_app
     from service.auth import any_key_exists
@@ -124,7 +135,7 @@ def cmd_serve(args: argparse.Namespace) -> int:
     # this process before it could stop its workers.
     signal.signal(signal.SIGTERM, _stop)
     signal.signal(signal.SIGINT, _stop)
-    pool = WorkerPool(settings, args.workers)
+    pool = WorkerPool(settings, default_workers() if args.workers is None else args.workers)
     pool.start()
     try:
         server.run()
@@ -236,8 +247,9 @@ def build_parser() -> argparse.ArgumentParser:
     common(serve)
     serve.add_argument("--host", default="127.0.0.1")
     serve.add_argument("--port", type=int, default=8000)
-    serve.add_argument("--workers", type=int, default=1,
-                       help="tuning worker processes to start beside the API (default 1)")
+    serve.add_argument("--workers", type=int, default=None,
+                       help="tuning worker processes to start beside the API (default: "
+                       "one per four cores, at least one; each job uses every core)")
     serve.set_defaults(func=cmd_serve)
 
     work = sub.add_parser("worker", help="run one tuning worker against the database")
@@ -278,7 +290,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> None:
     args = build_parser().parse_args(argv)
-    if getattr(args, "workers", 1) < 0:
+    if (getattr(args, "workers", 1) or 0) < 0:
         print("grovekeeper: --workers must be 0 or more", file=sys.stderr)
         sys.exit(2)
     sys.exit(args.func(args))

@@ -20,6 +20,7 @@ import pandas as pd
 import tuner
 from tuner.config import check_config
 from tuner.datachecks import job_warnings
+from tuner.errors import ConfigError
 from tuner.losses import default_metric_for, resolve_objective
 from tuner.metrics import default_metric, get_metric
 from tuner.space import DEFAULT_SPACE, effective_space, merge_overrides
@@ -46,6 +47,26 @@ def versions() -> dict[str, str]:
     return {"lightgbm": lightgbm.__version__, "optuna": optuna.__version__,
             "numpy": numpy.__version__, "pandas": pd.__version__,
             "python": platform.python_version()}
+
+
+def check_reproducible(request: dict[str, Any]) -> None:
+    """A reproducible job runs one trial at a time in one worker; anything else is a 422.
+
+    Parallel trials (threads or workers) finish in an order that depends on timing, and
+    the sampler proposes each new trial from the ones finished so far, so the trials
+    themselves would differ from run to run.
+    """
+    if not request.get("reproducible"):
+        return
+    errors = []
+    if (request.get("max_parallel_trials") or 1) > 1:
+        errors.append({"field": "max_parallel_trials", "message": "a reproducible job runs "
+                       "one trial at a time; leave max_parallel_trials at 1"})
+    if (request.get("max_workers") or 1) > 1:
+        errors.append({"field": "max_workers", "message": "a reproducible job runs in one "
+                       "worker; leave max_workers at 1"})
+    if errors:
+        raise ConfigError(f"reproducible: {errors[0]['message']}", errors)
 
 
 def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
@@ -81,7 +102,7 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
     plan = plan_validation(
         data,
         strategy=cv.get("strategy"),
-        n_folds=int(cv.get("folds", 5)),
+        n_folds=None if cv.get("folds") is None else int(cv["folds"]),
         holdout_fraction=float(request.get("holdout_fraction", 0.2)),
         seed=seed,
     )
@@ -89,6 +110,10 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
     data = dataclasses.replace(data, warnings=(*data.warnings, *job_warnings(data, plan)))
     budget = request.get("budget") or {}
     warm = request.get("warm_start") or {}
+    reproducible = bool(request.get("reproducible"))
+    check_reproducible(request)
+    given_parallel = request.get("max_parallel_trials")
+    auto = not reproducible and given_parallel is None and request.get("num_threads") is None
     config = tuner.SearchConfig(
         task=data.task,
         metric=metric.name,
@@ -98,8 +123,8 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
         space=space,
         objective=objective,
         pruner=request.get("pruner") or "median",
-        max_parallel_trials=int(request.get("max_parallel_trials") or 1),
-        num_threads=int(request.get("num_threads") or request.get("max_parallel_trials") or 1),
+        max_parallel_trials=int(given_parallel or 1),
+        num_threads=int(request.get("num_threads") or given_parallel or 1),
         selection=request.get("selection") or "best",
         final_refit=request.get("final_refit") or "train",
         warm_start=tuple(dict(p) for p in warm.get("params", [])),
@@ -108,6 +133,7 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
     sampled = effective_space(space, n_train_rows=plan.min_fit_rows).to_dict()
     cv_scheme = {
         "folds": len(plan.folds),
+        "partition_folds": plan.partition_folds,
         "strategy": plan.strategy,
         "group_column": cv.get("group_column"),
         "time_column": cv.get("time_column"),
@@ -133,6 +159,10 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
         "pruner": config.pruner,
         "max_parallel_trials": config.max_parallel_trials,
         "num_threads": config.num_threads,
+        "reproducible": reproducible,
+        # "machine": the worker picks parallel trials or threads from the table's size and
+        # its cores (then writes what it chose into max_parallel_trials / num_threads).
+        "parallelism": "machine" if auto else "given",
         "selection": config.selection,
         "final_refit": config.final_refit,
         "warm_start": ({"job_id": warm.get("job_id"), "trials": warm.get("trials", []),

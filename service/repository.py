@@ -133,6 +133,8 @@ def upsert_trial(session: Session, *, job_id: str, record: dict[str, Any]) -> No
         "boosting_rounds": record["boosting_rounds"],
         "duration_seconds": record["duration_seconds"],
         "train_seconds": record.get("train_seconds"),
+        "score_se": record.get("score_se"),
+        "fidelity": record.get("fidelity"),
     }
     if record.get("worker_id") is not None:
         values["worker_id"] = record["worker_id"]
@@ -154,7 +156,9 @@ def leaderboard(
     session: Session, *, job_id: str, direction: str, limit: int | None
 ) -> tuple[Sequence[Trial], int]:
     order = Trial.score.desc() if direction == "maximize" else Trial.score.asc()
-    where = (Trial.job_id == job_id, Trial.state == "complete", Trial.score.is_not(None))
+    # Only trials scored on all the search rows compete (a lower fidelity is no rival).
+    where = (Trial.job_id == job_id, Trial.state == "complete", Trial.score.is_not(None),
+             sa.or_(Trial.fidelity.is_(None), Trial.fidelity >= 1.0))
     query = sa.select(Trial).where(*where).order_by(order, Trial.number)
     if limit is not None:
         query = query.limit(limit)

@@ -120,6 +120,8 @@ class Trial(Base):
     boosting_rounds: Mapped[int | None]
     duration_seconds: Mapped[float | None]
     train_seconds: Mapped[float | None]
+    score_se: Mapped[float | None]
+    fidelity: Mapped[float | None]
     # The worker that recorded the trial (None for trials re-synced after a crash).
     worker_id: Mapped[str | None] = mapped_column(sa.String(120))
     finished_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)

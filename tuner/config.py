@@ -47,13 +47,18 @@ class SearchConfig:
     warm_start: tuple[dict[str, Any], ...] = ()
 
 
-#: ``median``: prune a trial whose running mean over its first folds is worse than the
-#: median of earlier trials after as many folds. ``halving``: successive halving with
-#: folds as the resource (keep the best half at 2 and 4 folds). ``none``: no pruning.
+#: ``median``: prune a trial whose score so far (inside a fold at the boosting
+#: checkpoints, or the running mean over its first folds) is worse than the median of
+#: earlier trials at the same step. ``halving``: successive halving with folds as the
+#: resource (keep the best half at 2 and 4 folds). ``none``: no pruning.
 
 
-def make_pruner(name: str, *, n_warmup_steps: int = 0) -> optuna.pruners.BasePruner:
-    """The pruner called ``name`` (see :data:`PRUNERS`); steps are folds (0-based).
+def make_pruner(name: str, *, n_warmup_steps: int = 0,
+                fold_steps: int = 1) -> optuna.pruners.BasePruner:
+    """The pruner called ``name`` (see :data:`PRUNERS`).
+
+    Steps count boosting rounds over folds: fold ``k`` ends at step
+    ``(k + 1) * fold_steps`` (``tuner.objective.pruner_step``).
 
     Raises:
         ConfigError: Unknown name (field ``pruner``).
@@ -61,7 +66,8 @@ def make_pruner(name: str, *, n_warmup_steps: int = 0) -> optuna.pruners.BasePru
     if name == "median":
         return optuna.pruners.MedianPruner(n_startup_trials=5, n_warmup_steps=n_warmup_steps)
     if name == "halving":
-        return optuna.pruners.SuccessiveHalvingPruner(min_resource=1, reduction_factor=2)
+        return optuna.pruners.SuccessiveHalvingPruner(min_resource=2 * fold_steps,
+                                                      reduction_factor=2)
     if name == "none":
         return optuna.pruners.NopPruner()
     message = f"unknown pruner '{name}'; use one of {', '.join(PRUNERS)}"

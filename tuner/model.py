@@ -27,7 +27,7 @@ class FittedModel:
     Attributes:
         params: The complete LightGBM parameters used (shared and tuned).
         classes: Original class labels, index = encoded class (``None`` for regression).
-        cv: ``{"metric", "mean", "std", "fold_scores"}`` of the chosen trial.
+        cv: ``{"metric", "mean", "std", "se", "fold_scores"}`` of the chosen trial.
         holdout: ``score_all`` on the hold-out rows plus ``"rows"``; ``{}`` without one.
         feature_importance: ``[{"feature", "gain", "split"}]``, sorted by gain, descending.
     """
@@ -116,7 +116,7 @@ def fit_final(data: PreparedData, plan: ValidationPlan, config: SearchConfig,
         booster=booster, task=data.task, metric=config.metric, params=params,
         boosting_rounds=best.boosting_rounds, classes=data.classes, schema=data.schema,
         cv={"metric": config.metric, "mean": best.score, "std": best.score_std,
-            "fold_scores": list(best.fold_scores)},
+            "se": best.score_se, "fold_scores": list(best.fold_scores)},
         holdout=holdout, feature_importance=_importance(booster, data.schema.names),
         train_seconds=seconds, refit=refit,
     )

@@ -15,6 +15,7 @@ import optuna
 from tuner._lgb import base_params, frame_matrix, make_dataset, predict
 from tuner.dataset import PreparedData
 from tuner.metrics import Metric
+from tuner.selection import split_standard_error, standard_error
 from tuner.space import SearchSpace, suggest
 from tuner.validation import ValidationPlan
 
@@ -58,6 +59,77 @@ class _Fold:
     build_seconds: float = 0.0
 
 
+#: Boosting progress (rounds x learning rate) at which a fold's best validation score so
+#: far is reported to the pruner: 2.5, 5, 10, 20, … (doubling, so a long fold costs a
+#: handful of storage writes). Trials are compared at equal progress, not equal rounds:
+#: a trial with a tenth of the learning rate is compared after ten times the rounds, so
+#: slow learners are not pruned for being slow (25 rounds at 0.1 ~ 250 rounds at 0.01).
+CHECKPOINT_FIRST = 2.5
+#: Pruner steps per unit of progress (steps are integers).
+_STEPS_PER_UNIT = 10
+
+
+def fold_steps(max_rounds: int) -> int:
+    """Pruner steps one fold spans: its largest possible progress (learning rate <= 1)."""
+    return _STEPS_PER_UNIT * max_rounds
+
+
+def checkpoints(max_rounds: int) -> tuple[int, ...]:
+    """In-fold checkpoints as pruner steps within a fold (progress x 10): 25, 50, 100, …"""
+    out, level = [], int(CHECKPOINT_FIRST * _STEPS_PER_UNIT)
+    while level < fold_steps(max_rounds):
+        out.append(level)
+        level *= 2
+    return tuple(out)
+
+
+def pruner_step(fold: int, within: int, max_rounds: int) -> int:
+    """The pruner's step for checkpoint ``within`` (progress x 10) of fold ``fold``.
+
+    A fold's final score is reported at ``within = fold_steps(max_rounds)``, its end, so
+    every trial reports it at the same step whatever round early stopping ended it at.
+    """
+    return fold * fold_steps(max_rounds) + within
+
+
+class _Checkpoints:
+    """LightGBM callback: report the fold's best validation score so far at the
+    checkpoints and stop the trial when the pruner says so; poll ``should_stop`` every
+    round so a cancel ends training within a round, not after the fold."""
+
+    order = 40  # after LightGBM's early stopping (order 30) has seen the round
+
+    def __init__(self, trial: optuna.Trial, fold: int, max_rounds: int, sign: float,
+                 learning_rate: float, should_stop: Callable[[], bool] | None) -> None:
+        self.trial, self.fold, self.max_rounds, self.sign = trial, fold, max_rounds, sign
+        self.should_stop = should_stop
+        self.rate = float(learning_rate)
+        self.pending = list(checkpoints(max_rounds))
+        self.best: float | None = None
+        self.rounds = 0
+
+    def __call__(self, env: lgb.callback.CallbackEnv) -> None:
+        self.rounds = env.iteration + 1
+        if self.should_stop is not None and self.should_stop():
+            raise optuna.TrialPruned("the search was asked to stop")
+        if not env.evaluation_result_list:
+            return
+        _, _, value, higher_better = env.evaluation_result_list[0][:4]
+        # In the study's direction: LightGBM's early-stopping metric may run the other
+        # way (l2 for r2); every trial reports the same metric at the same step.
+        value = float(value) * (self.sign if higher_better else -self.sign)
+        self.best = value if self.best is None else (
+            max(self.best, value) if self.sign > 0 else min(self.best, value))
+        progress = self.rounds * self.rate * _STEPS_PER_UNIT
+        reached = None
+        while self.pending and self.pending[0] <= progress + 1e-9:
+            reached = self.pending.pop(0)
+        if reached is not None:
+            self.trial.report(self.best, pruner_step(self.fold, reached, self.max_rounds))
+            if self.trial.should_prune():
+                raise optuna.TrialPruned(f"pruned at round {self.rounds} of fold {self.fold}")
+
+
 def refit_rounds(best_iterations: list[int], n_folds: int, strategy: str) -> int:
     """Boosting rounds for the final model, fit on all training rows.
 
@@ -74,13 +146,15 @@ def refit_rounds(best_iterations: list[int], n_folds: int, strategy: str) -> int
 class CVObjective:
     """Mean CV score of one sampled LightGBM configuration.
 
-    Folds run one after another. After each fold the running mean is reported to the trial
-    so the pruner can stop unpromising configurations early. Trial user attributes:
+    Folds run one after another. Inside each fold the best validation score so far is
+    reported at the :func:`checkpoints` (boosting progress), and after each fold the
+    running mean, so the pruner can stop unpromising configurations early, inside the first
+    fold too (steps count progress over folds: :func:`pruner_step`). Trial user attributes:
     ``params`` (every LightGBM parameter sampled or fixed), ``fold_scores``,
     ``best_iterations``, ``train_seconds``, ``rounds_trained`` (rounds boosted, patience
-    included) and, for completed trials, ``score_std`` and ``boosting_rounds`` (see
-    :func:`refit_rounds`).
-    """
+    included), ``fidelity`` and, for completed trials, ``score_std`` (``None`` with one
+    split), ``score_se`` (over folds, or by batch means on a single split) and
+    ``boosting_rounds`` (see :func:`refit_rounds`). """
 
     def __init__(
         self,
@@ -105,7 +179,8 @@ class CVObjective:
             max_rounds: Upper bound of boosting rounds per fold.
             early_stopping_rounds: Rounds without improvement of the fold's validation
                 metric before a fold stops.
-            should_stop: Polled before each fold; ``True`` prunes the running trial.
+            should_stop: Polled before each fold and every boosting round; ``True``
+                prunes the running trial.
         """
         self.task = data.task
         self.metric = metric
@@ -156,24 +231,44 @@ class CVObjective:
         folds[k] = cached
         return cached
 
-    def _fit_fold(self, params: dict[str, Any], k: int) -> tuple[float, int, float, int]:
+    def _fit_fold(self, params: dict[str, Any], k: int, trial: optuna.Trial,
+                  progress: dict[str, float]) -> tuple[float, int, float, int, float | None]:
+        """Train fold ``k``: ``(score, best round, seconds, rounds trained, score SE)``.
+
+        The SE is given for a single validation split only (batch means over its rows).
+        ``progress`` collects the rounds and seconds of a fold that was stopped.
+        """
         fold = self._fold(k, params)
         started = time.perf_counter()
-        booster = lgb.train(
-            params, fold.train_set, num_boost_round=self.max_rounds,
-            valid_sets=[fold.valid_set], valid_names=["valid"],
-            callbacks=[lgb.early_stopping(self.early_stopping_rounds, first_metric_only=True,
-                                          verbose=False)],
-        )
+        sign = 1.0 if self.metric.direction == "maximize" else -1.0
+        watch = _Checkpoints(trial, k, self.max_rounds, sign,
+                             params.get("learning_rate", 0.1), self.should_stop)
+        try:
+            booster = lgb.train(
+                params, fold.train_set, num_boost_round=self.max_rounds,
+                valid_sets=[fold.valid_set], valid_names=["valid"],
+                callbacks=[lgb.early_stopping(self.early_stopping_rounds,
+                                              first_metric_only=True, verbose=False), watch],
+            )
+        except optuna.TrialPruned:
+            progress["rounds"] = watch.rounds
+            progress["seconds"] = time.perf_counter() - started + fold.build_seconds
+            fold.build_seconds = 0.0
+            raise
         seconds = time.perf_counter() - started + fold.build_seconds
         fold.build_seconds = 0.0
         best = int(booster.best_iteration or booster.current_iteration())
         # Early stopping fires after `patience` rounds without gain, else the cap ends it.
         trained = min(self.max_rounds, best + self.early_stopping_rounds)
-        if self._lgb_score is not None and fold.both_classes:
-            return float(booster.best_score["valid"][self._lgb_score]), best, seconds, trained
+        single = len(self.plan.folds) == 1
+        if self._lgb_score is not None and fold.both_classes and not single:
+            score = float(booster.best_score["valid"][self._lgb_score])
+            return score, best, seconds, trained, None
         pred = predict(booster, self.task, fold.X_valid, num_iteration=best)
-        return self.metric(fold.y_valid, pred, fold.w_valid), best, seconds, trained
+        score = self.metric(fold.y_valid, pred, fold.w_valid)
+        se = (split_standard_error(self.metric, fold.y_valid, pred, fold.w_valid)
+              if single else None)
+        return score, best, seconds, trained, se
 
     def __call__(self, trial: optuna.Trial) -> float:
         """Run the folds for one trial and return the mean score.
@@ -188,11 +283,19 @@ class CVObjective:
         seconds = 0.0
         trained = 0  # rounds actually boosted, early-stopping patience included
         last = len(self.plan.folds) - 1
+        split_se: float | None = None
+        progress: dict[str, float] = {}
         try:
             for k in range(len(self.plan.folds)):
                 if self.should_stop is not None and self.should_stop():
                     raise optuna.TrialPruned("the search was asked to stop")
-                score, best, spent, rounds = self._fit_fold(full, k)
+                try:
+                    score, best, spent, rounds, split_se = self._fit_fold(full, k, trial,
+                                                                          progress)
+                except optuna.TrialPruned:
+                    seconds += progress.get("seconds", 0.0)
+                    trained += int(progress.get("rounds", 0))
+                    raise
                 scores.append(float(score))
                 iterations.append(best)
                 seconds += spent
@@ -200,7 +303,9 @@ class CVObjective:
                 # After the last fold nothing is left to save, so nothing is reported:
                 # every report is a storage write.
                 if k < last:
-                    trial.report(float(np.mean(scores)), step=k)
+                    trial.report(float(np.mean(scores)),
+                                 step=pruner_step(k, fold_steps(self.max_rounds),
+                                                  self.max_rounds))
                     if trial.should_prune():
                         raise optuna.TrialPruned(f"pruned after fold {k}")
         finally:
@@ -209,9 +314,13 @@ class CVObjective:
             record: dict[str, Any] = {"params": params, "fold_scores": scores,
                                       "best_iterations": iterations,
                                       "train_seconds": seconds, "rounds_trained": trained}
+            record["fidelity"] = 1.0
             if len(scores) == len(self.plan.folds):
-                record["score_std"] = float(np.std(scores))
-                record["boosting_rounds"] = refit_rounds(iterations, self.plan.n_folds,
+                # One split has no spread over folds: its SE comes from its rows.
+                record["score_std"] = float(np.std(scores)) if len(scores) > 1 else None
+                record["score_se"] = standard_error(scores) if len(scores) > 1 else split_se
+                record["boosting_rounds"] = refit_rounds(iterations,
+                                                         self.plan.partition_folds,
                                                          self.plan.strategy)
             trial.set_user_attr("record", record)
         return float(np.mean(scores))

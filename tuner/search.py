@@ -13,7 +13,7 @@ from tuner.config import SearchConfig, check_config
 from tuner.dataset import PreparedData
 from tuner.errors import TunerError
 from tuner.metrics import get_metric
-from tuner.objective import CVObjective
+from tuner.objective import CVObjective, checkpoints, fold_steps, pruner_step
 from tuner.space import fit_into_space, initial_params
 from tuner.study import fail_running, open_study
 from tuner.trial_loop import optimize_budgeted, threads_per_trial
@@ -87,7 +87,11 @@ def run_search(
     study = open_study(
         storage_url, study_name, direction=metric.direction, seed=config.seed,
         create=not join, n_startup_trials=config.n_startup_trials,
-        n_warmup_steps=max(0, config.pruner_warmup_folds - 1),
+        # Inside the first warm-up fold, not before its second checkpoint.
+        n_warmup_steps=pruner_step(max(0, config.pruner_warmup_folds - 1),
+                                   (*checkpoints(config.max_rounds), 0, 0)[1],
+                                   config.max_rounds),
+        fold_steps=fold_steps(config.max_rounds),
         initial_params=initial_params(config.space, n_train_rows=rows),
         pruner=config.pruner,
         warm_start=tuple(fit_into_space(p, config.space, n_train_rows=rows)

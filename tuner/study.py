@@ -62,6 +62,7 @@ def open_study(
     create: bool,
     n_startup_trials: int = 8,
     n_warmup_steps: int = 0,
+    fold_steps: int = 1,
     initial_params: dict[str, Any] | None = None,
     pruner: str = "median",
     warm_start: tuple[dict[str, Any], ...] = (),
@@ -81,7 +82,8 @@ def open_study(
         create: Create the study if missing and, when it has no trials yet, enqueue
             ``initial_params`` as trial 0; otherwise the study must exist.
         n_startup_trials: Random trials before TPE starts modelling.
-        n_warmup_steps: Folds reported before pruning is allowed, minus one.
+        n_warmup_steps: The first pruner step at which pruning is allowed.
+        fold_steps: Pruner steps per fold (the rounds cap; see :func:`make_pruner`).
         initial_params: Trial 0's parameters; defaults to :data:`LIGHTGBM_DEFAULTS`.
         pruner: One of :data:`tuner.config.PRUNERS` (see :func:`make_pruner`).
         warm_start: Parameter sets enqueued after trial 0 in a new study (duplicates of
@@ -110,7 +112,7 @@ def open_study(
     # trials still running count as bad results, so parallel trials spread out.
     sampler = optuna.samplers.TPESampler(seed=sampler_seed, n_startup_trials=n_startup_trials,
                                          constant_liar=True)
-    chosen_pruner = make_pruner(pruner, n_warmup_steps=n_warmup_steps)
+    chosen_pruner = make_pruner(pruner, n_warmup_steps=n_warmup_steps, fold_steps=fold_steps)
     if not create:
         return optuna.load_study(study_name=study_name, storage=storage, sampler=sampler,
                                  pruner=chosen_pruner)

@@ -21,9 +21,28 @@ def threads_per_trial(num_threads: int, max_parallel_trials: int) -> int:
 
     The thread budget is divided, never multiplied: k trials on k cores with one thread
     each, rather than k trials each asking for every core. Idle OpenMP threads busy-wait
-    and starve their neighbours (LIBRARIES.md section 3, threads versus processes).
+    and starve their neighbours.
     """
     return max(1, num_threads // max(1, max_parallel_trials))
+
+
+#: Search rows from which one trial at a time on every core beats one trial per core:
+#: LightGBM's threads split each round's histogram work, which pays once a round has
+#: enough rows to share (benchmarks/parallel.py measures both on a small and a large
+#: table); below it parallel trials keep every core busy without thread overhead.
+THREADS_FROM_ROWS = 50_000
+
+
+def machine_split(search_rows: int, cores: int) -> tuple[int, int]:
+    """``(max_parallel_trials, num_threads)`` that use all ``cores`` for one search.
+
+    Small tables: one trial per core, one LightGBM thread each. From
+    :data:`THREADS_FROM_ROWS` search rows: one trial at a time on every core.
+    """
+    cores = max(1, cores)
+    if search_rows >= THREADS_FROM_ROWS:
+        return 1, cores
+    return cores, cores
 
 
 def optimize_budgeted(

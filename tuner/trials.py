@@ -31,6 +31,10 @@ class TrialRecord:
     boosting_rounds: int | None = None
     duration_seconds: float | None = None
     train_seconds: float | None = None
+    #: Standard error of ``score``: over folds, or by batch means on a single split.
+    score_se: float | None = None
+    #: Largest share of the search rows the trial was scored on (1.0 = all).
+    fidelity: float | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """Return the record as a JSON-ready dict."""
@@ -72,6 +76,8 @@ def record_from_frozen(ft: FrozenTrial) -> TrialRecord:
         boosting_rounds=attrs.get("boosting_rounds") if complete else None,
         duration_seconds=ft.duration.total_seconds() if ft.duration is not None else None,
         train_seconds=attrs.get("train_seconds"),
+        score_se=attrs.get("score_se") if complete else None,
+        fidelity=attrs.get("fidelity", 1.0 if "params" in attrs or complete else None),
     )
 
 

@@ -8,6 +8,7 @@ The hold-out never takes part in the search; it is scored once, by the final mod
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -19,6 +20,32 @@ from vocabulary import CV_STRATEGIES as STRATEGIES
 
 Fold = tuple[np.ndarray, np.ndarray]
 
+#: Folds of the partition the search rows are cut into (each fit on 80%, validated on 20%).
+PARTITION_FOLDS = 5
+#: Bound on a validation score's standard error, in units of the per-row standard deviation
+#: of the metric's loss: a mean over ``m`` validation rows has standard error
+#: ``sd / sqrt(m)``, so the bound holds once ``(1 / SE_BOUND) ** 2 = 40,000`` rows are
+#: scored. Below that every fold of the partition is used (the best the rows allow).
+SE_BOUND = 0.005
+#: Validation rows that keep the standard error under :data:`SE_BOUND`.
+SE_ROWS = int(round((1 / SE_BOUND) ** 2))
+
+
+def validation_splits(n_search_rows: int, partition: int = PARTITION_FOLDS) -> int:
+    """How many folds of a ``partition``-fold split the search scores trials on.
+
+    Each fold validates on ``n_search_rows / partition`` rows; enough folds are used to
+    score :data:`SE_ROWS` rows in all, never more than the partition has and never fewer
+    than one (a single validation split on large tables). With 5 folds: all 5 below
+    50,000 search rows, 4 up to 66,666, 3 up to 100,000, 2 up to 200,000, 1 from there.
+    Every fold still fits on ``(partition - 1) / partition`` of the rows, so the scores
+    mean the same whatever the count; only their standard error changes.
+    """
+    if n_search_rows <= 0:
+        return partition
+    per_fold = n_search_rows / partition
+    return max(1, min(partition, math.ceil(SE_ROWS / per_fold - 1e-9)))
+
 
 @dataclass(frozen=True)
 class ValidationPlan:
@@ -29,17 +56,25 @@ class ValidationPlan:
         holdout_idx: Sorted positions of the hold-out rows (may be empty).
         folds: ``(fit, valid)`` pairs of sorted positions **into** ``train_idx``.
         strategy: One of :data:`STRATEGIES`.
+        partition: Folds the train part was cut into; ``folds`` may hold only the first
+            of them (see :func:`validation_splits`). 0: as many as ``folds`` holds.
     """
 
     train_idx: np.ndarray
     holdout_idx: np.ndarray
     folds: tuple[Fold, ...]
     strategy: str
+    partition: int = 0
 
     @property
     def n_folds(self) -> int:
-        """Number of CV folds."""
+        """Number of CV folds the search scores trials on."""
         return len(self.folds)
+
+    @property
+    def partition_folds(self) -> int:
+        """Folds of the partition (each fold fits on ``(k - 1) / k`` of the train part)."""
+        return self.partition or len(self.folds)
 
     @property
     def min_fit_rows(self) -> int:
@@ -105,7 +140,7 @@ def plan_validation(
     data: PreparedData,
     *,
     strategy: str | None = None,
-    n_folds: int = 5,
+    n_folds: int | None = None,
     holdout_fraction: float = 0.2,
     seed: int = 0,
 ) -> ValidationPlan:
@@ -120,7 +155,10 @@ def plan_validation(
     Args:
         data: Prepared data; ``groups`` / ``times`` are needed by ``group`` / ``time``.
         strategy: One of :data:`STRATEGIES`, or ``None`` for the task's default.
-        n_folds: Number of CV folds, at least 2.
+        n_folds: Number of CV folds, at least 2, all of them scored. ``None``: a
+            :data:`PARTITION_FOLDS`-fold partition of which only as many folds are scored
+            as keep the score's standard error under :data:`SE_BOUND`
+            (:func:`validation_splits`; on time folds, the latest ones).
         holdout_fraction: Share of rows held out, in ``[0, 0.9]``; 0 gives no hold-out.
         seed: Seeds every shuffle, so equal inputs give equal plans.
 
@@ -141,6 +179,9 @@ def plan_validation(
     if strategy == "stratified" and not classify:
         message = "stratified folds need a classification task; use kfold"
         raise ConfigError(message, [{"field": "cv.strategy", "message": message}])
+    auto = n_folds is None
+    if auto:
+        n_folds = PARTITION_FOLDS
     if not isinstance(n_folds, int) or n_folds < 2:
         raise ConfigError("n_folds must be an integer >= 2",
                           [{"field": "cv.folds", "message": "must be an integer >= 2"}])
@@ -187,5 +228,10 @@ def plan_validation(
         splits = GroupKFold(n_folds, shuffle=True, random_state=seed32).split(train, groups=groups)
     else:
         splits = _time_folds(data.times[train], n_folds)
-    folds = tuple((_sorted(fit), _sorted(valid)) for fit, valid in splits)
-    return ValidationPlan(train_idx=train, holdout_idx=holdout, folds=folds, strategy=strategy)
+    folds = [(_sorted(fit), _sorted(valid)) for fit, valid in splits]
+    if auto:
+        used = validation_splits(len(train), n_folds)
+        # Time folds: the latest blocks, which fit on the most history.
+        folds = folds[n_folds - used:] if strategy == "time" else folds[:used]
+    return ValidationPlan(train_idx=train, holdout_idx=holdout, folds=tuple(folds),
+                          strategy=strategy, partition=n_folds)

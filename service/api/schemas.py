@@ -35,7 +35,8 @@ class Budget(Strict):
 
 
 class CVSpec(Strict):
-    folds: int = Field(default=5, ge=2, le=20)
+    # None: chosen from the search rows (tuner.validation.validation_splits).
+    folds: int | None = Field(default=None, ge=2, le=20)
     strategy: Strategy | None = None
     group_column: str | None = None
     time_column: str | None = None
@@ -92,10 +93,15 @@ class JobCreate(Strict):
     # Regression loss: regression (squared error), poisson, tweedie, huber, quantile.
     objective: str | None = None
     pruner: Literal["median", "halving", "none"] = "median"
-    max_parallel_trials: int = Field(default=1, ge=1, le=64)
+    # Trials one worker runs at once. None: chosen from the table's size to use every core
+    # of the worker (tuner.trial_loop.machine_split), or 1 for a reproducible job.
+    max_parallel_trials: int | None = Field(default=None, ge=1, le=64)
     # LightGBM threads this job's running trials share in one worker (divided among them,
-    # at least one each, never more than the worker's cores); default one per trial.
+    # at least one each, never more than the worker's cores); default as above.
     num_threads: int | None = Field(default=None, ge=1, le=64)
+    # Byte-identical results (same data, seed and settings: same trials, same model file):
+    # one trial at a time in one worker.
+    reproducible: bool = False
     selection: Literal["best", "one_se"] = "best"
     final_refit: Literal["train", "all"] = "train"
     warm_start_job_id: str | None = Field(default=None, min_length=1, max_length=64)
@@ -180,6 +186,10 @@ class TrialOut(BaseModel):
     boosting_rounds: int | None
     duration_seconds: float | None
     train_seconds: float | None = None
+    # Standard error of score (over folds; by batch means on a single validation split).
+    score_se: float | None = None
+    # Largest share of the search rows the trial was scored on (1.0 = all).
+    fidelity: float | None = None
 
 
 class LeaderboardRow(BaseModel):
@@ -187,6 +197,7 @@ class LeaderboardRow(BaseModel):
     number: int
     score: float
     score_std: float | None
+    score_se: float | None = None
     params: dict[str, Any]
     boosting_rounds: int | None
 

@@ -19,6 +19,7 @@ from service.jobspec import RunPlan, build_run
 from service.settings import Settings
 from service.storage import ArtifactStore
 from service.tables import utcnow
+from tuner.trial_loop import machine_split
 
 
 @dataclass
@@ -60,9 +61,17 @@ def load_job(ctx: WorkerContext, job_id: str) -> LoadedJob:
     # Parallel trials share this worker's cores: never more trials or LightGBM threads
     # than cores (tuner divides num_threads among the trials; default one each).
     cores = os.cpu_count() or 1
-    parallel = max(1, min(run.config.max_parallel_trials, cores))
+    parallel, threads = run.config.max_parallel_trials, run.config.num_threads
+    if run.effective.get("parallelism") == "machine":
+        # Neither was asked for: every core, as trials or as threads by the table's size.
+        # A job shared by several workers runs one trial at a time in each (on all its
+        # cores), which keeps the budget bound: at most one trial per other worker over.
+        parallel, threads = machine_split(len(run.plan.train_idx), cores)
+        if max_workers > 1:
+            parallel = 1
+    parallel = max(1, min(parallel, cores))
     config = dataclasses.replace(run.config, max_parallel_trials=parallel,
-                                 num_threads=min(run.config.num_threads, cores))
+                                 num_threads=min(threads, cores))
     if config.timeout is not None and started_at is not None:
         # budget.seconds is the job's wall-clock limit from its first start: a resumed
         # job, or a worker joining late, gets what is left of it, not a fresh one.

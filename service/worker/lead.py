@@ -48,10 +48,21 @@ def run_job(ctx: WorkerContext, job_id: str) -> None:
             log.info("job %s %s", job_id, status.value)
 
 
+def _record_parallelism(ctx: WorkerContext, job_id: str, config: tuner.SearchConfig) -> None:
+    """Write what this worker chose for the job (trials at once, threads) into its spec."""
+    with session_scope(ctx.url) as session:
+        row = repository.get_job(session, job_id)
+        effective = {**row.spec["effective"], "max_parallel_trials": config.max_parallel_trials,
+                     "num_threads": config.num_threads}
+        row.spec = {**row.spec, "effective": effective}
+
+
 def _execute(ctx: WorkerContext, job_id: str, flags: heartbeat.JobFlags) -> Outcome:
     job = load_job(ctx, job_id)
     run, config = job.run, job.config
     resync_trials(ctx.url, job_id, job.study_name)
+    if run.effective.get("parallelism") == "machine":
+        _record_parallelism(ctx, job_id, config)
 
     def should_stop() -> bool:
         return flags.cancel or flags.lost or ctx.shutdown.is_set()

@@ -21,8 +21,10 @@ def record_trial(url: str, job_id: str, worker_id: str, record: tuner.TrialRecor
         repository.upsert_trial(session, job_id=job_id,
                                 record={**record.to_dict(), "worker_id": worker_id})
         refresh_progress(session, job_id)
+    # Parallel trials call this from the sampler's threads, which do not inherit the
+    # worker's log context: name the job and worker on the line itself.
     log.info("trial %d %s, score %s", record.number, record.state, record.score,
-             extra={"trial": record.number})
+             extra={"trial": record.number, "job_id": job_id, "worker_id": worker_id})
 
 
 def resync_trials(url: str, job_id: str, study_name: str) -> None:

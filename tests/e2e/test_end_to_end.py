@@ -69,6 +69,9 @@ def test_progress_and_trials(server: Server, kiln_job: dict) -> None:
         assert len(t["fold_scores"]) == 5
         assert t["score"] == pytest.approx(np.mean(t["fold_scores"]))
         assert t["boosting_rounds"] >= 1 and t["duration_seconds"] > 0
+        # Few rows: all five folds; the standard error of their mean (ddof=1 / sqrt(5)).
+        assert t["score_se"] == pytest.approx(np.std(t["fold_scores"], ddof=1) / np.sqrt(5))
+    assert all(t["fidelity"] == 1.0 for t in trials)
     assert progress["best_score"] == max(t["score"] for t in complete)
 
 
@@ -87,6 +90,8 @@ def test_leaderboard_json_and_csv(server: Server, kiln_job: dict) -> None:
     assert [int(r["number"]) for r in rows] == [r["number"] for r in board["data"]]
     assert float(rows[0]["score"]) == pytest.approx(scores[0])
     assert "num_leaves" in rows[0]
+    assert all(r["score_se"] > 0 for r in board["data"])
+    assert float(rows[0]["score_se"]) == pytest.approx(board["data"][0]["score_se"])
 
 
 def test_served_predictions_match_lightgbm(server: Server, kiln_job: dict, tmp_path) -> None:

@@ -30,7 +30,9 @@ def _trials(client, job: dict) -> list[dict]:
 def jobs(server: Server) -> dict:
     with server.client() as client:
         ds = upload_csv(client, kilns(n_rows=300, seed=4), "kilns")["id"]
-        out = {"a": _run(client, ds), "b": _run(client, ds),
+        # Reproducible jobs: one trial at a time, the same trials and the same model file.
+        same = {"reproducible": True}
+        out = {"a": _run(client, ds, **same), "b": _run(client, ds, **same),
                "one_se": _run(client, ds, selection="one_se", budget={"trials": 8})}
         out["warm"] = _run(client, ds, warm_start_job_id=out["one_se"]["id"], seed=12,
                            final_refit="all", max_parallel_trials=2)
@@ -52,6 +54,7 @@ def test_same_seed_same_trials_and_byte_identical_model(server: Server, jobs: di
     assert len(runs[0][0]) == 5
     assert runs[0] == runs[1]
     assert jobs["a"]["spec"]["manifest"] == jobs["b"]["spec"]["manifest"]
+    assert jobs["a"]["spec"]["reproducible"] and jobs["a"]["spec"]["max_parallel_trials"] == 1
 
 
 def test_one_se_rule_on_a_real_job(server: Server, jobs: dict) -> None:

@@ -178,8 +178,9 @@ def test_sse_metrics_and_logs_follow_a_real_job(server: Server, table: Path) -> 
     assert events[-1][1]["status"] == "succeeded" == final["status"]
     assert kinds.count("status") >= 2 and events[0][0] == "status"
     trial_events = [d for k, d in events if k == "trial"]
-    assert [d["number"] for d in trial_events] == [t["number"] for t in trials]
-    assert [d["state"] for d in trial_events] == [t["state"] for t in trials]
+    # Parallel trials (the machine's default on a small table) finish in any order.
+    streamed = sorted((d["number"], d["state"]) for d in trial_events)
+    assert streamed == [(t["number"], t["state"]) for t in trials]
     assert len(trials) == TRIALS
     assert all(not d["final"] for k, d in events[:-1] if k == "status")
 

@@ -72,6 +72,13 @@ def test_objective_and_metric_mismatches_name_the_fields(api: LiveApi) -> None:
                        422, "num_threads")
         assert_problem(client.post("/v1/jobs", json={**job, "warm_start_job_id": "job_nope"}),
                        422, "warm_start_job_id")
+        # Parallel trials or workers finish in an order that depends on timing.
+        both = assert_problem(client.post("/v1/jobs", json={
+            **job, "reproducible": True, "max_parallel_trials": 2, "max_workers": 3}),
+            422, "max_parallel_trials")
+        assert [e["field"] for e in both["errors"]] == ["max_parallel_trials", "max_workers"]
+        assert_problem(client.post("/v1/jobs", json={**job, "reproducible": True,
+                                                     "max_workers": 2}), 422, "max_workers")
         assert client.get("/v1/jobs").json()["count"] == 0
 
 
@@ -96,9 +103,17 @@ def test_effective_spec_has_objective_space_and_manifest(api: LiveApi) -> None:
     manifest = spec["manifest"]
     assert manifest["dataset_sha256"] == dataset["sha256"]
     assert manifest["search_space"] == spec["search_space"] and manifest["seed"] == 3
-    assert manifest["cv"] == {"folds": 5, "strategy": "kfold", "group_column": None,
-                              "time_column": None}
+    assert manifest["cv"] == {"folds": 5, "partition_folds": 5, "strategy": "kfold",
+                              "group_column": None, "time_column": None}
     assert manifest["versions"]["lightgbm"] == lightgbm.__version__
     assert manifest["versions"]["optuna"] == optuna.__version__
     assert manifest["versions"]["numpy"] == numpy.__version__
     assert manifest["versions"]["pandas"] == pd.__version__
+
+
+def test_serve_starts_a_worker_per_four_cores() -> None:
+    from service.cli import build_parser, default_workers
+
+    assert [default_workers(c) for c in (1, 2, 4, 7, 8, 16)] == [1, 1, 1, 1, 2, 4]
+    assert build_parser().parse_args(["serve"]).workers is None  # chosen at start
+    assert build_parser().parse_args(["serve", "--workers", "3"]).workers == 3

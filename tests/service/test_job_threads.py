@@ -17,7 +17,8 @@ from tuner.objective import CVObjective
 
 CASES = [
     # (job fields, cores, LightGBM threads each CV fold got)
-    ({}, 2, {1}),  # the default: one trial, one thread
+    ({}, 2, {1}),  # the default on a small table: a trial per core, one thread each
+    ({"reproducible": True}, 2, {1}),  # one trial at a time, one thread
     ({"max_parallel_trials": 2}, 2, {1}),  # two trials split the two threads
     ({"max_parallel_trials": 1, "num_threads": 2}, 2, {2}),  # one trial, both cores
     ({"max_parallel_trials": 1, "num_threads": 4}, 2, {2}),  # never more than the cores
@@ -36,9 +37,9 @@ def test_worker_gives_each_trial_its_share_of_threads(tmp_path: Path, monkeypatc
     seen: set[int] = set()
     original = CVObjective._fit_fold
 
-    def spy(self: CVObjective, params: dict[str, Any], fold: Any) -> Any:
+    def spy(self: CVObjective, params: dict[str, Any], fold: Any, *rest: Any) -> Any:
         seen.add(params["num_threads"])
-        return original(self, params, fold)
+        return original(self, params, fold, *rest)
 
     monkeypatch.setattr(CVObjective, "_fit_fold", spy)
     monkeypatch.setattr(os, "cpu_count", lambda: cores)
@@ -48,6 +49,11 @@ def test_worker_gives_each_trial_its_share_of_threads(tmp_path: Path, monkeypatc
         assert job.status == "succeeded", job.error
         effective = job.spec["effective"]
     assert seen == threads
-    # The effective spec records what was asked for (the worker caps it to its cores).
-    assert effective["num_threads"] == fields.get("num_threads",
-                                                  fields.get("max_parallel_trials", 1))
+    # The effective spec records what was asked for (the worker caps it to its cores),
+    # or, when nothing was, what the worker chose: every core.
+    if not fields:
+        assert effective["parallelism"] == "machine"
+        assert (effective["max_parallel_trials"], effective["num_threads"]) == (cores, cores)
+    else:
+        assert effective["num_threads"] == fields.get("num_threads",
+                                                      fields.get("max_parallel_trials", 1))

@@ -6,12 +6,14 @@ import lightgbm as lgb
 import numpy as np
 import pandas as pd
 import pytest
+from sklearn import metrics as skm
 from sklearn.calibration import calibration_curve
 from sklearn.metrics import brier_score_loss
 
 import tuner
 from tuner.evaluation.diagnostics import SMALL_LEAF_ROWS, _divergence, leaf_sizes
 from tuner.evaluation.holdout import bootstrap_intervals, calibration, evaluate_model, optimism
+from tuner.metrics import score_all
 
 
 def _binary(n: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
@@ -164,3 +166,32 @@ def test_importance_needs_two_complete_trials(tmp_path) -> None:
     study.optimize(lambda t: t.suggest_float("x", 0, 1), n_trials=1)
     out = hyperparameter_importance(url, "one")
     assert out["importances"] == {} and "two" in out["note"]
+
+
+@pytest.mark.parametrize("weighted", [False, True])
+def test_counted_resample_scores_match_sklearn_on_the_resampled_rows(weighted) -> None:
+    from tuner.evaluation.holdout import _CountedBinary
+
+    rng = np.random.default_rng(5)
+    n = 3_000
+    p = np.round(rng.random(n), 3)  # rounded: tied scores too
+    y = (rng.random(n) < p).astype("int64")
+    w = rng.uniform(0.5, 2.0, n) if weighted else None
+    counted = _CountedBinary(y, p, w)
+    drawn = rng.integers(0, n, n)  # positions in the resampler's sorted order
+    got = counted.scores(np.bincount(drawn, minlength=n))
+    rows = counted.order[drawn]
+    ww = None if w is None else w[rows]
+    # Reference: scikit-learn's metrics on the resampled rows themselves.
+    assert got["roc_auc"] == pytest.approx(
+        skm.roc_auc_score(y[rows], p[rows], sample_weight=ww), rel=1e-9)
+    assert got["log_loss"] == pytest.approx(
+        skm.log_loss(y[rows], p[rows], sample_weight=ww), rel=1e-9)
+    assert got["average_precision"] == pytest.approx(
+        skm.average_precision_score(y[rows], p[rows], sample_weight=ww), rel=1e-9)
+    assert got["accuracy"] == pytest.approx(
+        skm.accuracy_score(y[rows], p[rows] > 0.5, sample_weight=ww), rel=1e-9)
+    assert got["f1_macro"] == pytest.approx(
+        skm.f1_score(y[rows], p[rows] > 0.5, average="macro", sample_weight=ww), rel=1e-9)
+    # Every binary metric of the service has its counted form.
+    assert set(got) == set(score_all("binary", y, p))

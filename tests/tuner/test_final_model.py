@@ -64,7 +64,8 @@ def test_holdout_scores_match_sklearn(cancer_fit) -> None:
     assert fitted.holdout["roc_auc"] > 0.95
     assert fitted.booster.current_iteration() == result.best.boosting_rounds
     assert fitted.cv == {"metric": "roc_auc", "mean": result.best.score,
-                         "std": result.best.score_std, "fold_scores": result.best.fold_scores}
+                         "std": result.best.score_std, "se": result.best.score_se,
+                         "fold_scores": result.best.fold_scores}
 
 
 def test_importance_and_metadata_are_json_ready(cancer_fit) -> None:

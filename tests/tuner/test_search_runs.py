@@ -79,19 +79,26 @@ def test_same_seed_gives_identical_searches_and_models(setup, tmp_path) -> None:
 
 def test_stop_request_ends_the_search(setup, storage_url) -> None:
     data, plan, config = setup
-    calls = {"n": 0}
+    calls = {"n": 0, "after_first": False}
+
+    def on_trial(record) -> None:
+        calls["after_first"] = True
 
     def should_stop() -> bool:
-        # Polled once before the search, before each fold and after each trial: the 7th
-        # call comes before trial 1's second fold.
-        calls["n"] += 1
-        return calls["n"] >= 7
+        # Once trial 0 is done it is polled after that trial, before trial 1's first fold
+        # and then every boosting round: the 5th call is in round 3 of trial 1's fold 0.
+        calls["n"] += calls["after_first"]
+        return calls["n"] >= 5
 
     result = run_search(data, plan, dataclasses.replace(config, n_trials=10),
-                        storage_url=storage_url, study_name="s", should_stop=should_stop)
+                        storage_url=storage_url, study_name="s", should_stop=should_stop,
+                        on_trial=on_trial)
     records = load_trial_records(storage_url, "s")
     assert [r.state for r in records] == ["complete", "pruned"] and result.n_pruned == 1
-    assert len(records[1].fold_scores) == 1 and records[1].score is None
+    assert records[1].fold_scores == [] and records[1].score is None
+    # A stop takes effect inside the fold: three rounds boosted, not the fold's 20.
+    study = load_study(storage_url, "s")
+    assert trial_attrs(study.trials[1])["rounds_trained"] == 3
 
 
 def test_crashed_running_trial_is_failed_on_resume(setup, storage_url) -> None:
@@ -107,7 +114,7 @@ def test_crashed_running_trial_is_failed_on_resume(setup, storage_url) -> None:
 def test_failures_stop_after_the_cap(setup, storage_url, monkeypatch) -> None:
     data, plan, config = setup
 
-    def broken(self, params, fold):
+    def broken(self, params, fold, *rest):
         raise lgb.basic.LightGBMError("simulated failure")
 
     monkeypatch.setattr(CVObjective, "_fit_fold", broken)
@@ -171,4 +178,6 @@ def test_pruned_trials_keep_their_fold_scores(setup) -> None:
     for trial in study.trials:
         assert trial.state == TrialState.PRUNED
         assert len(trial_attrs(trial)["fold_scores"]) == 1
-        assert list(trial.intermediate_values) == [0]
+        # Fold 0's score is reported at the step of its end (20 rounds x 10 steps each);
+        # 20 rounds at a learning rate of 0.1 never reach the first in-fold checkpoint.
+        assert list(trial.intermediate_values) == [200]

@@ -199,8 +199,8 @@ def list_trials(
     repository.get_job(session, job_id)
     trials = [_trial_out(t) for t in repository.list_trials(session, job_id=job_id)]
     if wants_csv(request, format):
-        header = ["number", "state", "score", "score_std", "boosting_rounds",
-                  "duration_seconds", "fold_scores", "params"]
+        header = ["number", "state", "score", "score_std", "score_se", "fidelity",
+                  "boosting_rounds", "duration_seconds", "fold_scores", "params"]
         return csv_response(header, ([getattr(t, h) for h in header] for t in trials))
     return Page[TrialOut](data=trials, count=len(trials))
 
@@ -220,14 +220,15 @@ def leaderboard(
                                            limit=limit)
     rows = [
         LeaderboardRow(rank=i, number=t.number, score=t.score, score_std=t.score_std,
-                       params=t.params, boosting_rounds=t.boosting_rounds)
+                       score_se=t.score_se, params=t.params, boosting_rounds=t.boosting_rounds)
         for i, t in enumerate(trials, start=1)
     ]
     if wants_csv(request, format):
         names = sorted({name for r in rows for name in r.params})
-        header = ["rank", "number", "score", "score_std", "boosting_rounds", *names]
+        header = ["rank", "number", "score", "score_std", "score_se", "boosting_rounds",
+                  *names]
         return csv_response(header, (
-            [r.rank, r.number, r.score, r.score_std, r.boosting_rounds,
+            [r.rank, r.number, r.score, r.score_std, r.score_se, r.boosting_rounds,
              *(r.params.get(n) for n in names)] for r in rows))
     return Leaderboard(job_id=job_id, metric=job.spec["effective"]["metric"],
                        direction=direction, data=rows, count=count)
