@@ -13,6 +13,7 @@ import sys
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any, NoReturn
+from urllib.parse import unquote
 
 from client import commands as jobs
 from client import http as client
@@ -80,7 +81,8 @@ def cmd_predict(args: argparse.Namespace) -> int:
                                content=body, params={"unseen": args.unseen},
                                headers={"Content-Type": "text/csv", "Accept": "text/csv"})
     if response.headers.get("x-ignored-columns"):
-        print(f"ignored columns: {response.headers['x-ignored-columns']}", file=sys.stderr)
+        names = [unquote(n) for n in response.headers["x-ignored-columns"].split(",")]
+        print(f"ignored columns: {', '.join(names)}", file=sys.stderr)
     if args.output:
         Path(args.output).write_bytes(response.content)
         rows = max(response.text.count("\n") - 1, 0)

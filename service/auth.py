@@ -137,6 +137,11 @@ class KeyChecker:
         self._known[digest] = scope
         return scope
 
+    def open_mode(self) -> bool:
+        """Requests need no key: a loopback server that has never had one."""
+        state = self.state()
+        return self.open_without_keys and not state.active_keys and not state.keys_have_existed
+
     def check(self, method: str, authorization: str | None) -> None:
         state = self.state()
         if not state.active_keys:

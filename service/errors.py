@@ -70,3 +70,28 @@ class Unprocessable(ServiceError):
         super().__init__(detail, errors=errors)
         if code:
             self.code = code
+
+
+def describe_failure(exc: BaseException) -> str:
+    """What went wrong, in words any reader of the job may see.
+
+    An exception's own text can hold file paths, database hosts or user names; that
+    detail goes to the log only. This names the kind of cause.
+    """
+    import sqlalchemy.exc
+
+    from service.storage import ArtifactCorrupt, ArtifactMissing
+
+    if isinstance(exc, ArtifactMissing | FileNotFoundError):
+        return "a stored file the job needs is missing (see the worker log)"
+    if isinstance(exc, ArtifactCorrupt):
+        return "a stored file the job needs failed its checksum (see the worker log)"
+    if isinstance(exc, MemoryError):
+        return "the worker ran out of memory"
+    if isinstance(exc, sqlalchemy.exc.OperationalError | sqlalchemy.exc.InterfaceError):
+        return "the database could not be reached or refused a query (see the worker log)"
+    if isinstance(exc, PermissionError):
+        return "the worker was not allowed to read or write a file (see the worker log)"
+    if isinstance(exc, OSError):
+        return "a file or network operation failed (see the worker log)"
+    return f"an unexpected {type(exc).__name__} in the worker (see the worker log)"

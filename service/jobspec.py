@@ -127,6 +127,8 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
         num_threads=int(request.get("num_threads") or given_parallel or 1),
         selection=request.get("selection") or "best",
         final_refit=request.get("final_refit") or "train",
+        calibrate=bool(request.get("calibrate", True)),
+        portfolio=bool(request.get("portfolio", True)),
         warm_start=tuple(dict(p) for p in warm.get("params", [])),
     )
     check_config(data, config)  # the checks run_search repeats, here so they are 422s
@@ -165,6 +167,10 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
         "parallelism": "machine" if auto else "given",
         "selection": config.selection,
         "final_refit": config.final_refit,
+        "calibrate": config.calibrate,
+        # Enqueued after trial 0 and any warm start, in this order (tuner.portfolio).
+        "portfolio": (tuner.portfolio_params(space, n_train_rows=plan.min_fit_rows)
+                      if config.portfolio else []),
         "warm_start": ({"job_id": warm.get("job_id"), "trials": warm.get("trials", []),
                         "params": list(config.warm_start)} if warm else None),
         "classes": data.classes,

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 from functools import lru_cache
 from pathlib import Path
 
@@ -17,6 +18,14 @@ class Settings(BaseSettings):
     home: Path = Field(default=Path("./grovekeeper-data"))
     database_url: str | None = None
     max_upload_mb: int = Field(default=1024, ge=1)
+    # Any other request body (a job, a channel change, ...); checked before routing.
+    max_request_kb: int = Field(default=1024, ge=1)
+    # The table an upload may unpack to in memory (rows x columns x 8 bytes, and a Parquet
+    # file's own uncompressed size); default 8 x max_upload_mb. Stops decompression bombs.
+    max_table_mb: int | None = Field(default=None, ge=1)
+    # Live event streams open at once: per key (no-key mode counts as one key) and in all.
+    max_streams_per_key: int = Field(default=20, ge=1)
+    max_streams: int = Field(default=200, ge=1)
     # Rows one prediction request may carry; bigger batches belong in several requests.
     max_prediction_rows: int = Field(default=100_000, ge=1)
     # Seconds between flushes of the drift summaries an API process keeps in memory.
@@ -71,9 +80,26 @@ class Settings(BaseSettings):
     def tmp_dir(self) -> Path:
         return self.home / "tmp"
 
+    @property
+    def table_limit_bytes(self) -> int:
+        return (self.max_table_mb or 8 * self.max_upload_mb) * (1 << 20)
+
     def ensure_dirs(self) -> None:
+        """The home and its folders, readable by this user alone (0700).
+
+        The home holds every uploaded table, model and (with SQLite) the key hashes; the
+        process umask (``private_files``) keeps what is written inside at 0600.
+        """
+        private_files()
         for folder in (self.home, self.datasets_dir, self.models_dir, self.tmp_dir):
-            folder.mkdir(parents=True, exist_ok=True)
+            folder.mkdir(parents=True, exist_ok=True, mode=0o700)
+            if folder.stat().st_uid == os.getuid():
+                folder.chmod(0o700)  # a home made by an older version was 0755
+
+
+def private_files() -> None:
+    """Files and folders this process creates are its user's alone (0600 / 0700)."""
+    os.umask(0o077)
 
 
 @lru_cache

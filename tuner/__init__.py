@@ -72,6 +72,8 @@ _EXPORTS: dict[str, tuple[str, str]] = {
     "load_booster": ("tuner.artifacts", "load_booster"),
     "load_study": ("tuner.study", "load_study"),
     "load_trial_records": ("tuner.study", "load_trial_records"),
+    "portfolio_params": ("tuner.portfolio", "portfolio_params"),
+    "gain_over_defaults": ("tuner.evaluation.gain", "gain_over_defaults"),
     "make_pruner": ("tuner.config", "make_pruner"),
     "merge_overrides": ("tuner.space", "merge_overrides"),
     "model_metadata": ("tuner.artifacts", "model_metadata"),
@@ -105,6 +107,7 @@ if TYPE_CHECKING:  # the same names, for type checkers
         SearchSpaceError,
         TunerError,
     )
+    from tuner.evaluation.gain import gain_over_defaults
     from tuner.io.read import read_table
     from tuner.metrics import (
         METRICS,
@@ -116,6 +119,7 @@ if TYPE_CHECKING:  # the same names, for type checkers
     )
     from tuner.model import FittedModel, fit_final, predict
     from tuner.objective import CVObjective, refit_rounds
+    from tuner.portfolio import portfolio_params
     from tuner.profile import ColumnProfile, profile_table
     from tuner.schema import FeatureSchema, FeatureSpec
     from tuner.search import run_search

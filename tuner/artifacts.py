@@ -87,6 +87,7 @@ def model_metadata(fitted: FittedModel) -> dict[str, Any]:
         "cv": fitted.cv,
         "holdout": fitted.holdout,
         "feature_importance": fitted.feature_importance,
+        "calibration": fitted.calibration,
         "versions": {"lightgbm": lgb.__version__, "optuna": optuna.__version__,
                      "pandas": pd.__version__},
     }

@@ -45,6 +45,12 @@ class SearchConfig:
     final_refit: str = "train"
     #: Parameter sets enqueued right after trial 0 (e.g. an earlier job's winners).
     warm_start: tuple[dict[str, Any], ...] = ()
+    #: Classification: fit a calibration map on the winner's out-of-fold scores and, when
+    #: it lowers their cross-fitted log loss, write it into the model (tuner.calibration).
+    calibrate: bool = True
+    #: Enqueue the portfolio of strong configurations (tuner.portfolio) after trial 0
+    #: and the warm-start configurations.
+    portfolio: bool = True
 
 
 #: ``median``: prune a trial whose score so far (inside a fold at the boosting

@@ -14,6 +14,7 @@ from tuner.dataset import PreparedData
 from tuner.errors import TunerError
 from tuner.metrics import get_metric
 from tuner.objective import CVObjective, checkpoints, fold_steps, pruner_step
+from tuner.portfolio import portfolio_params
 from tuner.space import fit_into_space, initial_params
 from tuner.study import fail_running, open_study
 from tuner.trial_loop import optimize_budgeted, threads_per_trial
@@ -42,8 +43,9 @@ def run_search(
 ) -> SearchResult:
     """Run (or resume, or join) a search until its budget, timeout or a stop request.
 
-    The study is created on first use, with trial 0 set to LightGBM's defaults (and any
-    warm-start trials after it). When it already holds trials (a resumed job), complete
+    The study is created on first use, with trial 0 set to LightGBM's defaults, then any
+    warm-start trials, then the portfolio (:mod:`tuner.portfolio`, unless
+    ``config.portfolio`` is off). When it already holds trials (a resumed job), complete
     and pruned trials count against ``n_trials``. This process runs up to
     ``config.max_parallel_trials`` trials at once; other processes may run trials of the
     same study at once (``join=True``), and the budget then holds for all of them
@@ -96,6 +98,8 @@ def run_search(
         pruner=config.pruner,
         warm_start=tuple(fit_into_space(p, config.space, n_train_rows=rows)
                          for p in config.warm_start),
+        portfolio=tuple(portfolio_params(config.space, n_train_rows=rows)
+                        if config.portfolio else ()),
         heartbeat_seconds=heartbeat_seconds, grace_seconds=grace_seconds, seed_salt=seed_salt,
     )
     if heartbeat_seconds is None and not join:

@@ -110,38 +110,62 @@ TUNABLE: dict[str, tuple[str, float, float, bool]] = {
 }
 
 DEFAULT_SPACE = SearchSpace({
-    # Common practice (LIBRARIES.md §3 "Typical ranges"), narrowed at the bottom to 0.01:
-    # slower rates rarely converge within the 1000-round cap.
+    # The slowest rate worth sampling is the one whose full round cap still adds up to
+    # LightGBM's default step budget (100 rounds x 0.1): 1000 rounds x 0.01. Anything
+    # slower stops at the cap before it converges. The top, 0.3, is common practice.
     "learning_rate": ParamRange(0.01, 0.3, log=True),
-    # Tree size matters multiplicatively, so sample on a log scale around the default 31.
-    "num_leaves": ParamRange(8, 256, log=True, kind="int"),
-    # Guards against leaves fit to a handful of rows; clamped for small tables (suggest).
+    # Tree size matters multiplicatively, so sample on a log scale. Down to 4 leaves:
+    # "4 <= J <= 8 works well in the context of boosting" (Hastie, Tibshirani & Friedman,
+    # The Elements of Statistical Learning, 2nd ed., 2009, sec. 10.11), and a table of a
+    # few hundred rows cannot fill hundreds of leaves of min_data_in_leaf rows anyway.
+    "num_leaves": ParamRange(4, 256, log=True, kind="int"),
+    # Depth caps the same way for unbalanced trees; -1 (no cap, LightGBM's default) or
+    # the shallow depths the same section recommends (2-3 levels: 4-8 leaves) and a few
+    # deeper ones.
+    "max_depth": Choice((-1, 2, 3, 4, 6, 8)),
+    # Guards against leaves fit to a handful of rows. The ceiling scales with the rows
+    # (a tenth of a fold's training rows, min_data_cap); the floor 5 is the usual
+    # minimum node size (ESL sec. 15.3 for regression forests; common practice).
     "min_data_in_leaf": ParamRange(5, 100, kind="int"),
+    # The hessian a leaf must hold. For log loss a row contributes p(1-p) <= 1/4, so a
+    # leaf of rows that are nearly all one class holds almost none: raising this floor
+    # stops the trees from isolating pure leaves, whose extreme values make the
+    # over-confident probabilities small tables suffer from. Log range after xgboost's
+    # min_child_weight in [2^-7, 2^7] (Probst, Boulesteix & Bischl, "Tunability", JMLR
+    # 2019, table 1), from LightGBM's default 1e-3 to 10 (40+ rows at p = 0.5).
+    "min_sum_hessian_in_leaf": ParamRange(1e-3, 10.0, log=True),
     # Column and row subsampling; below 0.4 trees become too noisy to be worth it.
     "feature_fraction": ParamRange(0.4, 1.0),
     "bagging_fraction": ParamRange(0.4, 1.0),
     # 0 switches bagging off (LightGBM's default), 1-7 re-samples every k iterations.
     "bagging_freq": ParamRange(0, 7, kind="int"),
     # Regularisation spans orders of magnitude; 1e-8 stands in for "off" on a log scale.
+    # L1 to 10 as before; L2 up to 100, near the top of xgboost's lambda range in
+    # [2^-10, 2^10] (Probst et al. 2019, table 1): shrinking leaf values toward 0 is the
+    # strongest guard few rows have against over-confident leaves.
     "lambda_l1": ParamRange(1e-8, 10.0, log=True),
-    "lambda_l2": ParamRange(1e-8, 10.0, log=True),
+    "lambda_l2": ParamRange(1e-8, 100.0, log=True),
     # Split-gain threshold. Gain is in the target's units squared, so a linear 0-1 range
     # blocks nearly every split on a small-scale target: on the greenhouse table (RMSE
     # ~0.13) no trial of 30 beat LightGBM's defaults until this became a log range with
     # 1e-8 standing in for "off" (measured; see benchmarks/quality.py).
     "min_gain_to_split": ParamRange(1e-8, 1.0, log=True),
+    # Random split thresholds (extremely randomized trees: Geurts, Ernst & Wehenkel,
+    # Machine Learning 63, 2006), which LightGBM documents as a guard against
+    # over-fitting; a variance reducer that small tables need most.
+    "extra_trees": Choice((False, True)),
 })
 
 #: LightGBM's own defaults, expressed inside the space (0 becomes 1e-8 on log ranges).
 #: Enqueued as trial 0 so every search starts from the untuned baseline.
 LIGHTGBM_DEFAULTS: dict[str, Any] = {
-    "learning_rate": 0.1, "num_leaves": 31, "min_data_in_leaf": 20, "feature_fraction": 1.0,
-    "bagging_fraction": 1.0, "bagging_freq": 0, "lambda_l1": 1e-8, "lambda_l2": 1e-8,
-    "min_gain_to_split": 1e-8,
+    "learning_rate": 0.1, "num_leaves": 31, "max_depth": -1, "min_data_in_leaf": 20,
+    "min_sum_hessian_in_leaf": 1e-3, "feature_fraction": 1.0, "bagging_fraction": 1.0,
+    "bagging_freq": 0, "lambda_l1": 1e-8, "lambda_l2": 1e-8, "min_gain_to_split": 1e-8,
+    "extra_trees": False,
 }
 _OTHER_DEFAULTS: dict[str, Any] = {
-    "max_depth": -1, "min_sum_hessian_in_leaf": 1e-3, "max_bin": 255, "extra_trees": False,
-    "path_smooth": 0.0, "cat_smooth": 10.0, "max_cat_to_onehot": 4, "alpha": 0.9,
+    "max_bin": 255, "path_smooth": 0.0, "cat_smooth": 10.0, "max_cat_to_onehot": 4, "alpha": 0.9,
     "tweedie_variance_power": 1.5,
 }
 

@@ -66,6 +66,7 @@ def open_study(
     initial_params: dict[str, Any] | None = None,
     pruner: str = "median",
     warm_start: tuple[dict[str, Any], ...] = (),
+    portfolio: tuple[dict[str, Any], ...] = (),
     heartbeat_seconds: int | None = None,
     grace_seconds: int | None = None,
     seed_salt: int = 0,
@@ -88,6 +89,8 @@ def open_study(
         pruner: One of :data:`tuner.config.PRUNERS` (see :func:`make_pruner`).
         warm_start: Parameter sets enqueued after trial 0 in a new study (duplicates of
             trial 0 or of each other are skipped).
+        portfolio: Parameter sets enqueued after the warm-start ones, the same way
+            (:mod:`tuner.portfolio`).
         heartbeat_seconds: Optuna trial heartbeat interval (``None``: no heartbeat).
         grace_seconds: Seconds without a heartbeat after which a running trial is failed.
         seed_salt: Mixed into the sampler seed, so that several processes sampling one
@@ -121,7 +124,7 @@ def open_study(
     if not study.get_trials(deepcopy=False):
         first = dict(LIGHTGBM_DEFAULTS if initial_params is None else initial_params)
         queued = [first]
-        for params in warm_start:
+        for params in (*warm_start, *portfolio):
             if params not in queued:
                 queued.append(dict(params))
         for params in queued:

@@ -11,12 +11,15 @@ from fastapi.middleware.cors import CORSMiddleware
 from service.api import openapi_examples, problems
 from service.api.deps import AuthDep
 from service.api.drift import DriftRecorder
+from service.api.guard import RequestGuard
+from service.api.jobwatch import WatchHub
 from service.api.predictors import PredictorCache
 from service.api.routes import (
     bundle,
     channels,
     comparisons,
     datasets,
+    docs,
     events,
     health,
     jobs,
@@ -51,18 +54,27 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
         version="0.1.0",
         summary="Tunes gradient-boosted trees on uploaded tables and serves the winners.",
         lifespan=lifespan,
+        docs_url=None,  # served by routes/docs.py, with its scripts from this server
+        redoc_url=None,
     )
     app.state.settings = settings
     app.state.store = ArtifactStore(settings.artifacts_url, settings.tmp_dir)
     app.state.drift = DriftRecorder(settings.db_url, settings.drift_flush_seconds)
     app.state.predictors = PredictorCache(app.state.store, recorder=app.state.drift)
     app.state.keys = KeyChecker(settings.db_url, open_without_keys=loopback_only)
-    problems.install(app)
+    app.state.watch_hub = WatchHub(settings.db_url, per_key=settings.max_streams_per_key,
+                                   total=settings.max_streams)
     origins = [o.strip() for o in settings.cors_origins.split(",") if o.strip()]
+    app.state.cors_origins = set(origins)
+    # Size, key, host and origin checks before routing, so no body is read first;
+    # added before problems.install so that its catch-all wraps the guard too.
+    app.add_middleware(RequestGuard)
+    problems.install(app)
     if origins:  # closed by default: no CORS headers at all unless origins are configured
         app.add_middleware(CORSMiddleware, allow_origins=origins, allow_methods=["*"],
                            allow_headers=["Authorization", "Content-Type", "Accept"])
     app.include_router(health.router)
+    app.include_router(docs.router)
     for router in (datasets.router, jobs.router, models.router, channels.router,
                    scorings.router, comparisons.router):
         app.include_router(router, dependencies=[AuthDep])

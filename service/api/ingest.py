@@ -16,14 +16,16 @@ from pathlib import Path
 from typing import Any
 
 from fastapi import Request
-from starlette.datastructures import UploadFile
 
 import tuner
+from service.api.multipart import read_form
 from service.errors import PayloadTooLarge, Unprocessable, UnsupportedMediaType
 from service.storage import sha256_file
 from tuner.datachecks import table_warnings
 
-CSV_TYPES = {"text/csv", "application/csv", "text/plain"}
+# Not text/plain: a browser page may send that cross-site without asking (a "simple"
+# request), and a table has a proper type of its own.
+CSV_TYPES = {"text/csv", "application/csv"}
 PARQUET_TYPES = {"application/vnd.apache.parquet", "application/x-parquet", "application/parquet"}
 CHUNK = 1 << 20
 #: Rows converted to Arrow at a time when writing the stored Parquet file: the table is
@@ -78,11 +80,6 @@ async def _copy(chunks: Any, dest: Path, limit: int) -> tuple[int, str]:
     return size, digest.hexdigest()
 
 
-async def _file_chunks(upload: UploadFile) -> Any:
-    while chunk := await upload.read(CHUNK):
-        yield chunk
-
-
 def sniff(path: Path, declared: str) -> str:
     """The format the bytes really have; refuse what is neither CSV nor Parquet."""
     with open(path, "rb") as fh:
@@ -111,26 +108,30 @@ def sniff(path: Path, declared: str) -> str:
     return "csv"
 
 
-async def receive(request: Request, tmp: Path, *, limit: int, name: str | None) -> Received:
-    """Copy the upload (raw body or multipart field ``file``) into ``tmp``."""
+async def receive(request: Request, tmp: Path, *, limit: int, name: str | None,
+                  table_limit: int | None = None) -> Received:
+    """Copy the upload (raw body or multipart field ``file``) into ``tmp``.
+
+    Both forms are streamed with a running count and refused (413) the moment they pass
+    ``limit``; nothing beyond it is ever written. A Parquet file is then checked against
+    ``table_limit`` from its footer alone (``check_parquet_footer``), before any page of
+    it is decompressed.
+    """
     declared = request.headers.get("content-length")
     if declared is not None and declared.isdigit() and int(declared) > limit + (1 << 16):
         raise PayloadTooLarge(f"upload exceeds the limit of {limit // (1 << 20)} MB")
     media = _media_type(request.headers.get("content-type"))
     if media == "multipart/form-data":
-        async with request.form(max_files=1, max_fields=8) as form:  # closes spooled parts
-            upload = form.get("file")
-            if not isinstance(upload, UploadFile):
-                raise Unprocessable("multipart upload needs a file field named 'file'",
-                                    errors=[{"field": "file", "message": "missing"}])
-            form_name = form.get("name")
-            default = Path(upload.filename or "dataset").stem[:200]
-            name = clean_name(str(form_name) if isinstance(form_name, str) else name,
-                              fallback=_safe(default))
-            part = _media_type(upload.content_type)
-            is_parquet = part in PARQUET_TYPES or (upload.filename or "").endswith(".parquet")
-            fmt = "parquet" if is_parquet else "any"
-            size, digest = await _copy(_file_chunks(upload), tmp, limit)
+        form = await read_form(request, tmp, limit=limit)
+        if not form.has_file:
+            raise Unprocessable("multipart upload needs a file field named 'file'",
+                                errors=[{"field": "file", "message": "missing"}])
+        default = Path(form.filename or "dataset").stem[:200]
+        name = clean_name(form.fields.get("name", name), fallback=_safe(default))
+        part = _media_type(form.content_type)
+        is_parquet = part in PARQUET_TYPES or (form.filename or "").endswith(".parquet")
+        fmt = "parquet" if is_parquet else "any"
+        size, digest = form.size, form.sha256
     elif media in CSV_TYPES or media in PARQUET_TYPES:
         fmt = "csv" if media in CSV_TYPES else "parquet"
         name = clean_name(name)
@@ -140,7 +141,37 @@ async def receive(request: Request, tmp: Path, *, limit: int, name: str | None) 
             f"Content-Type {media or '(none)'} is not accepted; send text/csv, "
             "application/vnd.apache.parquet or multipart/form-data with a 'file' field"
         )
-    return Received(path=tmp, size=size, sha256=digest, fmt=sniff(tmp, fmt), name=name)
+    fmt = sniff(tmp, fmt)
+    if fmt == "parquet" and table_limit is not None:
+        check_parquet_footer(tmp, table_limit)
+    return Received(path=tmp, size=size, sha256=digest, fmt=fmt, name=name)
+
+
+def check_parquet_footer(path: Path, limit: int) -> None:
+    """Refuse a Parquet file whose table would unpack past ``limit`` bytes.
+
+    Parquet compresses runs of equal values to almost nothing: a file under a megabyte
+    can hold a hundred million rows. The footer states the row and column counts and
+    the uncompressed size of every column chunk, so the table's size in memory (at
+    least 8 bytes a cell once parsed) is known before a single page is read.
+    """
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    try:
+        meta = pq.ParquetFile(path).metadata
+    except (pa.ArrowException, OSError) as exc:
+        raise Unprocessable(f"cannot read the Parquet file: {exc}",
+                            errors=[{"field": "file", "message": "unreadable Parquet footer"}],
+                            ) from None
+    uncompressed = sum(meta.row_group(i).total_byte_size for i in range(meta.num_row_groups))
+    cells = meta.num_rows * max(meta.num_columns, 1)
+    estimate = max(cells * 8, uncompressed)
+    if estimate > limit:
+        raise PayloadTooLarge(
+            f"the Parquet file unpacks to about {estimate >> 20} MB ({meta.num_rows} rows x "
+            f"{meta.num_columns} columns), over the table limit of {limit >> 20} MB "
+            "(GROVEKEEPER_MAX_TABLE_MB)")
 
 
 async def read_body(request: Request, *, limit: int) -> bytes:

@@ -6,6 +6,7 @@ from __future__ import annotations
 import csv
 import io
 from typing import Annotated, Any
+from urllib.parse import quote
 
 import pandas as pd
 from fastapi import Query, Request
@@ -24,7 +25,8 @@ PREDICT_DESCRIPTION = (
     "Missing feature columns and wrong types are a 422 naming row and column. Unseen "
     "categories are a 422 unless `unseen=missing`, which sends them down LightGBM's "
     "missing-value branch. Columns the model does not use are ignored and listed in "
-    "`ignored_columns` (CSV: the `X-Ignored-Columns` header). An empty batch is a 422; "
+    "`ignored_columns` (CSV: the `X-Ignored-Columns` header, each name percent-encoded as "
+    "UTF-8 and the names joined by commas). An empty batch is a 422; "
     "more rows than `GROVEKEEPER_MAX_PREDICTION_ROWS`, or a body over "
     "`GROVEKEEPER_MAX_UPLOAD_MB`, is a 413. "
     "`explain=true` adds per-row TreeSHAP contributions (bias plus one value per "
@@ -130,8 +132,18 @@ def _predict_csv(predictor: tuner.Predictor, store: LocalStore, body: bytes, uns
         out = pd.concat([kept, out], axis=1)
     ignored = [c for c in ignored if c not in keep]
     if ignored:
-        headers = {**headers, "X-Ignored-Columns": ",".join(ignored)}
-    return Response(frame_csv(out), media_type="text/csv; charset=utf-8", headers=headers)
+        headers = {**headers, "X-Ignored-Columns": ignored_header(ignored)}
+    # Kept columns are the caller's own values, echoed exactly; the rest is neutralised
+    # against spreadsheet formulas (service/api/tabular.py).
+    return Response(frame_csv(out, exact=keep), media_type="text/csv; charset=utf-8",
+                    headers=headers)
+
+
+def ignored_header(names: list[str]) -> str:
+    """Column names as one header value: each percent-encoded as UTF-8 (RFC 3986), joined
+    by commas. A raw name could hold commas, CR/LF or characters outside Latin-1, which a
+    header cannot carry."""
+    return ",".join(quote(name, safe="") for name in names)
 
 
 async def answer(request: Request, predictor: tuner.Predictor, model_id: str, *,

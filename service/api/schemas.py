@@ -3,13 +3,20 @@
 from __future__ import annotations
 
 from datetime import UTC, datetime
-from typing import Any, Generic, Literal, TypeVar
+from typing import Annotated, Any, Generic, Literal, TypeVar
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 Task = Literal["binary", "multiclass", "regression"]
 Strategy = Literal["kfold", "stratified", "group", "time"]
 DEFAULT_TRIALS = 40
+
+# Bounds on every string and list a request may carry, so that no field can hold more
+# than a table's worth of names (the body-size guard bounds the whole request too).
+MAX_NAME = 1000  # a column name
+MAX_COLUMNS = 10_000  # a list of columns
+MAX_ENTRIES = 200  # search-space overrides
+Name = Annotated[str, Field(min_length=1, max_length=MAX_NAME)]
 
 
 def as_utc(value: datetime | None) -> datetime | None:
@@ -38,8 +45,8 @@ class CVSpec(Strict):
     # None: chosen from the search rows (tuner.validation.validation_splits).
     folds: int | None = Field(default=None, ge=2, le=20)
     strategy: Strategy | None = None
-    group_column: str | None = None
-    time_column: str | None = None
+    group_column: Name | None = None
+    time_column: Name | None = None
 
 
 class DecisionSpec(Strict):
@@ -76,22 +83,22 @@ class JobCreate(Strict):
     )
 
     dataset_id: str = Field(min_length=1, max_length=64)
-    target: str = Field(min_length=1)
+    target: Name
     task: Task | None = None
-    metric: str | None = None
-    features: list[str] | None = None
-    exclude: list[str] | None = None
+    metric: str | None = Field(default=None, max_length=64)
+    features: list[Name] | None = Field(default=None, max_length=MAX_COLUMNS)
+    exclude: list[Name] | None = Field(default=None, max_length=MAX_COLUMNS)
     budget: Budget = Field(default_factory=Budget)
     cv: CVSpec = Field(default_factory=CVSpec)
     holdout_fraction: float = Field(default=0.2, ge=0.0, le=0.5)
-    weight_column: str | None = None
-    search_space: dict[str, Any] | None = None
+    weight_column: Name | None = None
+    search_space: dict[str, Any] | None = Field(default=None, max_length=MAX_ENTRIES)
     seed: int = Field(default=0, ge=0, le=2**31 - 1)
     priority: int = Field(default=0, ge=-1000, le=1000)
     # Worker processes that may run trials of this job at once (one study, one budget).
     max_workers: int = Field(default=1, ge=1, le=256)
     # Regression loss: regression (squared error), poisson, tweedie, huber, quantile.
-    objective: str | None = None
+    objective: str | None = Field(default=None, max_length=64)
     pruner: Literal["median", "halving", "none"] = "median"
     # Trials one worker runs at once. None: chosen from the table's size to use every core
     # of the worker (tuner.trial_loop.machine_split), or 1 for a reproducible job.
@@ -104,6 +111,11 @@ class JobCreate(Strict):
     reproducible: bool = False
     selection: Literal["best", "one_se"] = "best"
     final_refit: Literal["train", "all"] = "train"
+    #: Classification: calibrate the served probabilities (a map fitted on the winner's
+    #: out-of-fold scores, kept only when it helps, written into the model file).
+    calibrate: bool = True
+    #: Run the fixed portfolio of strong configurations right after trial 0.
+    portfolio: bool = True
     warm_start_job_id: str | None = Field(default=None, min_length=1, max_length=64)
     # Binary only: the threshold the model serves labels with comes from these costs.
     decision: DecisionSpec | None = None
@@ -262,9 +274,11 @@ class PredictRequest(Strict):
         json_schema_extra={"examples": [{"rows": [{"peak_temp_c": 1240, "clay_body": "raku"}]}]},
     )
 
-    rows: list[dict[str, Any]] = Field(min_length=1)
+    # The row limit itself is a setting (max_prediction_rows, a 413); this bound only
+    # stops a list far beyond any setting before it is built.
+    rows: list[dict[str, Any]] = Field(min_length=1, max_length=10_000_000)
     # Input columns to return unchanged beside each prediction (also ?keep=a,b).
-    keep: list[str] | None = None
+    keep: list[Name] | None = Field(default=None, max_length=MAX_COLUMNS)
 
 
 class PredictResponse(BaseModel):

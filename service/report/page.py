@@ -136,10 +136,55 @@ def _winner(model: dict[str, Any]) -> str:
         f'<section class="card" id="winner"><p>Model <code>{escape(model["id"])}</code>, '
         f"trial {model['trial_number']}, {model['boosting_rounds']} trees. "
         f"CV {escape(model['metric'])}: <strong>{_num(cv.get('mean'))}</strong> ± "
-        f"{_num(cv.get('std'), 2)} (folds: {folds}).</p>{gap_text}{table}"
+        f"{_num(cv.get('std'), 2)} (folds: {folds}).</p>{_gain(model)}{gap_text}"
+        f"{_calibration(model)}"
+        f"{table}"
         + (f"<p class='note'>{escape('; '.join(extra))}.</p>" if extra else "")
         + "</section>"
     )
+
+
+def _calibration(model: dict[str, Any]) -> str:
+    """One paragraph: which map the served probabilities carry, and what it changed."""
+    cal = (model.get("details") or {}).get("calibration")
+    if not cal or "oof_log_loss" not in cal:
+        reason = (cal or {}).get("reason")
+        return (f"<p class='note' id='calibration'>Probabilities not calibrated: "
+                f"{escape(reason)}.</p>" if reason and model["task"] != "regression" else "")
+    oof, held = cal["oof_log_loss"], (cal.get("holdout") or {}).get("log_loss")
+    ece, held_ece = cal["oof_ece"], (cal.get("holdout") or {}).get("ece")
+    parts = [f"out-of-fold log loss {_num(oof['before'])} → {_num(oof['after'])}, "
+             f"calibration error {_num(ece['before'], 3)} → {_num(ece['after'], 3)}"]
+    if held:
+        parts.append(f"hold-out log loss {_num(held['before'])} → {_num(held['after'])}, "
+                     f"calibration error {_num(held_ece['before'], 3)} → "
+                     f"{_num(held_ece['after'], 3)}")
+    if cal["applied"]:
+        head = (f"Probabilities calibrated ({escape(cal['method'])} scaling, written into "
+                "the model file)")
+    else:
+        head = f"Probabilities not calibrated ({escape(cal.get('reason') or '')})"
+    return (f"<p id='calibration'>{head}: {escape('; '.join(parts))}. "
+            "<span class='note'>Calibration error: mean gap between confidence and "
+            "accuracy over 15 bins.</span></p>")
+
+
+def _gain(model: dict[str, Any]) -> str:
+    """One sentence: what tuning bought over LightGBM's defaults on the hold-out."""
+    gain = (model.get("details") or {}).get("gain_over_defaults")
+    if not gain:
+        return ""
+    if not gain.get("available"):
+        return (f"<p class='note' id='gain'>No comparison with LightGBM's defaults: "
+                f"{escape(gain.get('reason') or '')}.</p>")
+    text = gain["verdict"]
+    text = text[0].upper() + text[1:]
+    cls = "" if gain["helped"] or gain["same_trial"] else " class='warnings'"
+    return (f"<p id='gain'{cls}><strong>{escape(text)}.</strong> <span class='note'>The "
+            f"served model vs LightGBM's defaults (trial {gain['baseline_trial']}, refit on "
+            f"the same rows with its own {gain['baseline_rounds']} rounds, uncalibrated), "
+            f"both scored on the same {gain['rows']} hold-out rows; paired percentile "
+            f"bootstrap, {gain['resamples']} resamples.</span></p>")
 
 
 def _leaderboard(rows: list[dict[str, Any]], count: int, winner: int | None) -> str:

@@ -21,8 +21,11 @@ from matplotlib.ticker import MaxNLocator  # noqa: E402
 
 # Process-wide, set once: text stays text (small, crisp, selectable), curves keep every
 # vertex (a learning curve with 300 rounds has 300 points), ids are stable across runs.
+# Column names are data, not markup: with math text on, a name like "$\\foo$" fails to
+# parse and the plot fails with it.
 matplotlib.rcParams.update({"svg.fonttype": "none", "path.simplify": False,
-                            "svg.hashsalt": "grovekeeper", "font.size": 10})
+                            "svg.hashsalt": "grovekeeper", "font.size": 10,
+                            "text.parse_math": False})
 
 INK, ACCENT, MUTED, WARM = "#1f2933", "#2f6f9f", "#9aa5b1", "#c8553d"
 NAMES = ("history", "hyperparameters", "features", "learning", "calibration")

@@ -13,8 +13,10 @@ import tuner.decision
 import tuner.drift
 from service import repository
 from service.db import session_scope
+from service.errors import describe_failure
 from service.jobspec import RunPlan
 from service.storage import ArtifactStore
+from tuner.evaluation.gain import gain_over_defaults
 from tuner.evaluation.holdout import evaluate_model
 
 log = logging.getLogger("grovekeeper.worker")
@@ -34,7 +36,22 @@ def evaluate_safely(fitted: tuner.FittedModel, run: RunPlan, url: str,
                               study_name=study_name, seed=run.config.seed)
     except Exception as exc:  # noqa: BLE001 - see the docstring
         log.error("job %s: evaluation failed:\n%s", job_id, traceback.format_exc())
-        return {"error": f"evaluation failed: {exc!r}", "warnings": []}
+        return {"error": f"evaluation failed: {describe_failure(exc)}", "warnings": []}
+
+
+def gain_safely(fitted: tuner.FittedModel, run: RunPlan, url: str, job_id: str,
+                best: tuner.TrialRecord) -> dict[str, Any]:
+    """The winner against trial 0 (LightGBM's defaults) on the hold-out; never fatal."""
+    try:
+        with session_scope(url) as session:
+            study_name = repository.get_job(session, job_id).study_name
+        zero = next((r for r in tuner.load_trial_records(url, study_name) if r.number == 0),
+                    None)
+        return gain_over_defaults(fitted, run.data, run.plan, run.config, zero,
+                                  winner=best.number, seed=run.config.seed)
+    except Exception as exc:  # noqa: BLE001 - a description of the model, like evaluation
+        log.error("job %s: gain over defaults failed:\n%s", job_id, traceback.format_exc())
+        return {"available": False, "reason": f"comparison failed: {exc!r}"}
 
 
 def decide_safely(fitted: tuner.FittedModel, run: RunPlan, best: tuner.TrialRecord,
@@ -47,7 +64,7 @@ def decide_safely(fitted: tuner.FittedModel, run: RunPlan, best: tuner.TrialReco
     if fitted.task != "binary":
         return None
     # Probabilities count as calibrated only when the model says it applied a calibration.
-    calibrated = bool(((fitted.refit or {}).get("calibration") or {}).get("applied"))
+    calibrated = bool((fitted.calibration or {}).get("applied"))
     rows = run.plan.holdout_idx
     holdout = None
     if len(rows):
@@ -97,6 +114,9 @@ def fit_and_store(url: str, store: ArtifactStore, job_id: str, run: RunPlan,
     """
     fitted = tuner.fit_final(run.data, run.plan, run.config, best)
     evaluation = evaluate_safely(fitted, run, url, job_id)
+    gain = gain_safely(fitted, run, url, job_id, best)
+    if gain.get("available") and not gain["helped"] and not gain["same_trial"]:
+        evaluation.setdefault("warnings", []).append(gain["verdict"])
     with session_scope(url) as session:
         costs = repository.get_job(session, job_id).spec["request"].get("decision")
     decision = decide_safely(fitted, run, best, costs, job_id)
@@ -125,7 +145,8 @@ def fit_and_store(url: str, store: ArtifactStore, job_id: str, run: RunPlan,
                 feature_importance=fitted.feature_importance,
                 details={"manifest": run.effective, "evaluation": evaluation,
                          "selection": run.effective.get("selection_report"),
-                         "final_refit": fitted.refit,
+                         "final_refit": fitted.refit, "calibration": fitted.calibration,
+                         "gain_over_defaults": gain,
                          "drift_reference": drift_reference(fitted, run)},
                 decision=decision,
                 sha256=sha,

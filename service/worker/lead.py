@@ -13,6 +13,7 @@ import pandas as pd
 import tuner
 from service import comparing, queue, repository
 from service.db import session_scope
+from service.errors import describe_failure
 from service.jobspec import RunPlan
 from service.tables import JobStatus
 from service.worker import heartbeat
@@ -34,7 +35,9 @@ def run_job(ctx: WorkerContext, job_id: str) -> None:
         status, error, model_id = JobStatus.FAILED, str(exc), None
         log.warning("job %s failed: %s", job_id, exc)
     except Exception as exc:  # noqa: BLE001 - any crash must end as a failed job
-        status, error, model_id = JobStatus.FAILED, f"internal error: {exc!r}", None
+        # The message is shown to every reader of the job: no paths or hosts in it.
+        status, model_id = JobStatus.FAILED, None
+        error = f"internal error: {describe_failure(exc)}"
         log.error("job %s crashed:\n%s", job_id, traceback.format_exc())
     finally:
         heartbeat.stop(flags, beat)

@@ -97,6 +97,27 @@ def test_calibration_matches_sklearn(server: Server, jobs: dict) -> None:
     assert sum(cal["counts"]) == len(y)
 
 
+def test_served_probabilities_are_the_model_files(server: Server, jobs: dict,
+                                                 tmp_path) -> None:
+    model, frame = jobs["kiln_model"], jobs["kiln_frame"].head(60)
+    features = frame.drop(columns=["defect"])
+    rows = [{k: (None if pd.isna(v) else v) for k, v in r.items()}
+            for r in features.to_dict(orient="records")]
+    with server.client() as client:
+        served = client.post(f"/v1/models/{model['id']}/predictions",
+                             json={"rows": rows}).json()
+        (tmp_path / "m.txt").write_bytes(client.get(f"/v1/models/{model['id']}/file").content)
+    calibration = model["details"]["calibration"]
+    assert isinstance(calibration["applied"], bool)
+    assert set(calibration["oof_log_loss"]) == {"before", "after"}
+    names = [f["name"] for f in model["feature_schema"]["features"]]
+    # Reference: LightGBM's own predict on the downloaded file, nothing of ours.
+    own = lgb.Booster(model_file=str(tmp_path / "m.txt")).predict(
+        _plain_kiln_frame(frame, names))
+    got = np.array([p[1] for p in served["probabilities"]])
+    np.testing.assert_allclose(got, own, rtol=0, atol=1e-9)
+
+
 def test_job_warnings_stay_silent_on_demo_data(jobs: dict) -> None:
     for name in ("kiln", "green"):
         assert not [w for w in jobs[name]["warnings"] if "leakage" in w or "copy of" in w]
@@ -222,3 +243,27 @@ def test_report_refreshes_while_a_job_waits(server: Server, jobs: dict) -> None:
         client.post(f"/v1/jobs/{job['id']}/cancel")
         wait_for_job(client, job["id"])
     assert 'http-equiv="refresh"' in html
+
+
+def test_report_page_shows_calibration(server: Server, jobs: dict) -> None:
+    model = jobs["kiln_model"]
+    with server.client() as client:
+        html = client.get(f"/v1/jobs/{jobs['kiln']['id']}/report").text
+    cal = model["details"]["calibration"]
+    paragraph = html.split("id='calibration'>")[1].split("</p>")[0]
+    assert ("Probabilities calibrated" in paragraph) == cal["applied"]
+    assert "out-of-fold log loss" in paragraph and "hold-out log loss" in paragraph
+
+
+def test_gain_over_defaults_is_reported(server: Server, jobs: dict) -> None:
+    for name in ("kiln", "green"):
+        model = jobs[f"{name}_model"]
+        gain = model["details"]["gain_over_defaults"]
+        assert gain["available"] and gain["baseline_trial"] == 0
+        assert gain["low"] <= gain["gain"] <= gain["high"]
+        assert gain["tuned"] == pytest.approx(model["holdout"][model["metric"]], rel=1e-9)
+        with server.client() as client:
+            html = client.get(f"/v1/jobs/{jobs[name]['id']}/report").text
+        sentence = html.split("id='gain'")[1].split("</p>")[0]
+        assert ("Tuning gained" in sentence) == (gain["helped"] and not gain["same_trial"])
+        assert ("did not help" in sentence) == (not gain["helped"] and not gain["same_trial"])

@@ -33,7 +33,7 @@ def test_overrides_apply() -> None:
     assert space["extra_trees"] == Choice((True, False))
     assert space["max_bin"] == Choice((63, 255))
     assert space["lambda_l1"] == ParamRange(1e-8, 1.0, log=True)
-    assert DEFAULT_SPACE["num_leaves"] == ParamRange(8, 256, log=True, kind="int")  # unchanged
+    assert DEFAULT_SPACE["num_leaves"] == ParamRange(4, 256, log=True, kind="int")  # unchanged
 
 
 @pytest.mark.parametrize(
@@ -99,7 +99,7 @@ def test_suggest_samples_inside_ranges_and_keeps_fixed_values() -> None:
         params = suggest(trial, space, n_train_rows=300)
         assert params["learning_rate"] == 0.05 and "learning_rate" not in trial.params
         assert 5 <= params["min_data_in_leaf"] <= 30
-        assert 8 <= params["num_leaves"] <= 256 and isinstance(params["num_leaves"], int)
+        assert 4 <= params["num_leaves"] <= 256 and isinstance(params["num_leaves"], int)
         assert 0.4 <= params["feature_fraction"] <= 1.0
         assert params["max_bin"] in (63, 127)
         study.tell(trial, 0.0)

@@ -237,7 +237,10 @@ def evaluate_model(fitted: FittedModel, data: PreparedData, plan: ValidationPlan
     result: dict[str, Any] = {"seed": seed, "bootstrap_resamples": n_resamples}
     rows = plan.holdout_idx
     if len(rows):
-        pred = predict(fitted.booster, data.task, data.X.iloc[rows])
+        # The scored model's predictions: after a refit on all rows the served booster has
+        # seen the hold-out.
+        pred = (fitted.holdout_pred if fitted.holdout_pred is not None
+                else predict(fitted.booster, data.task, data.X.iloc[rows]))
         y = data.y[rows]
         w = None if data.weight is None else data.weight[rows]
         intervals = bootstrap_intervals(data.task, y, pred, w, n_resamples=n_resamples,

@@ -99,7 +99,8 @@ async def upload_dataset(
 ) -> DatasetOut:
     limit = settings.max_upload_mb * (1 << 20)
     with store.temp_path(".upload") as tmp:
-        received = await ingest.receive(request, tmp, limit=limit, name=name)
+        received = await ingest.receive(request, tmp, limit=limit, name=name,
+                                        table_limit=settings.table_limit_bytes)
         out = await run_in_threadpool(_store_dataset, settings.db_url, store, received)
     response.headers["Location"] = f"/v1/datasets/{out.id}"
     return out

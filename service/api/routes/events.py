@@ -1,28 +1,24 @@
 """Live progress of a job as Server-Sent Events, so other systems need not poll.
 
-The API process has no line to the workers: the stream polls the database (our copy
-of the trials, and the job row) and turns what changed into events. Reading the status
-before the trials means that once a terminal status is seen, every trial the worker
-committed before finishing is read in the same pass, so the final event comes last.
+The API process has no line to the workers: one shared poller per watched job reads
+the database (our copy of the trials, and the job row) and every open stream of that
+job turns what changed into events (service/api/jobwatch.py).
 """
 
 from __future__ import annotations
 
-import asyncio
 from collections.abc import AsyncIterator
 from typing import Annotated, Any
 
-import sqlalchemy as sa
 from fastapi import APIRouter, Depends, Query, Request
-from fastapi.concurrency import run_in_threadpool
 from fastapi.sse import EventSourceResponse, ServerSentEvent
 
 from service import repository
 from service.api.deps import SettingsDep
+from service.api.jobwatch import Ticket, WatchHub
 from service.api.routes.jobs import to_out
-from service.api.schemas import TrialOut
+from service.auth import hash_key
 from service.db import session_scope
-from service.tables import JobStatus, Trial
 
 router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
 
@@ -43,50 +39,20 @@ def _status_payload(job: Any, *, final: bool) -> dict[str, Any]:
             "error": out.error}
 
 
-def _poll(url: str, job_id: str, floor: int, seen: set[int]) -> tuple[dict[str, Any], list]:
-    """The job's status, then its finished trials numbered ``floor`` or more not yet seen."""
-    with session_scope(url) as session:
-        job = repository.get_job(session, job_id)
-        status = {"status": job.status, "payload": _status_payload(job, final=False)}
-        trials = session.scalars(
-            sa.select(Trial)
-            .where(Trial.job_id == job_id, Trial.number >= floor)
-            .order_by(Trial.number)
-        ).all()
-        fresh = [TrialOut.model_validate(t, from_attributes=True)
-                 for t in trials if t.number not in seen]
-    return status, fresh
+def _watcher(request: Request) -> str:
+    """Whose stream this is, for the per-key cap: a hash of the key (all key-less
+    requests count as one)."""
+    authorization = request.headers.get("authorization")
+    return hash_key(authorization) if authorization else "no key"
 
 
-async def _stream(
-    request: Request, url: str, job_id: str, poll: float
-) -> AsyncIterator[ServerSentEvent]:
-    seen: set[int] = set()
-    floor = 0  # every trial below this number has been sent
-    last_status: str | None = None
-    completed = pruned = failed = 0
-    while True:
-        status, fresh = await run_in_threadpool(_poll, url, job_id, floor, seen)
-        if status["status"] != last_status and not JobStatus(status["status"]).is_finished():
-            last_status = status["status"]
-            yield ServerSentEvent(event="status", data=status["payload"])
-        for trial in fresh:
-            seen.add(trial.number)
-            completed += trial.state == "complete"
-            pruned += trial.state == "pruned"
-            failed += trial.state == "failed"
-            yield ServerSentEvent(
-                event="trial", id=str(trial.number),
-                data={"job_id": job_id, **trial.model_dump(), "trials_completed": completed,
-                      "trials_pruned": pruned, "trials_failed": failed})
-        while floor in seen:
-            floor += 1
-        if JobStatus(status["status"]).is_finished():
-            yield ServerSentEvent(event="status", data={**status["payload"], "final": True})
-            return
-        if await request.is_disconnected():
-            return
-        await asyncio.sleep(poll)
+async def _stream(request: Request, ticket: Ticket) -> AsyncIterator[ServerSentEvent]:
+    hub: WatchHub = request.app.state.watch_hub
+    async for kind, data in hub.events(ticket, request.is_disconnected):
+        if kind == "trial":
+            yield ServerSentEvent(event="trial", id=str(data["number"]), data=data)
+        else:
+            yield ServerSentEvent(event="status", data=data)
 
 
 def _existing_job(job_id: str, settings: SettingsDep) -> str:
@@ -97,6 +63,20 @@ def _existing_job(job_id: str, settings: SettingsDep) -> str:
     return job_id
 
 
+async def _admitted(request: Request, job_id: Annotated[str, Depends(_existing_job)],
+                    ) -> AsyncIterator[Ticket]:
+    """A place under the stream caps, taken before the response starts (so a refusal is
+    a 429, not a stream cut short) and given back when the request ends, even if the
+    stream itself never started."""
+    hub: WatchHub = request.app.state.watch_hub
+    ticket = hub.subscribe(job_id, _watcher(request),
+                           lambda job: _status_payload(job, final=False))
+    try:
+        yield ticket
+    finally:
+        ticket.release()
+
+
 @router.get(
     "/{job_id}/events",
     response_class=EventSourceResponse,
@@ -105,15 +85,17 @@ def _existing_job(job_id: str, settings: SettingsDep) -> str:
         "A `status` event now and on every status change, a `trial` event (id = trial "
         "number) for every finished trial, and a last `status` event with `final: true` "
         "once the job has succeeded, failed or been cancelled; then the stream ends. "
-        "Try `curl -N`."
+        "Try `curl -N`. A job's streams share one poller that looks once a second; open "
+        "streams are capped per key and in total (429 past a cap)."
     ),
     responses={200: {"content": {"text/event-stream": {"example": EXAMPLE_STREAM}}}},
 )
 async def job_events(
     request: Request,
-    job_id: Annotated[str, Depends(_existing_job)],
-    poll: Annotated[float, Query(ge=0.1, le=10, description="seconds between looks")] = 0.5,
+    ticket: Annotated[Ticket, Depends(_admitted, scope="request")],
+    poll: Annotated[float, Query(
+        ge=0.1, le=10, description="accepted for older clients; a job's streams share one "
+        "poller that looks once a second")] = 1.0,
 ) -> AsyncIterator[ServerSentEvent]:
-    url = request.app.state.settings.db_url
-    async for event in _stream(request, url, job_id, poll):
+    async for event in _stream(request, ticket):
         yield event

@@ -104,12 +104,14 @@ def cancel_scoring(scoring_id: str, session: SessionDep) -> ScoringOut:
     return to_out(scoring)
 
 
-def _csv_chunks(path: Path) -> Iterator[bytes]:
+def _csv_chunks(path: Path, keep: list[str]) -> Iterator[bytes]:
     # Chunk by chunk, so a result of any size is sent without being held in memory.
+    # Kept columns are echoed exactly; the rest is neutralised against spreadsheet
+    # formulas (service/api/tabular.py).
     parquet = pq.ParquetFile(path)
     first = True
     for batch in parquet.iter_batches(batch_size=CSV_CHUNK_ROWS):
-        text = frame_csv(batch.to_pandas())
+        text = frame_csv(batch.to_pandas(), exact=keep)
         if not first:
             text = text.split("\n", 1)[1]
         first = False
@@ -135,7 +137,8 @@ def get_result(
     path = store.local_path(scoring.result_key, scoring.result_sha256)
     session.close()
     if format != "parquet" and wants_csv(request, format):
-        return StreamingResponse(_csv_chunks(path), media_type="text/csv; charset=utf-8",
+        keep = list(scoring.keep or [])
+        return StreamingResponse(_csv_chunks(path, keep), media_type="text/csv; charset=utf-8",
                                  headers={"X-Model-Id": scoring.model_id})
     return FileResponse(path, media_type=PARQUET, filename=f"{scoring_id}.parquet",
                         headers={"X-Model-Id": scoring.model_id})
