@@ -11,7 +11,10 @@ import signal
 import subprocess
 import sys
 import threading
+import time
 from collections.abc import Iterator
+from datetime import datetime, timedelta
+from pathlib import Path
 from typing import Any
 
 import uvicorn
@@ -77,12 +80,24 @@ class WorkerPool:
         self._watch.start()
 
     def _supervise(self) -> None:
+        next_prune = time.monotonic() + 60.0  # the first a minute after start
         while not self.stopping.wait(2.0):
             for i, proc in enumerate(self.procs):
                 if proc.poll() is not None and not self.stopping.is_set():
                     log.warning("worker pid %d exited with %s; starting another",
                                 proc.pid, proc.returncode)
                     self.procs[i] = self._spawn()
+            if time.monotonic() >= next_prune:
+                next_prune = time.monotonic() + self.settings.retention_every_hours * 3600
+                self._retention()
+
+    def _retention(self) -> None:
+        from service.housekeeping import prune
+
+        try:
+            prune(self.settings, trials_days=self.settings.retain_trials_days)
+        except Exception:  # noqa: BLE001 - retention is housekeeping: log, retry later
+            log.exception("retention failed; it runs again at its next interval")
 
     def stop(self, timeout: float = 60.0) -> None:
         """SIGTERM: each worker finishes or hands back its trial and releases its job."""
@@ -117,6 +132,10 @@ def cmd_serve(args: argparse.Namespace) -> int:
     _setup_logging(settings)
     settings.ensure_dirs()
     init_db(settings.db_url)  # once, here, so workers and API never race on the schema
+    from service.storage import ArtifactStore
+
+    # Temporary files of an earlier life of this server (kill -9 mid-upload) go now.
+    ArtifactStore(settings.artifacts_url, settings.tmp_dir).sweep_temp()
     if not is_loopback(args.host) and not any_key_exists(settings.db_url):
         print(
             f"grovekeeper: refusing to listen on {args.host} while no API key exists; "
@@ -168,7 +187,6 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 def cmd_migrate(args: argparse.Namespace) -> int:
     """Create or upgrade the schema (ours and Optuna's); the containers' prestart step."""
-    import time
 
     from service.db import init_db, ping
     from service.migrations import SCHEMA_VERSION
@@ -197,11 +215,63 @@ def cmd_keys_create(args: argparse.Namespace) -> int:
     settings = _settings(args)
     settings.ensure_dirs()
     init_db(settings.db_url)
-    key_id, secret = create_key(settings.db_url, scope=args.scope)
+    key_id, secret = create_key(settings.db_url, scope=args.scope, expires_in=args.expires_in)
     print(secret)
-    print(f"key {key_id} ({args.scope}); shown once, only its hash is stored",
+    until = f", expires in {args.expires_in}" if args.expires_in else ""
+    print(f"key {key_id} ({args.scope}{until}); shown once, only its hash is stored",
           file=sys.stderr)
     return 0
+
+
+def cmd_backup(args: argparse.Namespace) -> int:
+    from service.db import init_db, is_sqlite
+    from service.housekeeping import backup
+
+    settings = _settings(args)
+    init_db(settings.db_url)
+    if not is_sqlite(settings.db_url):
+        print("grovekeeper: PostgreSQL is copied with pg_dump (see README, Backups); run it "
+              "first, then this command copies the artifacts its rows refer to",
+              file=sys.stderr)
+    try:
+        report = backup(settings, Path(args.dest))
+    except ValueError as exc:
+        print(f"grovekeeper: {exc}", file=sys.stderr)
+        return 2
+    what = "database and " if report.database else ""
+    print(f"copied the {what}{report.artifacts} artifact file(s) to {args.dest}",
+          file=sys.stderr)
+    for key in report.missing:
+        print(f"grovekeeper: {key} was deleted while the copy ran; its row is in the copy",
+              file=sys.stderr)
+    return 0
+
+
+def cmd_prune(args: argparse.Namespace) -> int:
+    from service.db import init_db
+    from service.housekeeping import prune
+
+    settings = _settings(args)
+    init_db(settings.db_url)
+    days = args.trials_days if args.trials_days is not None else settings.retain_trials_days
+    report = prune(settings, trials_days=days)
+    print(f"deleted the trials of {report.jobs} finished job(s) ({report.trials} rows) and "
+          f"{len(report.files)} unreferenced file(s)", file=sys.stderr)
+    return 0
+
+
+def duration(text: str) -> timedelta:
+    """``90s``, ``30m``, ``12h``, ``7d`` or plain seconds, for ``keys create --expires-in``."""
+    units = {"s": 1, "m": 60, "h": 3600, "d": 86400}
+    number, unit = (text[:-1], text[-1]) if text and text[-1] in units else (text, "s")
+    try:
+        seconds = float(number) * units[unit]
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"'{text}' is not a duration (e.g. 90s, 30m, 12h, 7d)") from None
+    if seconds <= 0:
+        raise argparse.ArgumentTypeError("the duration must be positive")
+    return timedelta(seconds=seconds)
 
 
 def cmd_keys_list(args: argparse.Namespace) -> int:
@@ -211,10 +281,14 @@ def cmd_keys_list(args: argparse.Namespace) -> int:
     settings = _settings(args)
     settings.ensure_dirs()
     init_db(settings.db_url)
-    print(f"{'id':<28} {'scope':<6} {'created':<20} revoked")
+    def when(stamp: datetime | None) -> str:
+        return stamp.strftime("%Y-%m-%d %H:%M:%S") if stamp else "-"
+
+    print(f"{'id':<28} {'scope':<6} {'created':<20} {'expires':<20} {'last used':<20} revoked")
     for key in list_keys(settings.db_url):
-        revoked = key.revoked_at.strftime("%Y-%m-%d %H:%M:%S") if key.revoked_at else "-"
-        print(f"{key.id:<28} {key.scope:<6} {key.created_at:%Y-%m-%d %H:%M:%S} {revoked}")
+        print(f"{key.id:<28} {key.scope:<6} {when(key.created_at):<20} "
+              f"{when(key.expires_at):<20} {when(key.last_used_at):<20} "
+              f"{when(key.revoked_at)}")
     return 0
 
 
@@ -272,6 +346,9 @@ def build_parser() -> argparse.ArgumentParser:
     create = keys_sub.add_parser("create", help="print a new API key once")
     common(create)
     create.add_argument("--scope", choices=["read", "write", "admin"], required=True)
+    create.add_argument("--expires-in", type=duration, default=None, metavar="DURATION",
+                        help="the key stops working after this long (90s, 30m, 12h, 7d); "
+                        "default: never")
     create.set_defaults(func=cmd_keys_create)
     listing = keys_sub.add_parser("list", help="list keys (ids, scopes, dates; never secrets)")
     common(listing)
@@ -281,6 +358,18 @@ def build_parser() -> argparse.ArgumentParser:
     common(revoke)
     revoke.add_argument("key_id", help="the key's id, as 'keys list' shows it")
     revoke.set_defaults(func=cmd_keys_revoke)
+
+    back = sub.add_parser("backup", help="copy the database (SQLite) and its artifacts into "
+                          "a new folder while the service runs")
+    common(back)
+    back.add_argument("dest", help="a new or empty folder")
+    back.set_defaults(func=cmd_backup)
+    prune_p = sub.add_parser("prune", help="apply the retention settings once")
+    common(prune_p)
+    prune_p.add_argument("--trials-days", type=float, default=None,
+                         help="delete trials of jobs finished more than this many days ago "
+                         "(default $GROVEKEEPER_RETAIN_TRIALS_DAYS; unset keeps them)")
+    prune_p.set_defaults(func=cmd_prune)
 
     from client.cli import register  # upload, tune, board, predict, ...
 

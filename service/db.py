@@ -12,6 +12,10 @@ from sqlalchemy import event
 from sqlalchemy.engine import Engine
 from sqlalchemy.orm import Session, sessionmaker
 
+from tuner.journal import POSTGRES_CONNECT_ARGS, is_transient, with_reconnect
+
+__all__ = ["is_transient", "with_reconnect", "describe_outage"]
+
 # Long enough that a writer waiting behind a trial commit never gives up; see
 # LIBRARIES.md §2 (lock waits show up as stalls, not errors, at 30 s and more).
 SQLITE_BUSY_TIMEOUT_S = 60
@@ -28,6 +32,9 @@ def _sqlite_pragmas(dbapi_conn, _record) -> None:  # type: ignore[no-untyped-def
     # NORMAL is durable across application crashes in WAL mode (only an OS crash
     # can roll back the last commits), and it is much cheaper per trial than FULL.
     cur.execute("PRAGMA synchronous=NORMAL")
+    # After a checkpoint that empties the WAL, cut the file back to 64 MiB: without it the
+    # WAL keeps the size of its largest burst for the life of the database.
+    cur.execute("PRAGMA journal_size_limit=67108864")
     cur.execute("PRAGMA foreign_keys=ON")
     cur.execute(f"PRAGMA busy_timeout={SQLITE_BUSY_TIMEOUT_S * 1000}")
     cur.close()
@@ -40,7 +47,10 @@ def make_engine(url: str) -> Engine:
         )
         event.listen(engine, "connect", _sqlite_pragmas)
         return engine
-    return sa.create_engine(url, pool_pre_ping=True, pool_size=10, max_overflow=20)
+    # pre-ping: a connection the server dropped (restart, network cut) is replaced on
+    # checkout instead of failing the first query after it.
+    return sa.create_engine(url, pool_pre_ping=True, pool_size=10, max_overflow=20,
+                            pool_timeout=10, connect_args=POSTGRES_CONNECT_ARGS)
 
 
 _engines: dict[str, Engine] = {}
@@ -115,3 +125,23 @@ def init_db(url: str, *, attempts: int = 5) -> None:
 def ping(url: str) -> None:
     with get_engine(url).connect() as conn:
         conn.execute(sa.text("SELECT 1"))
+
+
+def describe_outage(exc: BaseException) -> str:
+    """Why the database cannot be used, in words: no host names, ports or paths."""
+    text = str(getattr(exc, "orig", None) or exc).lower()
+    for needle, words in (
+        ("locked", "the database file is locked by another writer"),
+        ("busy", "the database file is locked by another writer"),
+        ("starting up", "the database is starting up"),
+        ("shutting down", "the database is shutting down"),
+        ("terminating connection", "the database closed the connection (restart or shutdown)"),
+        ("refused", "the database refuses connections (not running?)"),
+        ("timeout", "the database did not answer in time"),
+        ("timed out", "the database did not answer in time"),
+        ("closed", "the connection to the database was lost"),
+        ("unable to open", "the database file cannot be opened"),
+    ):
+        if needle in text:
+            return words
+    return "the database cannot be reached"

@@ -72,6 +72,12 @@ class Unprocessable(ServiceError):
             self.code = code
 
 
+class InsufficientStorage(ServiceError):
+    status = 507
+    code = "disk_full"
+    title = "Insufficient storage"
+
+
 def describe_failure(exc: BaseException) -> str:
     """What went wrong, in words any reader of the job may see.
 

@@ -12,6 +12,13 @@ the study, refits the winner and finishes the job). While the job runs, other wo
 a row in ``gk_job_workers`` with its own heartbeat. A stale lead sends the job back to the
 queue (the next claimer becomes lead; live joiners carry on); a stale joiner only loses
 its row. Optuna's own trial heartbeat fails the dead worker's trials in flight.
+
+Fencing (after Kleppmann, *Designing Data-Intensive Applications*, ch. 8): every claim
+raises the job's ``epoch`` and hands it to the claimer. A lead's heartbeat, status writes,
+trial copies and model go through only while the job still carries its epoch, so a lead
+cut off long enough to be replaced cannot write over its successor when it comes back; it
+learns that it lost the job and abandons it. A joiner's token is its participant row:
+once swept as stale, its writes are refused too.
 """
 
 from __future__ import annotations
@@ -29,6 +36,12 @@ RUNNING = JobStatus.RUNNING.value
 
 def claim_next(session: Session, *, worker_id: str) -> str | None:
     """Take the highest-priority, oldest queued job for ``worker_id``; None when idle."""
+    claimed = claim(session, worker_id=worker_id)
+    return None if claimed is None else claimed[0]
+
+
+def claim(session: Session, *, worker_id: str) -> tuple[str, int] | None:
+    """``claim_next`` that also answers the claim's epoch (the fencing token)."""
     now = utcnow()
     candidate = (
         sa.select(Job.id)
@@ -47,14 +60,37 @@ def claim_next(session: Session, *, worker_id: str) -> str | None:
             started_at=sa.func.coalesce(Job.started_at, now),
             heartbeat_at=now,
             attempts=Job.attempts + 1,
+            epoch=Job.epoch + 1,
         )
-        .returning(Job.id)
+        .returning(Job.id, Job.epoch)
         .execution_options(synchronize_session=False)
     )
-    job_id = session.execute(stmt).scalar_one_or_none()
-    if job_id is not None:
-        _add_participant(session, job_id=job_id, worker_id=worker_id, now=now)
-    return job_id
+    row = session.execute(stmt).first()
+    if row is None:
+        return None
+    _add_participant(session, job_id=row[0], worker_id=worker_id, now=now)
+    return row[0], int(row[1])
+
+
+def _held(job_id: str, worker_id: str, epoch: int | None) -> sa.ColumnElement[bool]:
+    """The job is running under this worker's claim (and epoch, when one is given)."""
+    held = sa.and_(Job.id == job_id, Job.worker_id == worker_id, Job.status == RUNNING)
+    return held if epoch is None else sa.and_(held, Job.epoch == epoch)
+
+
+def holds(session: Session, *, job_id: str, worker_id: str, epoch: int | None) -> bool:
+    """Whether the claim still stands; locks the job row (PostgreSQL) until commit, so
+    the write that follows in the same transaction cannot race a new claim."""
+    row = session.execute(sa.select(Job.id).where(_held(job_id, worker_id, epoch))
+                          .with_for_update()).first()
+    return row is not None
+
+
+def is_participant(session: Session, *, job_id: str, worker_id: str) -> bool:
+    """A joiner's claim: its row in ``gk_job_workers`` (swept when its heartbeat is stale)."""
+    session.get(Job, job_id, with_for_update={"key_share": True})
+    return session.execute(sa.select(JobWorker.worker_id).where(
+        JobWorker.job_id == job_id, JobWorker.worker_id == worker_id)).first() is not None
 
 
 def _add_participant(session: Session, *, job_id: str, worker_id: str, now: datetime) -> None:
@@ -117,19 +153,20 @@ def participants(session: Session, *, job_id: str) -> list[str]:
 
 
 def set_joinable(session: Session, *, job_id: str, worker_id: str,
-                 joinable: bool = True) -> None:
+                 joinable: bool = True, epoch: int | None = None) -> None:
     """Open the lead's job to joiners, or close it (its budget is spent: a joiner would
     only load the study to find nothing left to run, again and again)."""
-    session.execute(sa.update(Job).where(Job.id == job_id, Job.worker_id == worker_id)
+    session.execute(sa.update(Job).where(_held(job_id, worker_id, epoch))
                     .values(joinable=joinable).execution_options(synchronize_session=False))
 
 
-def heartbeat(session: Session, *, job_id: str, worker_id: str) -> tuple[bool, bool]:
+def heartbeat(session: Session, *, job_id: str, worker_id: str,
+              epoch: int | None = None) -> tuple[bool, bool]:
     """Refresh the lead's claim. Returns (still ours, cancel requested)."""
     now = utcnow()
     result = session.execute(
         sa.update(Job)
-        .where(Job.id == job_id, Job.worker_id == worker_id, Job.status == RUNNING)
+        .where(_held(job_id, worker_id, epoch))
         .values(heartbeat_at=now)
         .returning(Job.cancel_requested)
         .execution_options(synchronize_session=False)
@@ -165,11 +202,12 @@ def heartbeat_joiner(session: Session, *, job_id: str, worker_id: str) -> tuple[
     return True, bool(row[1])
 
 
-def release(session: Session, *, job_id: str, worker_id: str) -> bool:
+def release(session: Session, *, job_id: str, worker_id: str,
+            epoch: int | None = None) -> bool:
     """Hand a running job back to the queue (graceful shutdown)."""
     result = session.execute(
         sa.update(Job)
-        .where(Job.id == job_id, Job.worker_id == worker_id, Job.status == RUNNING)
+        .where(_held(job_id, worker_id, epoch))
         .values(status=QUEUED, worker_id=None, heartbeat_at=None)
         .execution_options(synchronize_session=False)
     )
@@ -185,11 +223,12 @@ def finish(
     status: JobStatus,
     error: str | None = None,
     model_id: str | None = None,
+    epoch: int | None = None,
 ) -> bool:
-    """Mark the job finished if this worker still holds it."""
+    """Mark the job finished if this worker still holds it (under ``epoch``, if given)."""
     result = session.execute(
         sa.update(Job)
-        .where(Job.id == job_id, Job.worker_id == worker_id, Job.status == RUNNING)
+        .where(_held(job_id, worker_id, epoch))
         .values(status=status.value, error=error, model_id=model_id, finished_at=utcnow())
         .execution_options(synchronize_session=False)
     )

@@ -176,6 +176,10 @@ def trial_counts(session: Session, *, job_id: str) -> dict[str, int]:
 # -- models -----------------------------------------------------------------
 
 
+def model_exists(session: Session, model_id: str) -> bool:
+    return session.get(Model, model_id) is not None
+
+
 def add_model(session: Session, **fields: Any) -> Model:
     model = Model(**fields)
     session.add(model)

@@ -43,6 +43,11 @@ class Settings(BaseSettings):
     # Where datasets and model files live: a local folder (default: the home) or any fsspec
     # URL every process can reach (a shared mount, ``s3://bucket/prefix`` with s3fs, ...).
     artifacts: str | None = None
+    # Retention (service/housekeeping.py): trials of jobs finished more than this many days
+    # ago are deleted (jobs and models stay); unset keeps them for ever. ``serve`` applies
+    # it, with the sweep of unreferenced artifact files, every retention_every_hours.
+    retain_trials_days: float | None = Field(default=None, gt=0)
+    retention_every_hours: float = Field(default=6.0, gt=0)
     # Set by ``serve`` for the workers it starts, so they stop when it is gone.
     parent_pid: int | None = None
 

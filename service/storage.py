@@ -16,10 +16,13 @@ recorded sha256 checks it, so a corrupt or truncated copy is refused, not used.
 
 from __future__ import annotations
 
+import errno
 import hashlib
+import logging
 import os
 import secrets
 import shutil
+import socket
 import tempfile
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -29,6 +32,24 @@ import fsspec
 from fsspec.implementations.local import LocalFileSystem
 
 CHUNK = 1 << 20
+log = logging.getLogger("grovekeeper.storage")
+# Temporary files carry the writing process's id and a tag of its machine, so a sweep can
+# tell a live writer's file from one left by a crash (``sweep_temp``); files written by
+# another machine sharing the folder are never this machine's to judge.
+_HOST_TAG = hashlib.sha256(socket.gethostname().encode()).hexdigest()[:8]
+_TEMP_PREFIX = "gk-{pid}-" + _HOST_TAG + "-"
+
+
+def is_disk_full(exc: BaseException | None) -> bool:
+    """Whether ``exc`` (or what caused it) is a full disk or an exhausted quota."""
+    seen = 0
+    while exc is not None and seen < 8:
+        if isinstance(exc, OSError) and (exc.errno in (errno.ENOSPC, errno.EDQUOT)
+                                         or "No space left on device" in str(exc)):
+            return True
+        exc = exc.__cause__ or exc.__context__
+        seen += 1
+    return False
 
 
 class ArtifactMissing(FileNotFoundError):
@@ -62,7 +83,9 @@ class ArtifactStore:
         self.is_local = isinstance(self.fs, LocalFileSystem)
         self.base = base.rstrip("/")
         self.root = Path(base)  # meaningful for local stores only
-        self.tmp_dir = tmp_dir
+        # A local store keeps its temporary files on its own file system, so the final
+        # os.replace is a rename there (never a copy across mounts).
+        self.tmp_dir = self.root / "tmp" if self.is_local else tmp_dir
         self.cache_dir = cache_dir or tmp_dir.parent / "cache"
 
     def path(self, key: str) -> Path:
@@ -78,7 +101,8 @@ class ArtifactStore:
     def temp_path(self, suffix: str = "") -> Iterator[Path]:
         """A temporary file on the store's file system, removed unless moved away."""
         self.tmp_dir.mkdir(parents=True, exist_ok=True)
-        fd, name = tempfile.mkstemp(dir=self.tmp_dir, suffix=suffix)
+        fd, name = tempfile.mkstemp(dir=self.tmp_dir, suffix=suffix,
+                                    prefix=_TEMP_PREFIX.format(pid=os.getpid()))
         os.close(fd)
         tmp = Path(name)
         try:
@@ -153,9 +177,42 @@ class ArtifactStore:
         if self.fs.exists(self._remote(key)):
             self.fs.rm(self._remote(key))
 
+    def sweep_temp(self) -> list[Path]:
+        """Delete temporary files whose writer is gone (a crash mid-upload or mid-save),
+        including the model writer's own ``.gk-….tmp`` beside them. A file of a process
+        still running on this machine is left alone."""
+        if not self.is_local or not self.tmp_dir.exists():
+            return []
+        swept = []
+        for path in [*self.tmp_dir.glob("gk-*"), *self.tmp_dir.glob(".gk-*")]:
+            if path.is_file() and not _writer_alive(path):
+                path.unlink(missing_ok=True)
+                swept.append(path)
+        if swept:
+            log.warning("removed %d temporary file(s) left by a crash", len(swept))
+        return swept
+
     def exists(self, key: str) -> bool:
         return self.path(key).exists() if self.is_local else bool(
             self.fs.exists(self._remote(key)))
+
+
+def _writer_alive(path: Path) -> bool:
+    parts = path.name.lstrip(".").split("-")
+    if parts[0] == "gk" and len(parts) > 3 and parts[1].isdigit():
+        if parts[2] != _HOST_TAG:
+            return True  # another machine's file: assume its writer lives
+        pid = int(parts[1])
+        if pid == os.getpid():
+            return True
+        try:
+            os.kill(pid, 0)
+        except ProcessLookupError:
+            return False
+        except PermissionError:
+            return True
+        return True
+    return False
 
 
 # The foundation's name; a store built from a plain folder is exactly that.

@@ -77,6 +77,9 @@ class Job(Base):
     # that joiners never race for a WAITING trial (unsafe on SQLite, LIBRARIES.md §2).
     joinable: Mapped[bool] = mapped_column(default=False, server_default=sa.false())
     attempts: Mapped[int] = mapped_column(default=0)
+    # The fencing token: raised by every claim. A lead's writes (status, trial copy, model)
+    # carry the epoch of its claim and are refused once another claim has raised it.
+    epoch: Mapped[int] = mapped_column(default=0, server_default="0")
     warnings: Mapped[list[Any]] = mapped_column(default=list)
     created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
     started_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
@@ -253,6 +256,10 @@ class ApiKey(Base):
     key_hash: Mapped[str] = mapped_column(sa.String(64), unique=True)
     created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
     revoked_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
+    # Optional end of validity; after it the key is refused like a revoked one.
+    expires_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
+    # Written at most once a minute per key and API process (service/auth.py).
+    last_used_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
 
 
 class KeyGeneration(Base):
@@ -265,3 +272,21 @@ class KeyGeneration(Base):
 
     id: Mapped[int] = mapped_column(primary_key=True)
     generation: Mapped[int] = mapped_column(sa.BigInteger, default=0)
+
+
+class AuditEntry(Base):
+    """One change made through the API or the key commands: which key, when, what."""
+
+    __tablename__ = "gk_audit"
+
+    id: Mapped[int] = mapped_column(sa.BigInteger().with_variant(sa.Integer, "sqlite"),
+                                    primary_key=True, autoincrement=True)
+    at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow,
+                                         index=True)
+    # None: a server without keys, or a command run on the server (keys create/revoke).
+    key_id: Mapped[str | None] = mapped_column(sa.String(40))
+    action: Mapped[str] = mapped_column(sa.String(40), index=True)
+    target: Mapped[str | None] = mapped_column(sa.String(200))
+    method: Mapped[str | None] = mapped_column(sa.String(8))
+    path: Mapped[str | None] = mapped_column(sa.String(300))
+    status: Mapped[int | None]

@@ -18,13 +18,22 @@ Heartbeats (Optuna's ``BaseHeartbeat``, driven by its optimize loop): the proces
 running a trial stamps a row in ``gk_trial_beats`` every interval; a running trial whose
 stamp (or start, before its first stamp) is older than the grace period is failed by the
 next trial any process starts, as ``RDBStorage`` does.
+
+A lost connection (a database restart, a network cut) is not an error here: reads,
+appends and the stale-trial check wait and try again with growing pauses for up to
+``RECONNECT_SECONDS``, so a trial that finishes while the database is away is written
+once it is back. An append whose commit may have landed before the connection broke is
+looked up by its nonce (``_n``, a key Optuna's replay ignores) before it is tried again,
+so a retry never writes an operation twice.
 """
 
 from __future__ import annotations
 
 import json
+import logging
 import threading
 import time
+import uuid
 from collections.abc import Callable, Iterable
 from typing import Any
 
@@ -53,6 +62,23 @@ BEATS = sa.Table(
 # A lock wait beats a failure: SQLite's default 5 s is short behind a busy writer.
 _SQLITE_TIMEOUT_S = 60
 _APPEND_ATTEMPTS = 1000
+# libpq settings for every PostgreSQL connection: give up connecting after 5 s, and drop a
+# connection whose peer is gone (keepalives; unacknowledged data after 10 s) instead of
+# waiting for the kernel's retransmission timeout of about a quarter of an hour. The
+# caller sees an OperationalError it can retry, not a hang. On the server side, a session
+# left idle inside a transaction for 30 s is ended: a client cut off mid-transaction (its
+# side already gave up) must not hold row locks, e.g. on a job row, until the server's
+# own keepalives notice hours later. No transaction of ours waits that long between two
+# statements.
+POSTGRES_CONNECT_ARGS: dict[str, Any] = {
+    "connect_timeout": 5, "keepalives": 1, "keepalives_idle": 5, "keepalives_interval": 2,
+    "keepalives_count": 3, "tcp_user_timeout": 10_000,
+    "options": "-c idle_in_transaction_session_timeout=30000",
+}
+# How long a journal operation waits for a lost database to come back before it fails.
+RECONNECT_SECONDS = 300.0
+
+log = logging.getLogger("tuner.journal")
 
 _engines: dict[tuple[str, bool], Engine] = {}
 _lock = threading.Lock()
@@ -65,6 +91,9 @@ def _sqlite_connect(dbapi_conn: Any, _record: Any) -> None:
     # and survives any process crash (only an OS crash can lose the last commits).
     cur.execute("PRAGMA journal_mode=WAL")
     cur.execute("PRAGMA synchronous=NORMAL")
+    # After a checkpoint that empties the WAL, cut the file back to 64 MiB: without it the
+    # WAL keeps the size of its largest burst for the life of the database.
+    cur.execute("PRAGMA journal_size_limit=67108864")
     cur.execute(f"PRAGMA busy_timeout={_SQLITE_TIMEOUT_S * 1000}")
     cur.close()
 
@@ -93,7 +122,8 @@ def engine(url: str, *, writer: bool = False) -> Engine:
                     event.listen(made, "connect", _sqlite_autocommit_driver)
                     event.listen(made, "begin", _begin_immediate)
             else:
-                made = sa.create_engine(url, pool_pre_ping=True)
+                made = sa.create_engine(url, pool_pre_ping=True,
+                                        connect_args=POSTGRES_CONNECT_ARGS)
             _engines[key] = made
         return _engines[key]
 
@@ -124,6 +154,49 @@ def create_tables(url: str) -> None:
     _ready.add(url)
 
 
+def is_transient(exc: BaseException) -> bool:
+    """Whether ``exc`` is a lost or refused connection (or a busy SQLite file): worth a retry.
+
+    SQLAlchemy wraps driver errors (``OperationalError``, ``InterfaceError``, or any error
+    it saw invalidate the connection); the journal's raw driver calls raise the driver's
+    own ``OperationalError`` / ``InterfaceError``, which both psycopg and sqlite3 define.
+    """
+    if isinstance(exc, sa.exc.DBAPIError):
+        return bool(exc.connection_invalidated) or isinstance(
+            exc, sa.exc.OperationalError | sa.exc.InterfaceError)
+    if isinstance(exc, sa.exc.DisconnectionError | sa.exc.TimeoutError):
+        return True
+    kind = type(exc)
+    return any(c.__name__ in ("OperationalError", "InterfaceError")
+               and c.__module__.split(".")[0] in ("psycopg", "sqlite3", "psycopg2")
+               for c in kind.__mro__)
+
+
+def with_reconnect(action: Callable[[], Any], what: str,
+                   seconds: float | None = None) -> Any:
+    """``action()``, tried again after a lost connection with pauses of 0.1 s doubling up
+    to 2 s, for up to ``seconds`` (default ``RECONNECT_SECONDS``); then the error stands."""
+    deadline = time.monotonic() + (RECONNECT_SECONDS if seconds is None else seconds)
+    pause = 0.1
+    warned = False
+    while True:
+        try:
+            result = action()
+        except Exception as exc:
+            if not is_transient(exc) or time.monotonic() + pause > deadline:
+                raise
+            if not warned:
+                log.warning("%s: database unreachable (%s); retrying", what,
+                            type(exc).__name__)
+                warned = True
+            time.sleep(pause)
+            pause = min(2.0, pause * 2)
+            continue
+        if warned:
+            log.warning("%s: database reachable again", what)
+        return result
+
+
 # Numbered in the statement that inserts it, so an append is one round trip. The two
 # statements go straight to the driver (through SQLAlchemy's pool): they run a dozen times
 # per trial, and SQLAlchemy's own execution path cost 0.6 ms per append and 0.3 ms per
@@ -132,6 +205,7 @@ _APPEND = ("INSERT INTO gk_trial_journal (study, seq, body) "
            "SELECT {p}, COALESCE(MAX(seq), -1) + 1, {p} FROM gk_trial_journal "
            "WHERE study = {p} RETURNING seq")
 _READ = "SELECT body FROM gk_trial_journal WHERE study = {p} AND seq >= {p} ORDER BY seq"
+_FIND = "SELECT seq FROM gk_trial_journal WHERE study = {p} AND body = {p}"
 
 
 def _sql(template: str, made: Engine) -> str:
@@ -151,6 +225,7 @@ class SQLJournalBackend(BaseJournalBackend):
         self._last: tuple[int, list[str]] | None = None  # (first seq, bodies) just written
         reader, writer = engine(url), engine(url, writer=True)
         self._read_sql, self._append_sql = _sql(_READ, reader), _sql(_APPEND, writer)
+        self._find_sql = _sql(_FIND, reader)
         self._sqlite = url.startswith("sqlite")
 
     def read_logs(self, log_number_from: int) -> Iterable[dict[str, Any]]:
@@ -159,18 +234,72 @@ class SQLJournalBackend(BaseJournalBackend):
             # Rows after ours (other processes') are picked up by the next read. Parsed
             # back from JSON, so this process sees exactly what the others will.
             return [json.loads(body) for body in last[1]]
+        bodies = with_reconnect(lambda: self._read(log_number_from), "journal read")
+        return [json.loads(body) for body in bodies]
+
+    def _read(self, log_number_from: int) -> list[str]:
         conn = engine(self.url).raw_connection()
         try:
             cursor = conn.cursor()
             cursor.execute(self._read_sql, (self.study, log_number_from))
             bodies = [row[0] for row in cursor.fetchall()]
             cursor.close()
+        except BaseException as exc:
+            _discard_if_lost(conn, exc)
+            raise
         finally:
             conn.close()  # back to the pool, which rolls back PostgreSQL's read transaction
-        return [json.loads(body) for body in bodies]
+        return bodies
 
     def append_logs(self, logs: list[dict[str, Any]]) -> None:
-        bodies = [json.dumps(log, separators=(",", ":")) for log in logs]
+        # The nonce makes each body unique, so an append can be found again (see below).
+        nonce = uuid.uuid4().hex
+        bodies = [json.dumps({**log, "_n": f"{nonce}{i}"}, separators=(",", ":"))
+                  for i, log in enumerate(logs)]
+        deadline = time.monotonic() + RECONNECT_SECONDS
+        pause = 0.1
+        while True:
+            try:
+                seqs = self._append(bodies)
+                break
+            except Exception as exc:
+                if not is_transient(exc) or time.monotonic() + pause > deadline:
+                    raise
+                log.warning("journal append: database unreachable (%s); retrying",
+                            type(exc).__name__)
+            time.sleep(pause)
+            pause = min(2.0, pause * 2)
+            # The connection may have broken after the commit landed: look before writing.
+            try:
+                seqs = self._committed(bodies)
+            except Exception as exc:
+                if not is_transient(exc):
+                    raise
+                continue
+            if seqs is not None:
+                break
+        # Consecutive within one transaction, so the logs are rows seqs[0], +1, ...
+        self._last = (seqs[0], bodies) if seqs else None
+
+    def _committed(self, bodies: list[str]) -> list[int] | None:
+        """The rows of ``bodies`` if an earlier try committed them (one transaction: all
+        or none), else None."""
+        if not bodies:
+            return None
+        conn = engine(self.url).raw_connection()
+        try:
+            cursor = conn.cursor()
+            cursor.execute(self._find_sql, (self.study, bodies[0]))
+            row = cursor.fetchone()
+            cursor.close()
+        except BaseException as exc:
+            _discard_if_lost(conn, exc)
+            raise
+        finally:
+            conn.close()
+        return None if row is None else list(range(row[0], row[0] + len(bodies)))
+
+    def _append(self, bodies: list[str]) -> list[int]:
         made = engine(self.url, writer=True)
         conflict = made.dialect.loaded_dbapi.IntegrityError
         for _ in range(_APPEND_ATTEMPTS):
@@ -191,15 +320,23 @@ class SQLJournalBackend(BaseJournalBackend):
             except conflict:
                 conn.rollback()
                 continue  # another process took that number first: take the next one
-            except BaseException:
-                conn.rollback()
+            except BaseException as exc:
+                if not _discard_if_lost(conn, exc):
+                    conn.rollback()
                 raise
             finally:
                 conn.close()
-            # Consecutive within one transaction, so the logs are rows seqs[0], +1, ...
-            self._last = (seqs[0], bodies) if seqs else None
-            return
+            return seqs
         raise RuntimeError(f"could not append to the journal of study '{self.study}'")
+
+
+def _discard_if_lost(conn: Any, exc: BaseException) -> bool:
+    """Invalidate a pooled connection that ``exc`` shows to be lost, so the pool neither
+    hands it out again nor logs a failed rollback of it; True if it was discarded."""
+    if isinstance(exc, Exception) and is_transient(exc):
+        conn.invalidate()
+        return True
+    return False
 
 
 class TrialJournal(JournalStorage, BaseHeartbeat):
@@ -220,10 +357,17 @@ class TrialJournal(JournalStorage, BaseHeartbeat):
         now = time.time()
         where = (BEATS.c.study == self.study) & (BEATS.c.trial_id == trial_id)
         # Only the thread running a trial stamps it, so update-else-insert cannot race.
-        with engine(self.url, writer=True).begin() as conn:
-            if conn.execute(sa.update(BEATS).where(where).values(beat_at=now)).rowcount == 0:
-                conn.execute(sa.insert(BEATS).values(study=self.study, trial_id=trial_id,
-                                                     beat_at=now))
+        try:
+            with engine(self.url, writer=True).begin() as conn:
+                if conn.execute(sa.update(BEATS).where(where)
+                                .values(beat_at=now)).rowcount == 0:
+                    conn.execute(sa.insert(BEATS).values(study=self.study, trial_id=trial_id,
+                                                         beat_at=now))
+        except Exception as exc:
+            # Optuna's beat thread would die of the error; the next beat tries again.
+            if not is_transient(exc):
+                raise
+            log.warning("trial heartbeat: database unreachable (%s)", type(exc).__name__)
 
     def _get_stale_trial_ids(self, study_id: int) -> list[int]:
         if self._grace is None:
@@ -231,12 +375,15 @@ class TrialJournal(JournalStorage, BaseHeartbeat):
         running = self.get_all_trials(study_id, deepcopy=False, states=(TrialState.RUNNING,))
         if not running:
             return []
-        with engine(self.url).connect() as conn:
-            beats = dict(conn.execute(
-                sa.select(BEATS.c.trial_id, BEATS.c.beat_at)
-                .where(BEATS.c.study == self.study,
-                       BEATS.c.trial_id.in_([t._trial_id for t in running]))
-            ).all())
+        def read() -> dict[int, float]:
+            with engine(self.url).connect() as conn:
+                return dict(conn.execute(  # type: ignore[arg-type]
+                    sa.select(BEATS.c.trial_id, BEATS.c.beat_at)
+                    .where(BEATS.c.study == self.study,
+                           BEATS.c.trial_id.in_([t._trial_id for t in running]))
+                ).all())
+
+        beats = with_reconnect(read, "trial heartbeat check")
         limit = time.time() - self._grace
         return [t._trial_id for t in running
                 if beats.get(t._trial_id, _started(t)) < limit]

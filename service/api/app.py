@@ -9,12 +9,14 @@ from fastapi import FastAPI
 from fastapi.middleware.cors import CORSMiddleware
 
 from service.api import openapi_examples, problems
-from service.api.deps import AuthDep
+from service.api.audit import AuditTrail
+from service.api.deps import AdminDep, AuthDep
 from service.api.drift import DriftRecorder
 from service.api.guard import RequestGuard
 from service.api.jobwatch import WatchHub
 from service.api.predictors import PredictorCache
 from service.api.routes import (
+    audit,
     bundle,
     channels,
     comparisons,
@@ -87,4 +89,7 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
     metrics.install(app)
     openapi_examples.install(app)
     app.include_router(report_routes.router, dependencies=[AuthDep])
+    app.include_router(audit.router, dependencies=[AdminDep])
+    # Every successful change is recorded with the key that made it (service/api/audit.py).
+    app.add_middleware(AuditTrail, url=settings.db_url)
     return app

@@ -35,8 +35,17 @@ SessionDep = Annotated[Session, Depends(get_session, scope="function")]
 
 
 def require_key(request: Request) -> None:
-    """Router-level dependency: the key's scope must allow the request's method."""
-    request.app.state.keys.check(request.method, request.headers.get("authorization"))
+    """Router-level dependency: the key's scope must allow the request's method. The key's
+    id stays on the request for the audit trail (service/api/audit.py)."""
+    request.state.key_id = request.app.state.keys.check(
+        request.method, request.headers.get("authorization"))
+
+
+def require_admin(request: Request) -> None:
+    """Admin keys only, whatever the method (e.g. reading the audit trail)."""
+    request.state.key_id = request.app.state.keys.check(
+        request.method, request.headers.get("authorization"), needed="admin")
 
 
 AuthDep = Depends(require_key)
+AdminDep = Depends(require_admin)

@@ -13,10 +13,15 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 import tuner
+from service.db import describe_outage, is_transient
 from service.errors import ServiceError
+from service.storage import is_disk_full
 
 log = logging.getLogger("grovekeeper.api")
 PROBLEM = "application/problem+json"
+# Seconds a client is asked to wait while the database is unreachable; a restart of
+# PostgreSQL takes a few seconds.
+RETRY_AFTER_SECONDS = 5
 TYPE_BASE = "https://grovekeeper.invalid/problems/"
 
 
@@ -98,7 +103,27 @@ async def _http_error(_: Request, exc: Exception) -> JSONResponse:
                    headers=dict(exc.headers or {}))
 
 
+def database_unavailable(exc: BaseException) -> JSONResponse:
+    """503 with ``Retry-After``: the request was fine, the database is away for now."""
+    return problem(503, "Database unavailable",
+                   f"{describe_outage(exc)}; try again shortly", code="database_unavailable",
+                   headers={"Retry-After": str(RETRY_AFTER_SECONDS)})
+
+
+def disk_full() -> JSONResponse:
+    """507: the server has no room left for what it was asked to store; nothing was kept."""
+    return problem(507, "Insufficient storage",
+                   "the server ran out of disk space while storing this; nothing was kept. "
+                   "Try again once an operator has freed space", code="disk_full")
+
+
 async def _unexpected(_: Request, exc: Exception) -> JSONResponse:
+    if is_disk_full(exc):
+        log.error("disk full: %s", type(exc).__name__)
+        return disk_full()
+    if is_transient(exc):
+        log.warning("database unavailable: %s", type(exc).__name__)
+        return database_unavailable(exc)
     log.exception("unhandled error", exc_info=exc)
     return problem(500, "Internal error", "the server failed; see its log", code="internal_error")
 
@@ -127,6 +152,16 @@ class CatchAll:
         try:
             await self.app(scope, receive, watch)
         except Exception as exc:  # noqa: BLE001 - the last line of defence
+            if is_disk_full(exc):
+                log.error("disk full: %s", type(exc).__name__)
+                if not started:
+                    await disk_full()(scope, receive, send)
+                return
+            if is_transient(exc):
+                log.warning("database unavailable: %s", type(exc).__name__)
+                if not started:
+                    await database_unavailable(exc)(scope, receive, send)
+                return
             log.exception("unhandled error", exc_info=exc)
             if not started:
                 response = problem(500, "Internal error", "the server failed; see its log",
@@ -183,6 +218,8 @@ _ERRORS = {
     "415": "Content type or file format not accepted",
     "422": "A field is invalid; `errors` names each one",
     "500": "Server failure (never a client mistake)",
+    "503": "The database is unreachable for now; retry after `Retry-After` seconds",
+    "507": "No disk space left to store an upload; nothing was kept",
 }
 _PUBLIC = ("/healthz", "/readyz")
 

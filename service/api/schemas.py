@@ -390,3 +390,20 @@ class ComparisonOut(BaseModel):
     created_at: datetime
     started_at: datetime | None
     finished_at: datetime | None
+
+
+class AuditOut(BaseModel):
+    id: int
+    at: datetime
+    key_id: str | None
+    action: str
+    target: str | None
+    method: str | None
+    path: str | None
+    status: int | None
+
+
+class AuditPage(BaseModel):
+    items: list[AuditOut]
+    total: int
+    next: str | None

@@ -11,15 +11,32 @@ import numpy as np
 import tuner
 import tuner.decision
 import tuner.drift
-from service import repository
-from service.db import session_scope
+from service import queue, repository
+from service.db import is_transient, session_scope, with_reconnect
 from service.errors import describe_failure
 from service.jobspec import RunPlan
-from service.storage import ArtifactStore
+from service.storage import ArtifactStore, is_disk_full
 from tuner.evaluation.gain import gain_over_defaults
 from tuner.evaluation.holdout import evaluate_model
 
 log = logging.getLogger("grovekeeper.worker")
+
+
+class JobFailed(Exception):  # noqa: N818 - the job's outcome, in words for its owner
+    """The job fails for the reason given (words, never paths or hosts)."""
+
+
+class Fenced(Exception):  # noqa: N818 - a state, not a failure
+    """This worker's claim on the job was superseded; it must write nothing more."""
+
+
+def check_claim(url: str, job_id: str, worker_id: str, epoch: int | None) -> None:
+    def look() -> bool:
+        with session_scope(url) as session:
+            return queue.holds(session, job_id=job_id, worker_id=worker_id, epoch=epoch)
+
+    if not with_reconnect(look, f"job {job_id}: checking the claim"):
+        raise Fenced(job_id)
 
 
 def evaluate_safely(fitted: tuner.FittedModel, run: RunPlan, url: str,
@@ -106,54 +123,86 @@ def drift_reference(fitted: tuner.FittedModel, run: RunPlan) -> dict[str, Any] |
 
 
 def fit_and_store(url: str, store: ArtifactStore, job_id: str, run: RunPlan,
-                  best: tuner.TrialRecord) -> str:
+                  best: tuner.TrialRecord, *, worker_id: str | None = None,
+                  epoch: int | None = None) -> str:
     """Refit ``best``, evaluate it, save the model file and its row; returns the model id.
 
     The file is written first and its row second; a failed row write deletes the file, so
-    no row ever points at a missing file and no file outlives a failed save for long.
+    no row ever points at a missing file and no file outlives a failed save for long. The
+    row is written only while ``worker_id`` still holds the job under ``epoch`` (raises
+    ``Fenced`` otherwise, after deleting the file).
     """
     fitted = tuner.fit_final(run.data, run.plan, run.config, best)
     evaluation = evaluate_safely(fitted, run, url, job_id)
     gain = gain_safely(fitted, run, url, job_id, best)
     if gain.get("available") and not gain["helped"] and not gain["same_trial"]:
         evaluation.setdefault("warnings", []).append(gain["verdict"])
-    with session_scope(url) as session:
-        costs = repository.get_job(session, job_id).spec["request"].get("decision")
+
+    def read_costs() -> dict[str, float] | None:
+        with session_scope(url) as session:
+            return repository.get_job(session, job_id).spec["request"].get("decision")
+
+    costs = with_reconnect(read_costs, f"job {job_id}: reading its costs")
     decision = decide_safely(fitted, run, best, costs, job_id)
     model_id = repository.new_id("mdl")
     key = f"models/{model_id}.txt"
-    with store.temp_path(".txt") as tmp:
-        sha = tuner.save_model(fitted, tmp)
-        size = tmp.stat().st_size
-        store.put(tmp, key)
     try:
+        with store.temp_path(".txt") as tmp:
+            sha = tuner.save_model(fitted, tmp)
+            size = tmp.stat().st_size
+            store.put(tmp, key)
+    except OSError as exc:
+        if not is_disk_full(exc):
+            raise
+        store.delete(key)  # in case the move landed before the error; no-op otherwise
+        log.error("job %s: disk full while saving the model", job_id)
+        raise JobFailed("disk full while saving the model") from exc
+    fields = dict(
+        id=model_id,
+        job_id=job_id,
+        task=fitted.task,
+        metric=fitted.metric,
+        params=fitted.params,
+        boosting_rounds=fitted.boosting_rounds,
+        trial_number=best.number,
+        cv=fitted.cv,
+        holdout=fitted.holdout,
+        feature_schema=fitted.schema.to_dict(),
+        classes=fitted.classes,
+        target=run.data.target,
+        feature_importance=fitted.feature_importance,
+        details={"manifest": run.effective, "evaluation": evaluation,
+                 "selection": run.effective.get("selection_report"),
+                 "final_refit": fitted.refit,
+                 "gain_over_defaults": gain,
+                 "drift_reference": drift_reference(fitted, run)},
+        decision=decision,
+        sha256=sha,
+        file_key=key,
+        size_bytes=size,
+    )
+
+    def write() -> bool:
         with session_scope(url) as session:
-            repository.add_model(
-                session,
-                id=model_id,
-                job_id=job_id,
-                task=fitted.task,
-                metric=fitted.metric,
-                params=fitted.params,
-                boosting_rounds=fitted.boosting_rounds,
-                trial_number=best.number,
-                cv=fitted.cv,
-                holdout=fitted.holdout,
-                feature_schema=fitted.schema.to_dict(),
-                classes=fitted.classes,
-                target=run.data.target,
-                feature_importance=fitted.feature_importance,
-                details={"manifest": run.effective, "evaluation": evaluation,
-                         "selection": run.effective.get("selection_report"),
-                         "final_refit": fitted.refit, "calibration": fitted.calibration,
-                         "gain_over_defaults": gain,
-                         "drift_reference": drift_reference(fitted, run)},
-                decision=decision,
-                sha256=sha,
-                file_key=key,
-                size_bytes=size,
-            )
-    except Exception:
-        store.delete(key)
+            if repository.model_exists(session, model_id):
+                return True  # an earlier try committed before its connection broke
+            if worker_id is not None and not queue.holds(
+                    session, job_id=job_id, worker_id=worker_id, epoch=epoch):
+                return False
+            repository.add_model(session, **fields)
+            return True
+
+    try:
+        stored = with_reconnect(write, f"job {job_id}: storing the model")
+    except Exception as exc:
+        # After a lost connection the row may have committed: an orphan file (swept by
+        # retention) is better than a row pointing at a missing file.
+        if not is_transient(exc):
+            store.delete(key)
         raise
+    if not stored:
+        store.delete(key)
+        log.warning("job %s: refused the late model from %s (claim epoch %s superseded)",
+                    job_id, worker_id, epoch)
+        raise Fenced(job_id)
     return model_id

@@ -8,7 +8,7 @@ import threading
 from dataclasses import dataclass, field
 
 from service import queue
-from service.db import session_scope
+from service.db import describe_outage, is_transient, session_scope
 
 log = logging.getLogger("grovekeeper.worker")
 
@@ -23,27 +23,35 @@ class JobFlags:
 
 
 def beat_until_done(url: str, job_id: str, worker_id: str, flags: JobFlags, *, lead: bool,
-                    interval: float) -> None:
-    """Beat every ``interval`` seconds until ``flags.done``; stop at once if the job is lost."""
-    beat = queue.heartbeat if lead else queue.heartbeat_joiner
+                    interval: float, epoch: int | None = None) -> None:
+    """Beat every ``interval`` seconds until ``flags.done``; stop at once if the job is lost
+    (a lead: its claim's ``epoch`` was superseded; a joiner: its row was swept)."""
     while not flags.done.wait(interval):
         try:
             with session_scope(url) as session:
-                ours, cancel = beat(session, job_id=job_id, worker_id=worker_id)
+                if lead:
+                    ours, cancel = queue.heartbeat(session, job_id=job_id, worker_id=worker_id,
+                                                   epoch=epoch)
+                else:
+                    ours, cancel = queue.heartbeat_joiner(session, job_id=job_id,
+                                                          worker_id=worker_id)
         except Exception as exc:  # noqa: BLE001 - a missed beat is retried next time
-            log.warning("job %s: heartbeat failed: %s", job_id, exc)
+            reason = describe_outage(exc) if is_transient(exc) else repr(exc)
+            log.warning("job %s: heartbeat failed: %s", job_id, reason)
             continue
         flags.cancel = flags.cancel or cancel
         if not ours:
+            log.warning("job %s: %s no longer holds the job; abandoning it", job_id, worker_id)
             flags.lost = True
             return
 
 
-def start(url: str, job_id: str, worker_id: str, *, lead: bool,
-          interval: float) -> tuple[JobFlags, threading.Thread]:
+def start(url: str, job_id: str, worker_id: str, *, lead: bool, interval: float,
+          epoch: int | None = None) -> tuple[JobFlags, threading.Thread]:
     flags = JobFlags()
     thread = threading.Thread(target=beat_until_done, args=(url, job_id, worker_id, flags),
-                              kwargs={"lead": lead, "interval": interval}, daemon=True)
+                              kwargs={"lead": lead, "interval": interval, "epoch": epoch},
+                              daemon=True)
     thread.start()
     return flags, thread
 

@@ -12,7 +12,7 @@ import traceback
 
 import tuner
 from service import queue
-from service.db import session_scope
+from service.db import is_transient, session_scope, with_reconnect
 from service.worker import heartbeat
 from service.worker.context import WorkerContext, load_job
 from service.worker.trials import record_trial
@@ -25,16 +25,20 @@ def join_job(ctx: WorkerContext, job_id: str) -> None:
                                   interval=ctx.settings.heartbeat_seconds)
     log.info("worker %s joined job %s", ctx.worker_id, job_id)
     try:
-        job = load_job(ctx, job_id)
+        job = with_reconnect(lambda: load_job(ctx, job_id), f"job {job_id}: loading")
         if job.config.timeout is not None and job.config.timeout <= 1.0:
             return  # the job's wall-clock limit is (nearly) spent: nothing to add
         # Each process on one study samples with its own salt, so they draw different
         # configurations.
+        def on_trial(record: tuner.TrialRecord) -> None:
+            if not record_trial(ctx.url, job_id, ctx.worker_id, record, lead=False):
+                flags.lost = True  # swept as stale: stop at the next fold
+
         salt = int(hashlib.sha256(ctx.worker_id.encode()).hexdigest()[:8], 16) | 1
         tuner.run_search(
             job.run.data, job.run.plan, job.config, storage_url=ctx.url,
             study_name=job.study_name,
-            on_trial=lambda record: record_trial(ctx.url, job_id, ctx.worker_id, record),
+            on_trial=on_trial,
             should_stop=lambda: flags.cancel or flags.lost or ctx.shutdown.is_set(),
             heartbeat_seconds=ctx.trial_heartbeat, grace_seconds=ctx.trial_grace,
             join=True, seed_salt=salt,
@@ -44,6 +48,14 @@ def join_job(ctx: WorkerContext, job_id: str) -> None:
                   traceback.format_exc())
     finally:
         heartbeat.stop(flags, beat)
-        with session_scope(ctx.url) as session:
-            queue.leave(session, job_id=job_id, worker_id=ctx.worker_id)
+
+        def leave() -> None:
+            with session_scope(ctx.url) as session:
+                queue.leave(session, job_id=job_id, worker_id=ctx.worker_id)
+
+        try:
+            with_reconnect(leave, f"job {job_id}: leaving")
+        except Exception as exc:
+            if not is_transient(exc):
+                raise  # otherwise the stale sweep removes the row
     log.info("worker %s left job %s", ctx.worker_id, job_id)

@@ -1,5 +1,11 @@
 """Leading a job: the worker that claimed it opens or resumes the study, runs trials,
-waits for its joiners, then refits the winner and finishes the job."""
+waits for its joiners, then refits the winner and finishes the job.
+
+Every write about the job carries the claim's epoch (service/queue.py, fencing): once
+another worker has claimed the job, this one abandons it without touching it. A lost
+database connection is waited out (``with_reconnect``); if it stays away too long the job
+is left running, and the stale sweep hands it to the next worker.
+"""
 
 from __future__ import annotations
 
@@ -12,13 +18,13 @@ import pandas as pd
 
 import tuner
 from service import comparing, queue, repository
-from service.db import session_scope
+from service.db import is_transient, session_scope, with_reconnect
 from service.errors import describe_failure
 from service.jobspec import RunPlan
 from service.tables import JobStatus
 from service.worker import heartbeat
 from service.worker.context import WorkerContext, load_job
-from service.worker.finalise import fit_and_store
+from service.worker.finalise import Fenced, JobFailed, check_claim, fit_and_store
 from service.worker.trials import record_trial, resync_trials
 
 log = logging.getLogger("grovekeeper.worker")
@@ -26,42 +32,73 @@ log = logging.getLogger("grovekeeper.worker")
 Outcome = tuple[JobStatus | None, str | None, str | None]
 
 
-def run_job(ctx: WorkerContext, job_id: str) -> None:
+def run_job(ctx: WorkerContext, job_id: str, epoch: int | None = None) -> None:
     flags, beat = heartbeat.start(ctx.url, job_id, ctx.worker_id, lead=True,
-                                  interval=ctx.settings.heartbeat_seconds)
+                                  interval=ctx.settings.heartbeat_seconds, epoch=epoch)
     try:
-        status, error, model_id = _execute(ctx, job_id, flags)
+        status, error, model_id = _execute(ctx, job_id, flags, epoch)
+    except Fenced:
+        flags.lost = True
+        status, error, model_id = None, None, None
+    except JobFailed as exc:
+        status, error, model_id = JobStatus.FAILED, str(exc), None
     except (tuner.TunerError, ValueError) as exc:
         status, error, model_id = JobStatus.FAILED, str(exc), None
         log.warning("job %s failed: %s", job_id, exc)
     except Exception as exc:  # noqa: BLE001 - any crash must end as a failed job
-        # The message is shown to every reader of the job: no paths or hosts in it.
-        status, model_id = JobStatus.FAILED, None
-        error = f"internal error: {describe_failure(exc)}"
-        log.error("job %s crashed:\n%s", job_id, traceback.format_exc())
+        if is_transient(exc):
+            # The database stayed away: not the job's fault. Hand it back if possible.
+            log.warning("job %s: database unreachable (%s); handing the job back",
+                        job_id, type(exc).__name__)
+            status, error, model_id = None, None, None
+        else:
+            # The message is shown to every reader of the job: no paths or hosts in it.
+            status, model_id = JobStatus.FAILED, None
+            error = f"internal error: {describe_failure(exc)}"
+            log.error("job %s crashed:\n%s", job_id, traceback.format_exc())
     finally:
         heartbeat.stop(flags, beat)
-    with session_scope(ctx.url) as session:
-        if status is None:
-            queue.release(session, job_id=job_id, worker_id=ctx.worker_id)
-            log.info("job %s handed back to the queue", job_id)
-        else:
-            queue.finish(session, job_id=job_id, worker_id=ctx.worker_id, status=status,
-                         error=error, model_id=model_id)
-            log.info("job %s %s", job_id, status.value)
+    if flags.lost:
+        log.warning("job %s: claimed by another worker meanwhile; %s abandons it untouched",
+                    job_id, ctx.worker_id)
+        return
+
+    def write() -> None:
+        with session_scope(ctx.url) as session:
+            if status is None:
+                queue.release(session, job_id=job_id, worker_id=ctx.worker_id, epoch=epoch)
+                log.info("job %s handed back to the queue", job_id)
+            elif queue.finish(session, job_id=job_id, worker_id=ctx.worker_id, status=status,
+                              error=error, model_id=model_id, epoch=epoch):
+                log.info("job %s %s", job_id, status.value)
+            else:
+                log.warning("job %s: refused the late %s status from %s (claim epoch %s "
+                            "superseded)", job_id, status.value, ctx.worker_id, epoch)
+
+    try:
+        with_reconnect(write, f"job {job_id}: final status")
+    except Exception as exc:
+        if not is_transient(exc):
+            raise
+        log.error("job %s: database unreachable; the stale sweep will hand it on", job_id)
 
 
 def _record_parallelism(ctx: WorkerContext, job_id: str, config: tuner.SearchConfig) -> None:
     """Write what this worker chose for the job (trials at once, threads) into its spec."""
-    with session_scope(ctx.url) as session:
-        row = repository.get_job(session, job_id)
-        effective = {**row.spec["effective"], "max_parallel_trials": config.max_parallel_trials,
-                     "num_threads": config.num_threads}
-        row.spec = {**row.spec, "effective": effective}
+    def write() -> None:
+        with session_scope(ctx.url) as session:
+            row = repository.get_job(session, job_id)
+            effective = {**row.spec["effective"],
+                         "max_parallel_trials": config.max_parallel_trials,
+                         "num_threads": config.num_threads}
+            row.spec = {**row.spec, "effective": effective}
+
+    with_reconnect(write, f"job {job_id}: recording its parallelism")
 
 
-def _execute(ctx: WorkerContext, job_id: str, flags: heartbeat.JobFlags) -> Outcome:
-    job = load_job(ctx, job_id)
+def _execute(ctx: WorkerContext, job_id: str, flags: heartbeat.JobFlags,
+             epoch: int | None) -> Outcome:
+    job = with_reconnect(lambda: load_job(ctx, job_id), f"job {job_id}: loading")
     run, config = job.run, job.config
     resync_trials(ctx.url, job_id, job.study_name)
     if run.effective.get("parallelism") == "machine":
@@ -70,21 +107,25 @@ def _execute(ctx: WorkerContext, job_id: str, flags: heartbeat.JobFlags) -> Outc
     def should_stop() -> bool:
         return flags.cancel or flags.lost or ctx.shutdown.is_set()
 
-    def open_to_joiners() -> None:
-        if job.max_workers > 1:
+    def set_joinable(joinable: bool) -> None:
+        def write() -> None:
             with session_scope(ctx.url) as session:
-                queue.set_joinable(session, job_id=job_id, worker_id=ctx.worker_id)
+                queue.set_joinable(session, job_id=job_id, worker_id=ctx.worker_id,
+                                   joinable=joinable, epoch=epoch)
+        with_reconnect(write, f"job {job_id}: joinable")
+
+    def on_trial(record: tuner.TrialRecord) -> None:
+        if not record_trial(ctx.url, job_id, ctx.worker_id, record, epoch=epoch):
+            flags.lost = True  # fenced off: stop at the next fold
 
     tuner.run_search(
         run.data, run.plan, config, storage_url=ctx.url, study_name=job.study_name,
-        on_trial=lambda record: record_trial(ctx.url, job_id, ctx.worker_id, record),
-        should_stop=should_stop, heartbeat_seconds=ctx.trial_heartbeat,
-        grace_seconds=ctx.trial_grace, on_started=open_to_joiners,
+        on_trial=on_trial, should_stop=should_stop, heartbeat_seconds=ctx.trial_heartbeat,
+        grace_seconds=ctx.trial_grace,
+        on_started=(lambda: set_joinable(True)) if job.max_workers > 1 else None,
     )
-    if job.max_workers > 1:
-        with session_scope(ctx.url) as session:
-            queue.set_joinable(session, job_id=job_id, worker_id=ctx.worker_id,
-                               joinable=False)
+    if job.max_workers > 1 and not flags.lost:
+        set_joinable(False)
     if not should_stop():
         _wait_for_joiners(ctx, job_id, should_stop)
     if flags.lost:
@@ -95,14 +136,20 @@ def _execute(ctx: WorkerContext, job_id: str, flags: heartbeat.JobFlags) -> Outc
         return JobStatus.CANCELLED, None, None
     if ctx.shutdown.is_set():
         return None, None, None
-    result = tuner.close_search(ctx.url, job.study_name, direction=run.effective["direction"],
-                                selection=config.selection)
+    # close_search fails trials still running: only the job's holder may do that.
+    check_claim(ctx.url, job_id, ctx.worker_id, epoch)
+    result = with_reconnect(
+        lambda: tuner.close_search(ctx.url, job.study_name,
+                                   direction=run.effective["direction"],
+                                   selection=config.selection),
+        f"job {job_id}: closing the search")
     resync_trials(ctx.url, job_id, job.study_name)
     if result.chosen is None:
         return JobStatus.FAILED, "no trial completed; see the failed trials", None
     run = dataclasses.replace(run, effective={**run.effective,
                                               "selection_report": result.selection})
-    model_id = fit_and_store(ctx.url, ctx.store, job_id, run, result.chosen)
+    model_id = fit_and_store(ctx.url, ctx.store, job_id, run, result.chosen,
+                             worker_id=ctx.worker_id, epoch=epoch)
     promote_safely(ctx, job_id, model_id, run)
     return JobStatus.SUCCEEDED, None, model_id
 
@@ -135,10 +182,13 @@ def _wait_for_joiners(ctx: WorkerContext, job_id: str, should_stop: Callable[[],
     the stale timeout, which bounds this wait.
     """
     while not should_stop():
-        with session_scope(ctx.url) as session:
-            queue.requeue_stale(session, stale_after_seconds=ctx.settings.stale_after_seconds)
-            others = [w for w in queue.participants(session, job_id=job_id)
-                      if w != ctx.worker_id]
-        if not others:
+        def look() -> list[str]:
+            with session_scope(ctx.url) as session:
+                queue.requeue_stale(session,
+                                    stale_after_seconds=ctx.settings.stale_after_seconds)
+                return [w for w in queue.participants(session, job_id=job_id)
+                        if w != ctx.worker_id]
+
+        if not with_reconnect(look, f"job {job_id}: waiting for joiners"):
             return
         ctx.shutdown.wait(min(0.5, ctx.settings.poll_seconds))

@@ -14,7 +14,7 @@ import threading
 from typing import Any
 
 from service import queue, repository
-from service.db import init_db, session_scope
+from service.db import init_db, is_transient, session_scope, with_reconnect
 from service.logs import log_context
 from service.settings import Settings
 from service.worker.comparison import run_comparison
@@ -40,8 +40,21 @@ class Worker:
         log.info("worker %s started on %s", self.worker_id, _redact(self.ctx.url))
         if parent_pid is not None:
             threading.Thread(target=self._watch_parent, args=(parent_pid,), daemon=True).start()
+        pause = self.settings.poll_seconds
         while not self.shutdown.is_set():
-            if not self.run_once():
+            try:
+                busy = self.run_once()
+            except Exception as exc:
+                if not is_transient(exc):
+                    raise
+                # A worker never exits because the database is away: wait and look again.
+                log.warning("worker %s: database unreachable (%s); retrying in %.1f s",
+                            self.worker_id, type(exc).__name__, pause)
+                self.shutdown.wait(pause)
+                pause = min(5.0, pause * 2)
+                continue
+            pause = self.settings.poll_seconds
+            if not busy:
                 self.shutdown.wait(self.settings.poll_seconds)
         log.info("worker %s stopped", self.worker_id)
 
@@ -62,10 +75,11 @@ class Worker:
             ):
                 log.warning("job %s: worker stopped heart-beating; back in the queue", job_id)
         with session_scope(url) as session:
-            job_id = queue.claim_next(session, worker_id=self.worker_id)
-        if job_id is not None:
+            claimed = queue.claim(session, worker_id=self.worker_id)
+        if claimed is not None:
+            job_id, epoch = claimed
             with log_context(job_id=job_id, worker_id=self.worker_id):  # ids on every line
-                run_job(self.ctx, job_id)
+                run_job(self.ctx, job_id, epoch)
             return True
         with session_scope(url) as session:
             scoring_id = repository.claim_scoring(
@@ -98,9 +112,10 @@ def _redact(url: str) -> str:
 
 
 def main(settings: Settings, *, parent_pid: int | None = None) -> None:
-    init_db(settings.db_url)
+    with_reconnect(lambda: init_db(settings.db_url), "worker start-up")
     settings.ensure_dirs()
     worker = Worker(settings)
+    worker.ctx.store.sweep_temp()  # left by an earlier crash of this machine's processes
 
     def _stop(signum: int, _frame: Any) -> None:
         log.info("worker %s: signal %d, finishing the current trial", worker.worker_id, signum)

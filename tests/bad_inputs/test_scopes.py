@@ -53,6 +53,7 @@ ROUTES = [
     ("GET", "/v1/jobs/{job}/report", "read", 200),
     ("GET", "/v1/jobs/{job}/plots/history.svg", "read", 200),
     ("POST", "/v1/models/{model}/predictions", "write", 200),
+    ("GET", "/v1/audit", "admin", 200),  # who changed what: admin keys only
     ("GET", "/healthz", None, 200),
     ("GET", "/readyz", None, 200),
     ("GET", "/metrics", None, 200),  # scrapers hold no key; see README

@@ -6,8 +6,8 @@ from fastapi import APIRouter
 from fastapi.responses import JSONResponse
 
 from service.api.deps import SettingsDep
-from service.api.problems import problem
-from service.db import ping
+from service.api.problems import RETRY_AFTER_SECONDS, problem
+from service.db import describe_outage, ping
 
 router = APIRouter(tags=["operations"])
 
@@ -22,6 +22,6 @@ def readyz(settings: SettingsDep) -> dict[str, str] | JSONResponse:
     try:
         ping(settings.db_url)
     except Exception as exc:  # noqa: BLE001 - any driver error means "not ready"
-        return problem(503, "Not ready", f"database unreachable: {type(exc).__name__}",
-                       code="not_ready")
+        return problem(503, "Not ready", f"database unreachable: {describe_outage(exc)}",
+                       code="not_ready", headers={"Retry-After": str(RETRY_AFTER_SECONDS)})
     return {"status": "ready"}
