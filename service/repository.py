@@ -352,6 +352,9 @@ def claim_scoring(session: Session, *, worker_id: str, stale_after_seconds: floa
     claimable = sa.or_(
         sa.and_(Scoring.status == JobStatus.QUEUED.value, Scoring.cancel_requested.is_(False)),
         sa.and_(Scoring.status == JobStatus.RUNNING.value, Scoring.heartbeat_at < stale))
+    # A plain read first: an idle poll must not take SQLite's write lock from the trials.
+    if session.scalar(sa.select(Scoring.id).where(claimable).limit(1)) is None:
+        return None
     candidate = (sa.select(Scoring.id).where(claimable)
                  .order_by(Scoring.created_at, Scoring.id).limit(1)
                  .with_for_update(skip_locked=True).scalar_subquery())
@@ -407,6 +410,8 @@ def claim_comparison(session: Session, *, worker_id: str,
     claimable = sa.or_(
         Comparison.status == JobStatus.QUEUED.value,
         sa.and_(Comparison.status == JobStatus.RUNNING.value, Comparison.heartbeat_at < stale))
+    if session.scalar(sa.select(Comparison.id).where(claimable).limit(1)) is None:
+        return None
     candidate = (sa.select(Comparison.id).where(claimable)
                  .order_by(Comparison.created_at, Comparison.id).limit(1)
                  .with_for_update(skip_locked=True).scalar_subquery())
