@@ -165,6 +165,11 @@ EXAMPLES: dict[tuple[str, str], dict[str, Any]] = {
              '"{""roc_auc"":0.8655}",c0ffee…,2026-03-14T09:33:00+00:00\n'}}},
     ("get", "/v1/models/{model_id}"): {"responses": {"200": {JSON: MODEL}}},
     ("delete", "/v1/models/{model_id}"): {"responses": {}},
+    ("get", "/v1/audit"): {"responses": {"200": {JSON: {
+        "items": [{"id": 41, "at": "2026-04-02T08:00:00Z", "key_id": "key_5a5a5a5a5a5a5a5a",
+                   "action": "PUT /v1/channels/{name}", "target": "kilns", "method": "PUT",
+                   "path": "/v1/channels/kilns", "status": 200}],
+        "total": 1, "next": None}}}},
     ("get", "/v1/models/{model_id}/drift"): {"responses": {"200": {JSON: {
         "model_id": MODEL["id"], "rows": 5000, "training_rows": 960,
         "days": [{"day": "2026-04-02", "rows": 5000}],
