@@ -122,10 +122,9 @@ def test_served_probabilities_are_the_model_files(server: Server, jobs: dict,
     calibration = model["details"]["calibration"]
     assert isinstance(calibration["applied"], bool)
     assert set(calibration["oof_log_loss"]) == {"before", "after"}
-    names = [f["name"] for f in model["feature_schema"]["features"]]
     # Reference: LightGBM's own predict on the downloaded file, nothing of ours.
     own = lgb.Booster(model_file=str(tmp_path / "m.txt")).predict(
-        _plain_kiln_frame(frame, names))
+        _plain_kiln_frame(frame, model["feature_schema"]["features"]))
     got = np.array([p[1] for p in served["probabilities"]])
     np.testing.assert_allclose(got, own, rtol=0, atol=1e-9)
 
