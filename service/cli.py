@@ -55,7 +55,7 @@ def child_env(settings: Settings) -> dict[str, str]:
     env["GROVEKEEPER_DATABASE_URL"] = settings.db_url
     env["GROVEKEEPER_LOG_FORMAT"] = settings.log_format
     # Idle OpenMP threads busy-wait by default and starve the other worker on a small
-    # machine (LIBRARIES.md §3: 696 s vs 7 s); passive waiting costs nothing here.
+    # machine (docs/measured-facts.md §3: 696 s vs 7 s); passive waiting costs nothing here.
     env["OMP_WAIT_POLICY"] = "passive"
     return env
 

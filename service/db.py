@@ -17,7 +17,7 @@ from tuner.journal import POSTGRES_CONNECT_ARGS, is_transient, with_reconnect
 __all__ = ["is_transient", "with_reconnect", "describe_outage"]
 
 # Long enough that a writer waiting behind a trial commit never gives up; see
-# LIBRARIES.md §2 (lock waits show up as stalls, not errors, at 30 s and more).
+# docs/measured-facts.md §2 (lock waits show up as stalls, not errors, at 30 s and more).
 SQLITE_BUSY_TIMEOUT_S = 60
 
 
@@ -105,7 +105,7 @@ def init_db(url: str, *, attempts: int = 5) -> None:
     """Create or upgrade the service tables (service/migrations.py) and the trial journal's.
 
     Several processes starting against a fresh database race on CREATE TABLE
-    (LIBRARIES.md §2, start-up race); a retry after a short pause sees the tables
+    (docs/measured-facts.md §2, start-up race); a retry after a short pause sees the tables
     the winner created.
     """
     import tuner

@@ -16,7 +16,7 @@ tuner, which creates them (``tuner.init_storage``); a study left in Optuna's own
 ``RDBStorage`` tables by an older version is copied into the journal when its job is
 next led (``tuner/_journal.py``).
 Every step must be safe to run by several processes at once; ``init_db`` retries on the
-start-up race (LIBRARIES.md §2).
+start-up race (docs/measured-facts.md §2).
 """
 
 from __future__ import annotations

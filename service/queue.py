@@ -3,7 +3,7 @@
 Claiming is one guarded ``UPDATE … WHERE id = (SELECT … LIMIT 1) AND status =
 'queued' RETURNING id``. On SQLite the statement is a single write transaction;
 on PostgreSQL the subquery takes its row with ``FOR UPDATE SKIP LOCKED``. Both
-measured with zero double claims (LIBRARIES.md §6); the outer status check is
+measured with zero double claims (docs/measured-facts.md §6); the outer status check is
 what keeps PostgreSQL from double-claiming under READ COMMITTED.
 
 Several workers on one job: the worker that claims a queued job is its *lead* (it opens

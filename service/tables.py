@@ -74,7 +74,7 @@ class Job(Base):
     # Worker processes allowed on this job at once (lead included); see queue.join_next.
     max_workers: Mapped[int] = mapped_column(default=1, server_default="1")
     # Set by the lead once the study is open and its enqueued trial 0 has been taken, so
-    # that joiners never race for a WAITING trial (unsafe on SQLite, LIBRARIES.md §2).
+    # that joiners never race for a WAITING trial (unsafe on SQLite, docs/measured-facts.md §2).
     joinable: Mapped[bool] = mapped_column(default=False, server_default=sa.false())
     attempts: Mapped[int] = mapped_column(default=0)
     # The fencing token: raised by every claim. A lead's writes (status, trial copy, model)

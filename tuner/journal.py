@@ -3,7 +3,7 @@
 Why not Optuna's ``RDBStorage``: it spreads each trial over a dozen ORM tables, spends
 about 30 queries on starting a trial and commits every parameter, report and attribute
 apart (50-100 ms of bookkeeping per trial on SQLite, ``benchmarks/overhead.py``), and
-hands one enqueued trial to two processes on SQLite (LIBRARIES.md §2). The journal writes
+hands one enqueued trial to two processes on SQLite (docs/measured-facts.md §2). The journal writes
 one small row per operation and each process reads only rows it has not seen yet; the
 trials stay in the same database (SQLite file or PostgreSQL) as everything else.
 
@@ -141,7 +141,7 @@ def create_tables(url: str) -> None:
     """Create the journal tables if missing; once per URL per process.
 
     Idempotent, and safe when several processes start at once: the loser of the race to
-    CREATE TABLE finds the winner's tables (LIBRARIES.md §2, start-up race).
+    CREATE TABLE finds the winner's tables (docs/measured-facts.md §2, start-up race).
     """
     if url in _ready:
         return

@@ -3,7 +3,7 @@
 Every check runs on SQLite and on the real PostgreSQL (the db_url fixture), with several
 real processes where the claim is about processes. The reference behaviour is Optuna's
 own storage contract: trial numbers are contiguous per study, an enqueued trial runs
-once (Optuna's FAQ on enqueue_trial with several workers; LIBRARIES.md §2 measured
+once (Optuna's FAQ on enqueue_trial with several workers; docs/measured-facts.md §2 measured
 RDBStorage on SQLite running 22 of 200 enqueued trials twice), and a trial whose
 heartbeat went stale is failed by the next trial started (Optuna's RDBStorage heartbeat
 docs).
