@@ -235,6 +235,16 @@ def main(argv: list[str] | None = None) -> int:
     return 0 if not log.errors else 1
 
 
+def slope(points: list[tuple[float, float]]) -> float:
+    """Least-squares slope of y over x; nan with fewer than two points."""
+    if len(points) < 2:
+        return float("nan")
+    mx = sum(x for x, _ in points) / len(points)
+    my = sum(y for _, y in points) / len(points)
+    var = sum((x - mx) ** 2 for x, _ in points)
+    return sum((x - mx) * (y - my) for x, y in points) / var if var else float("nan")
+
+
 def report(log: Log, samples: list[dict[str, object]], start: float, end: float,
            minutes: float, warmup_minutes: float = 2.0) -> None:
     window = min(5.0, minutes / 4) * 60
@@ -261,7 +271,10 @@ def report(log: Log, samples: list[dict[str, object]], start: float, end: float,
                    if t >= warmup_minutes * 60), last_s)
     warm_at = (float(warm_s["t"]) - start) / 60  # type: ignore[arg-type]
     print(f"\n{'process':<10} {'RSS start':>10} {f'RSS {warm_at:.0f} min':>10} {'RSS end':>9} "
-          f"{'growth':>7} {'after warm-up':>13} {'fds start':>10} {'fds end':>8}")
+          f"{'growth':>7} {'after warm-up':>13} {'MiB/min':>8} {'fds start':>10} "
+          f"{'fds end':>8}")
+    later = [(t, x) for t, x in zip(since, samples, strict=True)
+             if t >= warmup_minutes * 60]
     procs_first: dict = first_s["procs"]  # type: ignore[assignment]
     procs_warm: dict = warm_s["procs"]  # type: ignore[assignment]
     procs_last: dict = last_s["procs"]  # type: ignore[assignment]
@@ -274,9 +287,13 @@ def report(log: Log, samples: list[dict[str, object]], start: float, end: float,
         _, rss_w, _ = procs_warm[name]
         pid_b, rss_b, fd_b = procs_last[name]
         total_a, total_w, total_b = total_a + rss_a, total_w + rss_w, total_b + rss_b
+        # Least-squares slope of RSS after the warm-up: a leak keeps climbing, warm-up
+        # growth levels off.
+        series = [(t / 60, x["procs"][name][1]) for t, x in later  # type: ignore[index]
+                  if name in x["procs"]]  # type: ignore[operator]
         print(f"{name:<10} {rss_a:>8.0f}Mi {rss_w:>8.0f}Mi {rss_b:>7.0f}Mi "
               f"{100 * (rss_b / rss_a - 1):>6.1f}% {100 * (rss_b / rss_w - 1):>12.1f}% "
-              f"{fd_a:>10} {fd_b:>8}")
+              f"{slope(series):>8.2f} {fd_a:>10} {fd_b:>8}")
     if total_a:
         print(f"{'all':<10} {total_a:>8.0f}Mi {total_w:>8.0f}Mi {total_b:>7.0f}Mi "
               f"{100 * (total_b / total_a - 1):>6.1f}% {100 * (total_b / total_w - 1):>12.1f}%")
