@@ -271,6 +271,15 @@ def _plots(names: list[str]) -> str:
     return f'<div class="plots">{figures}</div>'
 
 
+def _model_links(model: dict[str, Any] | None) -> str:
+    if not model:
+        return ""
+    # Relative, so that under a signed link's prefix they stay inside it.
+    base = f"../../models/{escape(model['id'])}"
+    return (f' · model <a href="{base}">JSON</a> · <a href="{base}/file">file</a> · '
+            f'<a href="{base}/bundle">bundle</a>')
+
+
 def render(job: dict[str, Any], board: list[dict[str, Any]], count: int,
            model: dict[str, Any] | None, plots: list[str]) -> str:
     """The whole page from plain dicts (``JobOut``, leaderboard rows, ``ModelOut``)."""
@@ -297,7 +306,7 @@ def render(job: dict[str, Any], board: list[dict[str, Any]], count: int,
 <p class="sub">Predicting <strong>{escape(job['target'])}</strong> ({escape(job['task'])}),
 scored by <strong>{escape(job['metric'])}</strong> · dataset
 <code>{escape(job['dataset_id'])}</code> · <a href="../{job_id}">JSON</a> ·
-<a href="leaderboard?format=csv">leaderboard CSV</a></p>
+<a href="leaderboard?format=csv">leaderboard CSV</a>{_model_links(model)}</p>
 {live}{_facts(job)}{error}{_warnings(warnings)}
 {'<h2>Winner</h2>' + winner if winner else ''}
 {_promotion(job.get('promotion'))}
