@@ -42,10 +42,6 @@ class ReportLinkOut(BaseModel):
         f"a 403; an altered link is a 401, an expired one too. Default "
         f"{links.DEFAULT_SECONDS // 60} minutes, at most {links.MAX_SECONDS // 3600} hours "
         "(`expires_in`, seconds). Needs any key (read scope)."),
-    responses={200: {"content": {"application/json": {"example": {
-        "url": "http://127.0.0.1:8000/v1/links/job_3f2a9c1e5b7d4a60.1796300000."
-               "q0V6x1yWcHn5c6bS2wKf3jRrP8mQe7tYz4uLg9aDh0E/jobs/job_3f2a9c1e5b7d4a60/report",
-        "expires_at": "2026-12-03T10:13:20Z"}}}}},
 )
 def create_report_link(
     job_id: str,
