@@ -293,3 +293,15 @@ class AuditEntry(Base):
     # What changed, where the action and target do not say it: a channel move's
     # {"from": model, "to": model, "forced": ..., "job_id": ...}.
     detail: Mapped[dict[str, Any] | None] = mapped_column(sa.JSON)
+
+
+class ServerSecret(Base):
+    """Secrets the server makes for itself, by name (``report_links``: the HMAC key of
+    signed report links). Kept in the database so every API process signs and checks with
+    the same one; made on first use (service/links.py)."""
+
+    __tablename__ = "gk_server_secrets"
+
+    name: Mapped[str] = mapped_column(sa.String(40), primary_key=True)
+    value: Mapped[str] = mapped_column(sa.String(128))
+    created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
