@@ -248,8 +248,8 @@ def register(sub: Any) -> None:
                    help="predictions never fall (1) or never rise (-1) as the column grows "
                         "(repeatable)")
     p.add_argument("--interaction", action="append", type=_group, metavar="COL,COL,...",
-                   help="a group of columns trees may combine; every tree stays within one "
-                        "group (repeatable)")
+                   help="a group of columns one tree may split on together; every tree "
+                        "stays within one group (repeatable)")
     p.add_argument("--fixed", action="append", type=_fixed, metavar="PARAMETER=VALUE",
                    help="hold a LightGBM parameter for every trial, e.g. max_bin=63 or "
                         "is_unbalance=true (repeatable; README lists what is refused)")
