@@ -115,6 +115,9 @@ def test_every_kind_of_change_leaves_an_audit_row_readable_by_admin_keys_only(
                 page = client.get("/v1/audit", params={"limit": 2,
                                                        "cursor": page["next"]}).json()
         assert len(seen) == total
+        # One row per change: none twice (the row rides in the change's transaction; the
+        # answer's status is added to that same row afterwards).
+        assert len({e["action"] for e in seen}) == len(seen), seen
         by_action = {e["action"]: e for e in seen}
         assert set(by_action) == {"key.create", "key.revoke", "dataset.upload", "job.create",
                                   "job.cancel", "dataset.delete"}, seen
@@ -125,6 +128,9 @@ def test_every_kind_of_change_leaves_an_audit_row_readable_by_admin_keys_only(
         assert by_action["key.revoke"]["target"] == writer_id
         for action in ("dataset.upload", "job.create", "job.cancel", "dataset.delete"):
             assert by_action[action]["key_id"] == admin_id
+        assert [by_action[a]["status"] for a in ("dataset.upload", "job.create",
+                                                 "job.cancel", "dataset.delete")] == [
+            201, 202, 202, 204]
         assert [e["id"] for e in seen] == sorted((e["id"] for e in seen), reverse=True)
     finally:
         server.stop()
