@@ -15,6 +15,7 @@ from typing import Any
 
 from client import http as client
 from client.http import Api, ClientError, fmt, table
+from client.job_options import job_request
 from client.progress import ProgressView
 from vocabulary import FINISHED_STATUSES as FINISHED
 
@@ -72,41 +73,9 @@ def cmd_datasets(args: argparse.Namespace) -> int:
 # -- jobs ------------------------------------------------------------------------
 
 
-def _job_request(args: argparse.Namespace) -> dict[str, Any]:
-    body: dict[str, Any] = {"dataset_id": args.dataset_id, "target": args.target}
-    budget = {k: v for k, v in (("trials", args.trials), ("seconds", args.seconds))
-              if v is not None}
-    if budget:
-        body["budget"] = budget
-    for key in ("task", "metric", "seed", "priority"):
-        if getattr(args, key) is not None:
-            body[key] = getattr(args, key)
-    if args.holdout is not None:
-        body["holdout_fraction"] = args.holdout
-    if args.folds is not None:
-        body["cv"] = {"folds": args.folds}
-    if args.exclude:
-        body["exclude"] = args.exclude
-    if args.kind:
-        body["column_kinds"] = dict(args.kind)
-    if args.monotone:
-        body["monotone"] = dict(args.monotone)
-    if args.interaction:
-        body["interaction_constraints"] = args.interaction
-    if args.fixed:
-        body["fixed"] = dict(args.fixed)
-    if args.max_rounds is not None:
-        body["max_rounds"] = args.max_rounds
-    if args.early_stopping_rounds is not None:
-        body["early_stopping_rounds"] = args.early_stopping_rounds
-    if args.segment:
-        body["segments"] = args.segment
-    return body
-
-
 def cmd_tune(args: argparse.Namespace) -> int:
     with _api(args) as api:
-        job = api.post("/v1/jobs", json=_job_request(args))
+        job = api.post("/v1/jobs", json=job_request(args))
         _note(f"queued {job['id']}: {job['task']} on {job['target']!r}, "
               f"metric {job['metric']}")
         if not args.wait:

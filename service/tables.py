@@ -81,6 +81,9 @@ class Job(Base):
     # carry the epoch of its claim and are refused once another claim has raised it.
     epoch: Mapped[int] = mapped_column(default=0, server_default="0")
     warnings: Mapped[list[Any]] = mapped_column(default=list)
+    # A job the worker found bad input in: the RFC 9457 problem document the API would
+    # have answered at submission (service/admission.py judges the profile only).
+    problem: Mapped[dict[str, Any] | None] = mapped_column(sa.JSON)
     created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
     started_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
     heartbeat_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))

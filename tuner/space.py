@@ -5,11 +5,12 @@ from __future__ import annotations
 import math
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass
-from typing import Any
-
-import optuna
+from typing import TYPE_CHECKING, Any
 
 from tuner.errors import SearchSpaceError, summarise
+
+if TYPE_CHECKING:  # the space itself is plain Python: the API checks one without Optuna
+    import optuna
 
 
 @dataclass(frozen=True)

@@ -96,6 +96,9 @@ class JobOut(BaseModel):
     # With a promote request, once the job has succeeded: what happened to the channel.
     promotion: dict[str, Any] | None = None
     error: str | None
+    # A job failed for bad input that only its rows showed: the problem document (RFC
+    # 9457, with the fields named) that submission would have answered.
+    problem: dict[str, Any] | None = None
     warnings: list[str]
     cancel_requested: bool
     attempts: int

@@ -6,10 +6,9 @@ import io
 import json
 import zipfile
 from datetime import datetime
+from importlib.metadata import version
 from pathlib import Path
 from typing import Any
-
-import lightgbm as lgb
 
 from service.api.schemas import as_utc
 from service.tables import Dataset, Job, Model
@@ -55,7 +54,7 @@ def build_bundle(model: Model, job: Job, dataset: Dataset | None, model_text: by
             "id": dataset.id, "name": dataset.name, "rows": dataset.rows,
             "sha256": dataset.sha256, "source_format": dataset.source_format,
         },
-        "versions": {"lightgbm": lgb.__version__},
+        "versions": {"lightgbm": version("lightgbm")},
     }
     files = {
         "model.txt": model_text,

@@ -9,7 +9,7 @@ import pandas as pd
 import pytest
 
 from examples.demo_data import kilns
-from tests.service.conftest import LiveApi
+from tests.service.conftest import LiveApi, prepared
 
 PROBLEM = "application/problem+json"
 
@@ -130,8 +130,12 @@ def test_job_is_queued_with_effective_spec_and_can_be_cancelled(api: LiveApi) ->
         assert body["status"] == "queued" and body["task"] == "binary"
         assert body["spec"]["cv"]["strategy"] == "stratified"
         assert body["progress"]["trials_budget"] == 40
-        assert "num_leaves" in body["spec"]["search_space"]
-        assert "firing_id" not in body["spec"]["features"]  # an identifier, not a feature
+        # Judged from the profile only; the worker writes the rest from the rows.
+        assert body["spec"]["prepared"] is False and "features" not in body["spec"]
+        spec = prepared(api, body["id"])["spec"]
+        assert spec["prepared"] is True and spec["cv"]["strategy"] == "stratified"
+        assert "num_leaves" in spec["search_space"]
+        assert "firing_id" not in spec["features"]  # an identifier, not a feature
         assert client.get("/v1/jobs", params={"status": "queued"}).json()["count"] == 1
         assert_problem(client.delete(f"/v1/datasets/{ds}"), 409)  # a queued job uses it
         cancelled = client.post(f"/v1/jobs/{body['id']}/cancel").json()
@@ -166,8 +170,10 @@ def test_upload_and_job_warnings_name_the_doubtful_data(api: LiveApi) -> None:
     doubled = pd.concat([frame, frame.head(10)], ignore_index=True)
     with api.client() as client:
         dataset = upload(client, doubled.to_csv(index=False).encode()).json()
-        job = client.post("/v1/jobs", json={"dataset_id": dataset["id"], "target": "defect",
-                                            "budget": {"trials": 1}}).json()
+        queued = client.post("/v1/jobs", json={"dataset_id": dataset["id"],
+                                               "target": "defect", "budget": {"trials": 1}})
+    assert queued.json()["warnings"] == []  # the rows are read by the worker, not the API
+    job = prepared(api, queued.json()["id"])
     assert any("10 row(s) are exact duplicates" in w for w in dataset["warnings"])
     leaks = [w for w in job["warnings"] if "leakage" in w]
     assert len(leaks) == 1 and "'inspected_defect'" in leaks[0]

@@ -10,7 +10,7 @@ import pandas as pd
 import pytest
 
 from examples.demo_data import greenhouse
-from tests.service.conftest import LiveApi
+from tests.service.conftest import LiveApi, prepared
 from tests.service.test_api import assert_problem, kiln_csv, upload
 
 # Each payload is wrong in exactly one parameter, which the problem document must name.
@@ -91,7 +91,7 @@ def test_effective_spec_has_objective_space_and_manifest(api: LiveApi) -> None:
             "search_space": {"num_leaves": {"low": 8, "high": 64},
                              "tweedie_variance_power": {"low": 1.1, "high": 1.9}}})
         assert response.status_code == 202, response.text
-        job = client.get(f"/v1/jobs/{response.json()['id']}").json()
+    job = prepared(api, response.json()["id"])
     spec = job["spec"]
     assert spec["objective"] == "tweedie" and spec["metric"] == "poisson_deviance"
     assert spec["selection"] == "one_se" and spec["final_refit"] == "all"

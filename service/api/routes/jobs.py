@@ -4,11 +4,11 @@ from __future__ import annotations
 
 from typing import Annotated, Literal
 
-import pandas as pd
 from fastapi import APIRouter, Query, Request, Response
 from sqlalchemy.orm import Session
 
 from service import repository
+from service.admission import WARM_START_TRIALS, admit
 from service.api.deps import SessionDep, SettingsDep, StoreDep
 from service.api.schemas import (
     JobCreate,
@@ -23,7 +23,7 @@ from service.api.schemas import (
 from service.api.tabular import csv_response, wants_csv
 from service.db import session_scope
 from service.errors import NotFound, Unprocessable
-from service.jobspec import WARM_START_TRIALS, build_run
+from service.jobrequest import JobRequest
 from service.progress import eta_seconds
 from service.settings import Settings
 from service.storage import LocalStore
@@ -65,6 +65,7 @@ def to_out(job: Job) -> JobOut:
         model_id=job.model_id,
         promotion=job.promotion,
         error=job.error,
+        problem=job.problem,
         warnings=job.warnings,
         cancel_requested=job.cancel_requested,
         attempts=job.attempts,
@@ -102,8 +103,7 @@ def _submit(settings: Settings, store: LocalStore, body: JobCreate) -> JobOut:
         except NotFound as exc:
             raise Unprocessable(str(exc), errors=[{"field": "dataset_id",
                                                    "message": "no such dataset"}]) from exc
-        key, sha = dataset.file_key, dataset.file_sha256
-        dataset_sha = dataset.sha256
+        columns, rows = list(dataset.columns or []), dataset.rows
         # Kinds declared at upload hold for every job on the dataset unless the job says
         # otherwise; stored in the request so the worker sees the same.
         named = set(body.features or ())
@@ -116,15 +116,13 @@ def _submit(settings: Settings, store: LocalStore, body: JobCreate) -> JobOut:
         if body.warm_start_job_id is not None:
             # Resolved now and stored in the request, so the worker enqueues exactly these.
             request["warm_start"], warm_task = _warm_start(session, body.warm_start_job_id)
-    frame = pd.read_parquet(store.local_path(key, sha))
-    # Every problem with the request surfaces here as a 422.
-    run = build_run(request, frame, dataset_sha256=dataset_sha)
-    if body.decision is not None and run.data.task != "binary":
-        message = f"decision costs apply to binary tasks; this job is {run.data.task}"
-        raise Unprocessable(message, errors=[{"field": "decision", "message": message}])
-    if warm_task is not None and warm_task != run.data.task:
+    stored = JobRequest.load(request)
+    # Every problem the dataset's profile shows is a 422 now; the worker prepares the rows
+    # and fails the job with the same problem document if they show one more.
+    effective = admit(stored, columns, rows)
+    if warm_task is not None and warm_task != effective["task"]:
         message = (f"job '{body.warm_start_job_id}' tuned a {warm_task} task; this job is "
-                   f"{run.data.task}")
+                   f"{effective['task']}")
         raise Unprocessable(message, errors=[{"field": "warm_start_job_id",
                                               "message": message}])
     job_id = repository.new_id("job")
@@ -135,9 +133,9 @@ def _submit(settings: Settings, store: LocalStore, body: JobCreate) -> JobOut:
             dataset_id=body.dataset_id,
             priority=body.priority,
             max_workers=body.max_workers,
-            spec={"request": request, "effective": run.effective},
+            spec={"request": stored.model_dump(mode="json"), "effective": effective},
             study_name=f"grovekeeper-{job_id}",
-            warnings=list(run.data.warnings),
+            warnings=[],
         )
         return to_out(job)
 

@@ -27,8 +27,7 @@ from service.api.tabular import csv_response, wants_csv
 from service.db import session_scope
 from service.errors import Conflict, Unprocessable
 from service.tables import Model
-from tuner.decision import DEFAULT_DECISION
-from tuner.drift import psi, reading
+from vocabulary import DEFAULT_DECISION
 
 router = APIRouter(prefix="/v1/models", tags=["models"])
 Unseen = Literal["error", "missing"]
@@ -140,6 +139,8 @@ async def get_drift(
 
 def drift_report(model_id: str, reference: dict[str, Any],
                  days: list[tuple[str, int, list[list[int]]]]) -> dict[str, Any]:
+    from tuner.drift import psi, reading  # NumPy loads with the first drift report
+
     rows = sum(r for _, r, _ in days)
     features = []
     for j, entry in enumerate(reference["features"]):
