@@ -132,6 +132,9 @@ def cmd_status(args: argparse.Namespace) -> int:
                                   "trials_budget", "best_score", "best_trial_number",
                                   "elapsed_seconds", "eta_seconds")),
             ("model_id", job["model_id"]), ("error", job["error"])]
+    # A job the worker found bad input in names the fields, as a refused request does.
+    rows += [(f"field {e['field']}", e["message"])
+             for e in (job.get("problem") or {}).get("errors", [])]
     width = max(len(k) for k, _ in rows)
     for key, value in rows:
         print(f"{key.ljust(width)}  {fmt(value) or '-'}")

@@ -29,7 +29,8 @@ from tuner.space import DEFAULT_SPACE, merge_overrides
 #: How many of an earlier job's best trials a warm start enqueues.
 WARM_START_TRIALS = 3
 
-__all__ = ["WARM_START_TRIALS", "admit", "check_reproducible", "prefixed", "provisional_objective"]
+__all__ = ["WARM_START_TRIALS", "admit", "check_reproducible", "prefixed",
+           "provisional_objective"]
 
 
 def prefixed(errors: list[dict[str, Any]], prefix: str) -> list[dict[str, Any]]:

@@ -145,7 +145,7 @@ class JobCreate(Strict):
     max_parallel_trials: int | None = spec("max_parallel_trials")
     # Divided among the running trials (at least one each, never more than the cores).
     num_threads: int | None = spec("num_threads")
-    # One trial at a time in one worker (service/jobspec.py check_reproducible).
+    # One trial at a time in one worker (service/admission.py check_reproducible).
     reproducible: bool = spec("reproducible")
     selection: Selection = spec("selection")
     final_refit: FinalRefit = spec("final_refit")

@@ -23,12 +23,13 @@ from service.jobrequest import (  # noqa: F401
     PromoteSpec,
     Strict,
 )
-from vocabulary import UNSEEN_POLICIES
+from vocabulary import JOB_STATUSES, UNSEEN_POLICIES
 
+# The vocabulary's choices, as types of query parameters and fields.
 if TYPE_CHECKING:
-    Unseen = str
+    Unseen = StatusName = str
 else:
-    Unseen = Literal[UNSEEN_POLICIES]
+    Unseen, StatusName = Literal[UNSEEN_POLICIES], Literal[JOB_STATUSES]
 
 
 def as_utc(value: datetime | None) -> datetime | None:

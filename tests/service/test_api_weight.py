@@ -35,8 +35,8 @@ def test_importing_the_app_loads_no_heavy_library() -> None:
 
 def test_the_check_can_see_a_heavy_import() -> None:
     """The same check sees them when something does load them (so it can fail)."""
-    assert _loaded_after("import service.api.app, service.jobspec") == [
-        "lightgbm", "numpy", "optuna", "pandas", "pyarrow", "scipy", "sklearn"]
+    loaded = _loaded_after("import service.api.app, service.jobspec")
+    assert {"lightgbm", "numpy", "optuna", "pandas"} <= set(loaded)
 
 
 def _rss_mib(pid: int) -> float:

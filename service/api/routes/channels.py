@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import Annotated, Literal
+from typing import Annotated
 
 from fastapi import APIRouter, Query, Request
 from fastapi.concurrency import run_in_threadpool
@@ -20,6 +20,7 @@ from service.api.schemas import (
     ChannelSummary,
     PredictRequest,
     PredictResponse,
+    Unseen,
     as_utc,
 )
 from service.auth import hash_key
@@ -27,7 +28,6 @@ from service.db import session_scope
 from service.settings import Settings
 
 router = APIRouter(prefix="/v1/channels", tags=["channels"])
-Unseen = Literal["error", "missing"]
 
 
 def key_id(request: Request, settings: Settings) -> str | None:

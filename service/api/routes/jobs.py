@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import Annotated, Literal
+from typing import Annotated
 
 from fastapi import APIRouter, Query, Request, Response
 from sqlalchemy.orm import Session
@@ -17,6 +17,7 @@ from service.api.schemas import (
     LeaderboardRow,
     Page,
     Progress,
+    StatusName,
     TrialOut,
     as_utc,
 )
@@ -30,7 +31,7 @@ from service.storage import LocalStore
 from service.tables import Job, JobStatus, utcnow
 
 router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
-StatusFilter = Literal["queued", "running", "succeeded", "failed", "cancelled"]
+StatusFilter = StatusName
 
 
 def to_out(job: Job) -> JobOut:

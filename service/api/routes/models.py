@@ -5,7 +5,7 @@ from __future__ import annotations
 import base64
 import json
 from datetime import datetime
-from typing import Annotated, Any, Literal
+from typing import Annotated, Any
 
 from fastapi import APIRouter, Query, Request
 from fastapi.concurrency import run_in_threadpool
@@ -21,6 +21,7 @@ from service.api.schemas import (
     ModelSummary,
     PredictRequest,
     PredictResponse,
+    Unseen,
     as_utc,
 )
 from service.api.tabular import csv_response, wants_csv
@@ -30,7 +31,6 @@ from service.tables import Model
 from vocabulary import DEFAULT_DECISION
 
 router = APIRouter(prefix="/v1/models", tags=["models"])
-Unseen = Literal["error", "missing"]
 
 
 def to_out(model: Model) -> ModelOut:
