@@ -43,7 +43,7 @@ def _fixed(text: str) -> tuple[str, Any]:
         return name, value  # a bare word such as gbdt
 
 
-def _group(text: str) -> list[str]:
+def read_columns(text: str) -> list[str]:
     columns = [c.strip() for c in text.split(",") if c.strip()]
     if not columns:
         raise argparse.ArgumentTypeError("expected columns separated by commas")
@@ -85,7 +85,7 @@ _ITEM_PARSERS: dict[str, tuple[Callable[[str], Any], str]] = {
     "column_kinds": (read_kind, "COLUMN=KIND"),
     "monotone": (_direction, "COLUMN=1|-1"),
     "fixed": (_fixed, "PARAMETER=VALUE"),
-    "interaction_constraints": (_group, "COL,COL,..."),
+    "interaction_constraints": (read_columns, "COL,COL,..."),
     "features": (str, "COLUMN"),
     "exclude": (str, "COLUMN"),
     "segments": (str, "COLUMN"),
