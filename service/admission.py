@@ -66,14 +66,17 @@ def provisional_objective(task: str, metric: str | None, objective: str | None) 
     return "poisson" if metric == "poisson_deviance" else "regression"
 
 
-def admit(request: JobRequest, columns: Sequence[Mapping[str, Any]], rows: int
-          ) -> dict[str, Any]:
+def admit(request: JobRequest, columns: Sequence[Mapping[str, Any]], rows: int, *,
+          warm_task: str | None = None) -> dict[str, Any]:
     """Check ``request`` against the dataset's profile; return the provisional spec.
+
+    ``warm_task`` is the task of the job named by ``warm_start_job_id``, which must match.
 
     Raises:
         DatasetError, ConfigError, SearchSpaceError: Bad input the profile shows (422s
             naming the field).
-        Unprocessable: Decision costs on a task that is not binary.
+        Unprocessable: Decision costs on a task that is not binary; a warm start from
+            a job of another task.
     """
     cv = request.cv
     judged = judge(
@@ -98,6 +101,11 @@ def admit(request: JobRequest, columns: Sequence[Mapping[str, Any]], rows: int
     if request.decision is not None and judged.task not in (None, "binary"):
         message = f"decision costs apply to binary tasks; this job is {judged.task}"
         raise Unprocessable(message, errors=[{"field": "decision", "message": message}])
+    if warm_task is not None and judged.task is not None and warm_task != judged.task:
+        message = (f"job '{request.warm_start_job_id}' tuned a {warm_task} task; this job is "
+                   f"{judged.task}")
+        raise Unprocessable(message, errors=[{"field": "warm_start_job_id",
+                                              "message": message}])
     # Until the worker has read the rows: a task only they can tell (an older profile
     # without its small columns' values) is shown as regression, and corrected then.
     task = judged.task or "regression"

@@ -8,7 +8,7 @@ span fields. Pydantic only: the API imports it without the tuner's libraries.
 from __future__ import annotations
 
 from collections.abc import Mapping
-from typing import TYPE_CHECKING, Annotated, Any, Literal
+from typing import TYPE_CHECKING, Annotated, Any, Literal, TypeAlias
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
@@ -32,7 +32,13 @@ from vocabulary.job_fields import (
 from vocabulary.job_fields import field as job_field
 
 if TYPE_CHECKING:  # the checker sees strings; pydantic sees the vocabulary's choices
-    Task = Strategy = Pruner = Selection = FinalRefit = PromoteRule = DeclaredKind = str
+    Task: TypeAlias = str
+    Strategy: TypeAlias = str
+    Pruner: TypeAlias = str
+    Selection: TypeAlias = str
+    FinalRefit: TypeAlias = str
+    PromoteRule: TypeAlias = str
+    DeclaredKind: TypeAlias = str
 else:
     Task, Strategy = Literal[TASKS], Literal[CV_STRATEGIES]
     Pruner, Selection = Literal[PRUNERS], Literal[SELECTION_RULES]

@@ -74,6 +74,10 @@ def build_run(stored: JobRequest | Mapping[str, Any], frame: pd.DataFrame, *,
         column_kinds=request.column_kinds,
         segments=request.segments,
     )
+    if request.decision is not None and data.task != "binary":
+        # Judged at submission when the profile told the task; here for the rest.
+        message = f"decision costs apply to binary tasks; this job is {data.task}"
+        raise tuner.ConfigError(message, [{"field": "decision", "message": message}])
     objective = request.objective
     metric_name = (request.metric or default_metric_for(data.task, objective)
                    or default_metric(data.task))

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from datetime import UTC, datetime
-from typing import TYPE_CHECKING, Any, Generic, Literal, TypeVar
+from typing import TYPE_CHECKING, Any, Generic, Literal, TypeAlias, TypeVar
 
 from pydantic import BaseModel, ConfigDict, Field
 
@@ -27,7 +27,8 @@ from vocabulary import JOB_STATUSES, UNSEEN_POLICIES
 
 # The vocabulary's choices, as types of query parameters and fields.
 if TYPE_CHECKING:
-    Unseen = StatusName = str
+    Unseen: TypeAlias = str
+    StatusName: TypeAlias = str
 else:
     Unseen, StatusName = Literal[UNSEEN_POLICIES], Literal[JOB_STATUSES]
 

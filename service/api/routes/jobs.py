@@ -120,12 +120,7 @@ def _submit(settings: Settings, store: LocalStore, body: JobCreate) -> JobOut:
     stored = JobRequest.load(request)
     # Every problem the dataset's profile shows is a 422 now; the worker prepares the rows
     # and fails the job with the same problem document if they show one more.
-    effective = admit(stored, columns, rows)
-    if warm_task is not None and warm_task != effective["task"]:
-        message = (f"job '{body.warm_start_job_id}' tuned a {warm_task} task; this job is "
-                   f"{effective['task']}")
-        raise Unprocessable(message, errors=[{"field": "warm_start_job_id",
-                                              "message": message}])
+    effective = admit(stored, columns, rows, warm_task=warm_task)
     job_id = repository.new_id("job")
     with session_scope(settings.db_url) as session:
         job = repository.add_job(
