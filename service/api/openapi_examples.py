@@ -43,14 +43,23 @@ TRIAL = {"number": 11, "state": "complete", "params": PARAMS, "score": 0.8712,
          "score_std": 0.0121, "fold_scores": [0.861, 0.879, 0.868, 0.884, 0.864],
          "best_iterations": [88, 102, 95, 91, 110], "boosting_rounds": 97,
          "duration_seconds": 1.8}
-LEADERBOARD = {"job_id": JOB["id"], "metric": "roc_auc", "direction": "maximize", "count": 17,
-               "data": [{"rank": 1, "number": 11, "score": 0.8712, "score_std": 0.0121,
-                         "params": PARAMS, "boosting_rounds": 97}]}
+# A page's "next" is opaque: pass it back as ?cursor= (null on the last page).
+NEXT = "WyJqb2JzIixbIjIwMjYtMDMtMTRUMDk6MzE6MDArMDA6MDAiLCJqb2JfODlhYiJdXcKfQw"
+LEADERBOARD = {"items": [{"rank": 1, "number": 11, "score": 0.8712, "score_std": 0.0121,
+                          "score_se": 0.0054, "params": PARAMS, "boosting_rounds": 97}],
+               "total": 17, "next": NEXT, "job_id": JOB["id"], "metric": "roc_auc",
+               "direction": "maximize"}
 MODEL = {
     "id": "mdl_4567cdef89ab0123", "job_id": JOB["id"], "task": "binary", "metric": "roc_auc",
     "target": "defect", "params": PARAMS, "boosting_rounds": 97, "trial_number": 11,
     "cv": {"roc_auc": 0.8712, "roc_auc_std": 0.0121},
-    "holdout": {"roc_auc": 0.8655, "log_loss": 0.391, "rows": 240},
+    "holdout": {"roc_auc": 0.8655, "log_loss": 0.391},
+    "holdout_rows": 240,
+    "holdout_intervals": {
+        "roc_auc": {"estimate": 0.8655, "low": 0.8192, "high": 0.9071, "std_error": 0.0224,
+                    "level": 0.95, "resamples": 1000},
+        "log_loss": {"estimate": 0.391, "low": 0.342, "high": 0.447, "std_error": 0.0268,
+                     "level": 0.95, "resamples": 1000}},
     "feature_schema": {"features": [
         {"name": "peak_temp_c", "kind": "numeric", "levels": None},
         {"name": "clay_body", "kind": "categorical",
@@ -69,7 +78,7 @@ MODEL = {
 }
 MODEL_SUMMARY = {k: MODEL[k] for k in ("id", "job_id", "task", "metric", "target",
                                         "boosting_rounds", "trial_number", "cv", "holdout",
-                                        "sha256", "created_at")} | {"dataset_id": DATASET["id"]}
+                                        "holdout_rows", "sha256", "created_at")} | {"dataset_id": DATASET["id"]}
 ROW = {"kiln": "north", "clay_body": "raku", "peak_temp_c": 1240, "ramp_rate_c_per_h": 150,
        "hold_minutes": 20, "cooling_rate_c_per_h": 120, "humidity_pct": 55,
        "glaze_thickness_mm": 0.8, "load_fraction": 0.7, "shelf_position": "middle",
@@ -125,7 +134,7 @@ EXAMPLES: dict[tuple[str, str], dict[str, Any]] = {
                     "application/vnd.apache.parquet": "(Parquet bytes)"},
         "responses": {"201": {JSON: DATASET}}},
     ("get", "/v1/datasets"): {"responses": {"200": {
-        JSON: {"data": [DATASET], "count": 1},
+        JSON: {"items": [DATASET], "total": 1, "next": None},
         CSV: "id,name,rows,n_columns,size_bytes,source_format,sha256,created_at,warnings\n"
              f"{DATASET['id']},kilns,1200,13,98304,csv,9f2c…,2026-03-14T09:30:00+00:00,[]\n"}}},
     ("get", "/v1/datasets/{dataset_id}"): {"responses": {"200": {JSON: DATASET}}},
@@ -133,7 +142,7 @@ EXAMPLES: dict[tuple[str, str], dict[str, Any]] = {
     ("post", "/v1/jobs"): {"request": {JSON: JOB_CREATE},
                            "responses": {"202": {JSON: {**JOB, "status": "queued"}}}},
     ("get", "/v1/jobs"): {"responses": {"200": {
-        JSON: {"data": [JOB], "count": 1},
+        JSON: {"items": [JOB], "total": 3, "next": NEXT},
         CSV: "id,dataset_id,status,target,task,metric,trials_completed,trials_pruned,"
              "trials_failed,trials_budget,best_score,elapsed_seconds,eta_seconds,model_id,"
              "created_at,finished_at,error\n"
@@ -143,7 +152,7 @@ EXAMPLES: dict[tuple[str, str], dict[str, Any]] = {
     ("post", "/v1/jobs/{job_id}/cancel"): {"responses": {"202": {
         JSON: {**JOB, "cancel_requested": True}}}},
     ("get", "/v1/jobs/{job_id}/trials"): {"responses": {"200": {
-        JSON: {"data": [TRIAL], "count": 1},
+        JSON: {"items": [TRIAL], "total": 21, "next": NEXT},
         CSV: "number,state,score,score_std,boosting_rounds,duration_seconds,fold_scores,params\n"
              '11,complete,0.8712,0.0121,97,1.8,"[0.861,0.879,0.868,0.884,0.864]",'
              '"{""learning_rate"":0.052,""num_leaves"":31}"\n'}}},
@@ -151,7 +160,8 @@ EXAMPLES: dict[tuple[str, str], dict[str, Any]] = {
         JSON: LEADERBOARD,
         CSV: "rank,number,score,score_std,boosting_rounds,learning_rate,num_leaves\n"
              "1,11,0.8712,0.0121,97,0.052,31\n"}}},
-    ("get", "/v1/jobs/{job_id}/events"): {"responses": {}},
+    ("get", "/v1/jobs/{job_id}/watch"): {"responses": {}},  # documented on the route
+    ("get", "/v1/jobs/{job_id}/events"): {"responses": {}},  # 308 to /watch
     ("get", "/v1/jobs/{job_id}/plots/{name}.svg"): {"responses": {"200": {
         "image/svg+xml":
             '<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 640 360">…</svg>'}}},
