@@ -78,7 +78,8 @@ MODEL = {
 }
 MODEL_SUMMARY = {k: MODEL[k] for k in ("id", "job_id", "task", "metric", "target",
                                         "boosting_rounds", "trial_number", "cv", "holdout",
-                                        "holdout_rows", "sha256", "created_at")} | {"dataset_id": DATASET["id"]}
+                                        "holdout_rows", "sha256", "created_at")
+                 } | {"dataset_id": DATASET["id"]}
 ROW = {"kiln": "north", "clay_body": "raku", "peak_temp_c": 1240, "ramp_rate_c_per_h": 150,
        "hold_minutes": 20, "cooling_rate_c_per_h": 120, "humidity_pct": 55,
        "glaze_thickness_mm": 0.8, "load_fraction": 0.7, "shelf_position": "middle",

@@ -109,7 +109,7 @@ OLD_STREAM_NOTE = (
 )
 
 
-@router.get("/{job_id}/events", status_code=308, deprecated=True,
+@router.get("/{job_id}/events", status_code=308, deprecated=True, response_class=Response,
             summary="Old path of the live stream (308 to /watch)",
             description=OLD_STREAM_NOTE,
             responses={308: {"description": "Permanent redirect to `/v1/jobs/{job_id}/watch`",
