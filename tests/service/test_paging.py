@@ -5,7 +5,10 @@ old stream path redirects to /watch. On SQLite and PostgreSQL, against a real se
 from __future__ import annotations
 
 import base64
+import json
 import random
+import subprocess
+import sys
 from collections.abc import Iterator
 from dataclasses import dataclass
 from datetime import timedelta
@@ -18,7 +21,7 @@ from service import audit, repository
 from service.db import session_scope
 from service.settings import Settings
 from service.tables import Trial, utcnow
-from tests.conftest import DB_KINDS, fresh_database
+from tests.conftest import DB_KINDS, ROOT, child_env, fresh_database
 from tests.service.conftest import LiveApi, live_api
 
 N_TRIALS = 250
@@ -223,3 +226,24 @@ def test_the_old_stream_path_redirects_to_watch(filled: Filled) -> None:
     assert doc["/v1/jobs/{job_id}/events"]["get"]["deprecated"] is True
     assert "/watch" in doc["/v1/jobs/{job_id}/events"]["get"]["description"]
     assert "/v1/jobs/{job_id}/watch" in doc
+
+
+def _gk(api: LiveApi, *args: str) -> subprocess.CompletedProcess[str]:
+    env = child_env(api.settings.home, GROVEKEEPER_URL=api.base)
+    return subprocess.run([sys.executable, "-m", "service", *args], env=env, cwd=ROOT,
+                          capture_output=True, text=True, timeout=120)
+
+
+def test_client_commands_walk_the_pages(filled: Filled) -> None:
+    ranked = [t for t in filled.trials if t.state == "complete" and t.fidelity == 1.0]
+    jobs = _gk(filled.api, "jobs", "--limit", "3", "--format", "json")
+    board = _gk(filled.api, "board", filled.job_id, "--format", "json")  # over 100 rows
+    top = _gk(filled.api, "board", filled.job_id, "--limit", "4")
+    assert jobs.returncode == board.returncode == top.returncode == 0, jobs.stderr
+    listed = json.loads(jobs.stdout)
+    assert len(listed["items"]) == 3 and listed["total"] == 5 and listed["next"]
+    whole = json.loads(board.stdout)
+    assert len(ranked) > 100 and len(whole["items"]) == whole["total"] == len(ranked)
+    assert whole["next"] is None and whole["metric"] == "roc_auc"
+    assert len(top.stdout.strip().splitlines()) == 1 + 4  # header and four trials
+    assert f"{len(ranked)} finished trials" in top.stderr
