@@ -127,7 +127,8 @@ def _collect(env: Served) -> dict[tuple[str, str], Any]:
             time.sleep(0.5)
         assert done.json()["status"] == "succeeded", done.text
         got("get", "/v1/comparisons/{comparison_id}", done, 200)
-        got("get", "/v1/audit", client.get("/v1/audit", params={"limit": 1}), 200)
+        got("get", "/v1/audit", client.get(
+            "/v1/audit", params={"limit": 1, "action": "channel.set"}), 200)
     return out
 
 
