@@ -84,6 +84,8 @@ def _collect(env: Served) -> dict[tuple[str, str], Any]:
         got("get", "/v1/jobs/{job_id}", client.get(f"/v1/jobs/{job['id']}"), 200)
         got("get", "/v1/jobs/{job_id}/trials",
             client.get(f"/v1/jobs/{job['id']}/trials", params={"limit": 1}), 200)
+        got("post", "/v1/jobs/{job_id}/report-links", client.post(
+            f"/v1/jobs/{job['id']}/report-links", json={"expires_in": 3600}), 200)
         got("get", "/v1/jobs/{job_id}/leaderboard",
             client.get(f"/v1/jobs/{job['id']}/leaderboard", params={"limit": 1}), 200)
         got("get", "/v1/models", client.get("/v1/models", params={"limit": 1}), 200)
