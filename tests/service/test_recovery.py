@@ -73,6 +73,10 @@ def test_two_workers_share_one_job_within_the_budget_bound(db_url: str,
         pool.start(2)
         job = wait_until(lambda: (j := job_row(db_url, job_id)).status == "succeeded" and j,
                          240, "the shared job to succeed", pool.logs)
+        logs = pool.logs()
+    # The joiner joins while there is work left; finding none (its last join raced the
+    # lead closing the job) happens at most once, not join-and-leave over and over.
+    assert logs.count(f"left job {job_id} (0 trials)") <= 1, logs[-3000:]
     done = finished(db_url, job_id)
     contributors = {t.worker_id for t in done}
     # Each worker beyond the first may have one trial in flight when the budget is reached
