@@ -9,6 +9,7 @@ import optuna
 
 from tuner.dataset import PreparedData
 from tuner.errors import ConfigError
+from tuner.fidelity import FIDELITY_FROM_ROWS
 from tuner.losses import check_objective
 from tuner.selection import SELECTION_RULES
 from tuner.space import DEFAULT_SPACE, Choice, ParamRange, SearchSpace
@@ -54,6 +55,9 @@ class SearchConfig:
     #: Enqueue the portfolio of strong configurations (tuner.portfolio) after trial 0
     #: and the warm-start configurations.
     portfolio: bool = True
+    #: Search rows from which sampled configurations climb rungs of row subsamples
+    #: (successive halving, :mod:`tuner.fidelity`); ``None``: always all the rows.
+    fidelity_from_rows: int | None = FIDELITY_FROM_ROWS
 
 
 #: ``median``: prune a trial whose score so far (inside a fold at the boosting
@@ -111,6 +115,8 @@ def check_config(data: PreparedData, config: SearchConfig) -> None:
         errors.append({"field": "max_rounds", "message": "must be at least 1"})
     if config.early_stopping_rounds < 1:
         errors.append({"field": "early_stopping_rounds", "message": "must be at least 1"})
+    if config.fidelity_from_rows is not None and config.fidelity_from_rows < 1:
+        errors.append({"field": "fidelity_from_rows", "message": "must be at least 1"})
     if config.pruner not in PRUNERS:
         errors.append({"field": "pruner", "message": f"use one of {', '.join(PRUNERS)}"})
     if config.selection not in SELECTION_RULES:
