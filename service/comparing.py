@@ -9,6 +9,7 @@ import numpy as np
 import pandas as pd
 
 import tuner
+from service.jobrequest import JobRequest
 from service.storage import LocalStore
 from service.tables import Model
 from tuner.compare import paired_comparison
@@ -82,13 +83,12 @@ def compare(store: LocalStore, first: Model, second: Model, frame: pd.DataFrame,
     return out
 
 
-def _same_holdout(mine: dict[str, Any], theirs: dict[str, Any]) -> bool:
+def _same_holdout(mine: JobRequest, theirs: JobRequest) -> bool:
     """Two job requests on one dataset whose hold-outs are the same rows (the split
     depends on these settings alone)."""
-    def split(r: dict[str, Any]) -> tuple[Any, ...]:
-        cv = r.get("cv") or {}
-        return (r.get("target"), r.get("seed", 0), r.get("holdout_fraction", 0.2),
-                cv.get("strategy"), cv.get("group_column"), cv.get("time_column"))
+    def split(r: JobRequest) -> tuple[Any, ...]:
+        return (r.target, r.seed, r.holdout_fraction, r.cv.strategy, r.cv.group_column,
+                r.cv.time_column)
     return split(mine) == split(theirs)
 
 
@@ -102,11 +102,11 @@ def promote(url: str, store: LocalStore, *, job_id: str, model_id: str,
 
     with session_scope(url) as session:
         job = repository.get_job(session, job_id)
-        request = job.spec["request"]
-        wanted = request.get("promote")
-        if not wanted:
+        request = JobRequest.load(job.spec["request"])
+        wanted = request.promote
+        if wanted is None:
             return None
-        name, rule = wanted["channel"], wanted.get("rule", "if_better")
+        name, rule = wanted.channel, wanted.rule
         out: dict[str, Any] = {"channel": name, "rule": rule, "model_id": model_id,
                                "moved": False}
         try:
@@ -122,13 +122,13 @@ def promote(url: str, store: LocalStore, *, job_id: str, model_id: str,
             session.expunge(current)
             seen = None
             if current_job.dataset_id == job.dataset_id:
-                theirs = current_job.spec["request"]
-                if theirs.get("final_refit") == "all":
+                theirs = JobRequest.load(current_job.spec["request"])
+                if theirs.final_refit == "all":
                     seen = "it was refit on every row of this dataset"
                 elif not _same_holdout(request, theirs):
                     seen = "its job split this dataset differently"
             new_seen = ("the new model was refit on every row, hold-out included"
-                        if request.get("final_refit") == "all" else None)
+                        if request.final_refit == "all" else None)
     if current is None:
         out["reason"] = "the channel was empty"
     elif len(holdout_rows) == 0 and rule != "always":

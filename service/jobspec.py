@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import dataclasses
 import platform
+from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
@@ -18,6 +19,7 @@ import optuna
 import pandas as pd
 
 import tuner
+from service.jobrequest import JobRequest
 from tuner import fidelity
 from tuner.columns import date_part_name
 from tuner.config import check_config
@@ -39,6 +41,8 @@ class RunPlan:
     plan: ValidationPlan
     config: tuner.SearchConfig
     effective: dict[str, Any]
+    #: The typed request the plan was built from.
+    request: JobRequest
 
 
 def _prefixed(errors: list[dict[str, Any]], prefix: str) -> list[dict[str, Any]]:
@@ -52,75 +56,77 @@ def versions() -> dict[str, str]:
             "python": platform.python_version()}
 
 
-def check_reproducible(request: dict[str, Any]) -> None:
+def check_reproducible(request: JobRequest) -> None:
     """A reproducible job runs one trial at a time in one worker; anything else is a 422.
 
     Parallel trials (threads or workers) finish in an order that depends on timing, and
     the sampler proposes each new trial from the ones finished so far, so the trials
     themselves would differ from run to run.
     """
-    if not request.get("reproducible"):
+    if not request.reproducible:
         return
     errors = []
-    if (request.get("max_parallel_trials") or 1) > 1:
+    if (request.max_parallel_trials or 1) > 1:
         errors.append({"field": "max_parallel_trials", "message": "a reproducible job runs "
                        "one trial at a time; leave max_parallel_trials at 1"})
-    if (request.get("max_workers") or 1) > 1:
+    if request.max_workers > 1:
         errors.append({"field": "max_workers", "message": "a reproducible job runs in one "
                        "worker; leave max_workers at 1"})
     if errors:
         raise ConfigError(f"reproducible: {errors[0]['message']}", errors)
 
 
-def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
+def build_run(stored: JobRequest | Mapping[str, Any], frame: pd.DataFrame, *,
               dataset_sha256: str | None = None) -> RunPlan:
-    """Validate ``request`` (a ``JobCreate`` dump) against ``frame``; raise on bad input.
+    """Validate a job request against ``frame``; raise on bad input.
 
-    ``request["warm_start"]`` (``{"job_id", "trials", "params"}``), when present, was
-    resolved by the API from the earlier job's trials at submission.
+    ``stored`` is a :class:`JobRequest` or its JSON (a job's ``spec.request``), which is
+    validated into one here: every default comes from the request model
+    (``vocabulary/job_fields.py``), none is restated below. Its ``warm_start``, when
+    present, was resolved by the API from the earlier job's trials at submission.
 
     Raises the tuner's ValueError subclasses, each with ``.errors`` naming the field.
     """
-    cv = request.get("cv") or {}
+    request = JobRequest.load(stored)
+    cv = request.cv
     data = tuner.prepare(
         frame,
-        target=request["target"],
-        task=request.get("task"),
-        features=request.get("features"),
-        exclude=request.get("exclude"),
-        weight_column=request.get("weight_column"),
-        group_column=cv.get("group_column"),
-        time_column=cv.get("time_column"),
-        column_kinds=request.get("column_kinds"),
-        segments=request.get("segments"),
+        target=request.target,
+        task=request.task,
+        features=request.features,
+        exclude=request.exclude,
+        weight_column=request.weight_column,
+        group_column=cv.group_column,
+        time_column=cv.time_column,
+        column_kinds=request.column_kinds,
+        segments=request.segments,
     )
-    objective = request.get("objective")
-    metric_name = (request.get("metric") or default_metric_for(data.task, objective)
+    objective = request.objective
+    metric_name = (request.metric or default_metric_for(data.task, objective)
                    or default_metric(data.task))
     metric = get_metric(metric_name, data.task)
     try:
-        space = merge_overrides(DEFAULT_SPACE, request.get("search_space") or {})
+        space = merge_overrides(DEFAULT_SPACE, request.search_space or {})
     except tuner.SearchSpaceError as exc:
         exc.errors = _prefixed(exc.errors, "search_space.")
         raise
     # Fixed parameters the search could tune become fixed points of the space (so trials
     # list them); the rest, with the constraints, go to every trial and the final fit.
-    space, fixed = split_fixed(check_fixed(request.get("fixed")), space,
-                               request.get("search_space"))
+    space, fixed = split_fixed(check_fixed(request.fixed), space, request.search_space)
     fixed.update(constraint_params(
-        data.schema.names, request.get("monotone"), request.get("interaction_constraints"),
+        data.schema.names, request.monotone, request.interaction_constraints,
         # A date column stands for its calendar parts in a group, for its elapsed time
         # when monotone (its weekday has no direction).
         columns={f.name: f.model_names for f in data.schema.features if f.parts},
         monotone_columns={f.name: [date_part_name(f.name, "elapsed_days")]
                           for f in data.schema.features if f.parts},
         categorical={f.name for f in data.schema.features if f.kind == "categorical"}))
-    seed = int(request.get("seed", 0))
+    seed = request.seed
     plan = plan_validation(
         data,
-        strategy=cv.get("strategy"),
-        n_folds=None if cv.get("folds") is None else int(cv["folds"]),
-        holdout_fraction=float(request.get("holdout_fraction", 0.2)),
+        strategy=cv.strategy,
+        n_folds=cv.folds,
+        holdout_fraction=request.holdout_fraction,
         seed=seed,
     )
     if data.segments and not len(plan.holdout_idx):
@@ -128,30 +134,29 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
         raise tuner.ConfigError(message, [{"field": "segments", "message": message}])
     # Leaks, target copies, duplicates across the hold-out, imbalance, size: job warnings.
     data = dataclasses.replace(data, warnings=(*data.warnings, *job_warnings(data, plan)))
-    budget = request.get("budget") or {}
-    warm = request.get("warm_start") or {}
-    reproducible = bool(request.get("reproducible"))
+    warm = request.warm_start
+    reproducible = request.reproducible
     check_reproducible(request)
-    given_parallel = request.get("max_parallel_trials")
-    auto = not reproducible and given_parallel is None and request.get("num_threads") is None
+    given_parallel = request.max_parallel_trials
+    auto = not reproducible and given_parallel is None and request.num_threads is None
     config = tuner.SearchConfig(
         task=data.task,
         metric=metric.name,
-        n_trials=budget.get("trials"),
-        timeout=budget.get("seconds"),
+        n_trials=request.budget.trials,
+        timeout=request.budget.seconds,
         seed=seed,
         space=space,
         objective=objective,
-        pruner=request.get("pruner") or "median",
-        max_parallel_trials=int(given_parallel or 1),
-        num_threads=int(request.get("num_threads") or given_parallel or 1),
-        selection=request.get("selection") or "best",
-        final_refit=request.get("final_refit") or "train",
-        calibrate=bool(request.get("calibrate", True)),
-        portfolio=bool(request.get("portfolio", True)),
-        warm_start=tuple(dict(p) for p in warm.get("params", [])),
-        max_rounds=int(request.get("max_rounds") or 1000),
-        early_stopping_rounds=int(request.get("early_stopping_rounds") or 50),
+        pruner=request.pruner,
+        max_parallel_trials=given_parallel or 1,
+        num_threads=request.num_threads or given_parallel or 1,
+        selection=request.selection,
+        final_refit=request.final_refit,
+        calibrate=request.calibrate,
+        portfolio=request.portfolio,
+        warm_start=tuple(dict(p) for p in warm.params) if warm else (),
+        max_rounds=request.max_rounds,
+        early_stopping_rounds=request.early_stopping_rounds,
         fixed_params=fixed,
         # Looked up here, not frozen into SearchConfig's default, so one rule holds for
         # the API's check and the worker's run (tests lower it to use small tables).
@@ -171,8 +176,8 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
         "folds": len(plan.folds),
         "partition_folds": plan.partition_folds,
         "strategy": plan.strategy,
-        "group_column": cv.get("group_column"),
-        "time_column": cv.get("time_column"),
+        "group_column": cv.group_column,
+        "time_column": cv.time_column,
     }
     effective = {
         "target": data.target,
@@ -181,12 +186,12 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
         "direction": metric.direction,
         "objective": resolve_objective(data.task, metric.name, objective),
         "features": list(data.schema.names),
-        "column_kinds": dict(request.get("column_kinds") or {}),
-        "segments": list(request.get("segments") or ()),
-        "weight_column": request.get("weight_column"),
+        "column_kinds": dict(request.column_kinds or {}),
+        "segments": list(request.segments or ()),
+        "weight_column": request.weight_column,
         "budget": {"trials": config.n_trials, "seconds": config.timeout},
         "cv": cv_scheme,
-        "holdout_fraction": request.get("holdout_fraction", 0.2),
+        "holdout_fraction": request.holdout_fraction,
         "rows": {
             "used": int(len(data.y)),
             "search": int(len(plan.train_idx)),
@@ -207,10 +212,9 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
         "parallelism": "machine" if auto else "given",
         "selection": config.selection,
         "final_refit": config.final_refit,
-        "fixed": dict(request.get("fixed") or {}),
-        "monotone": dict(request.get("monotone") or {}),
-        "interaction_constraints": [list(g) for g in request.get("interaction_constraints")
-                                    or ()],
+        "fixed": dict(request.fixed or {}),
+        "monotone": dict(request.monotone or {}),
+        "interaction_constraints": [list(g) for g in request.interaction_constraints or ()],
         "lightgbm_fixed": fixed,
         "max_rounds": config.max_rounds,
         "early_stopping_rounds": config.early_stopping_rounds,
@@ -218,7 +222,7 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
         # Enqueued after trial 0 and any warm start, in this order (tuner.portfolio).
         "portfolio": (tuner.portfolio_params(space, n_train_rows=plan.min_fit_rows)
                       if config.portfolio else []),
-        "warm_start": ({"job_id": warm.get("job_id"), "trials": warm.get("trials", []),
+        "warm_start": ({"job_id": warm.job_id, "trials": list(warm.trials),
                         "params": list(config.warm_start)} if warm else None),
         "classes": data.classes,
         # What it takes to repeat this job: same bytes, space, seed, folds and libraries
@@ -231,4 +235,5 @@ def build_run(request: dict[str, Any], frame: pd.DataFrame, *,
             "versions": versions(),
         },
     }
-    return RunPlan(data=data, plan=plan, config=config, effective=effective)
+    return RunPlan(data=data, plan=plan, config=config, effective=effective,
+                   request=request)

@@ -14,6 +14,14 @@ from tuner.losses import check_objective
 from tuner.selection import SELECTION_RULES
 from tuner.space import DEFAULT_SPACE, Choice, ParamRange, SearchSpace
 from vocabulary import FINAL_REFITS, PRUNERS
+from vocabulary.job_fields import DEFAULT_TRIALS
+from vocabulary.job_fields import field as job_field
+
+
+def _default(name: str) -> Any:
+    # A job request's default (vocabulary/job_fields.py), so a job that leaves a field out
+    # and a library caller that leaves the setting out get the same search.
+    return job_field(name).default
 
 __all__ = ["FINAL_REFITS", "PRUNERS", "SearchConfig", "check_config", "make_pruner"]
 
@@ -24,26 +32,26 @@ class SearchConfig:
 
     task: str
     metric: str
-    n_trials: int | None = 40
+    n_trials: int | None = DEFAULT_TRIALS
     timeout: float | None = None
-    seed: int = 0
+    seed: int = _default("seed")
     space: SearchSpace = DEFAULT_SPACE
-    max_rounds: int = 1000
-    early_stopping_rounds: int = 50
+    max_rounds: int = _default("max_rounds")
+    early_stopping_rounds: int = _default("early_stopping_rounds")
     num_threads: int = 1
     pruner_warmup_folds: int = 1
     n_startup_trials: int = 8
     #: Regression loss (``tuner.losses.REGRESSION_OBJECTIVES``); ``None``: task default.
     objective: str | None = None
     #: ``median`` (per fold), ``halving`` (successive halving per fold) or ``none``.
-    pruner: str = "median"
+    pruner: str = _default("pruner")
     #: Trials run at once in this process; ``num_threads`` is divided among them.
     max_parallel_trials: int = 1
     #: How the winner is chosen (``tuner.selection.SELECTION_RULES``).
-    selection: str = "best"
+    selection: str = _default("selection")
     #: ``train``: serve the model fit on the search rows and scored on the hold-out;
     #: ``all``: after scoring, refit on every row (hold-out included) and serve that.
-    final_refit: str = "train"
+    final_refit: str = _default("final_refit")
     #: Parameter sets enqueued right after trial 0 (e.g. an earlier job's winners).
     warm_start: tuple[dict[str, Any], ...] = ()
     #: LightGBM parameters every trial and the final fit share: the job's fixed ones and
@@ -51,10 +59,10 @@ class SearchConfig:
     fixed_params: dict[str, Any] = field(default_factory=dict)
     #: Classification: fit a calibration map on the winner's out-of-fold scores and, when
     #: it lowers their cross-fitted log loss, write it into the model (tuner.calibration).
-    calibrate: bool = True
+    calibrate: bool = _default("calibrate")
     #: Enqueue the portfolio of strong configurations (tuner.portfolio) after trial 0
     #: and the warm-start configurations.
-    portfolio: bool = True
+    portfolio: bool = _default("portfolio")
     #: Search rows from which sampled configurations climb rungs of row subsamples
     #: (successive halving, :mod:`tuner.fidelity`); ``None``: always all the rows.
     fidelity_from_rows: int | None = FIDELITY_FROM_ROWS

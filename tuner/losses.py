@@ -7,7 +7,7 @@ from typing import Any
 import numpy as np
 
 from tuner.errors import ConfigError
-from vocabulary import REGRESSION_OBJECTIVES
+from vocabulary import OBJECTIVE_METRICS, REGRESSION_OBJECTIVES
 
 #: Regression losses a job may choose with ``objective``, by LightGBM's own names.
 #: ``regression`` is squared error; ``poisson`` and ``tweedie`` model counts and skewed,
@@ -41,8 +41,7 @@ def default_metric_for(task: str, objective: str | None) -> str | None:
     """A metric that suits ``objective`` better than the task default, or ``None``."""
     if task != "regression" or objective is None:
         return None
-    return {"poisson": "poisson_deviance", "tweedie": "poisson_deviance",
-            "quantile": "mae"}.get(objective)
+    return OBJECTIVE_METRICS.get(objective)
 
 
 def check_objective(task: str, metric: str, objective: str | None, y: Any) -> None:

@@ -16,6 +16,7 @@ from typing import Any
 import numpy as np
 
 from tuner.errors import ConfigError, DatasetError
+from vocabulary import DEFAULT_METRICS
 
 _EPS = float(np.finfo(np.float64).eps)
 CLASSIFICATION = frozenset({"binary", "multiclass"})
@@ -192,7 +193,7 @@ METRICS: dict[str, Metric] = {
     )
 }
 
-_DEFAULTS = {"binary": "roc_auc", "multiclass": "log_loss", "regression": "rmse"}
+_DEFAULTS = DEFAULT_METRICS
 
 
 def get_metric(name: str, task: str) -> Metric:

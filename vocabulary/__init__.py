@@ -36,9 +36,31 @@ FINISHED_STATUSES = ("succeeded", "failed", "cancelled")
 TRIAL_STATES = ("complete", "pruned", "failed", "running", "waiting")
 #: API key scopes, weakest first: each may do what the ones before it may.
 SCOPES = ("read", "write", "admin")
+#: When a job's ``promote`` moves its channel: only past the current model, or always.
+PROMOTE_RULES = ("if_better", "always")
+#: Every metric a job may rank trials by: its direction and the tasks it applies to
+#: (``tuner/metrics.py`` holds how each is computed; a test keeps the two equal).
+METRICS: dict[str, tuple[str, tuple[str, ...]]] = {
+    "roc_auc": ("maximize", ("binary", "multiclass")),
+    "log_loss": ("minimize", ("binary", "multiclass")),
+    "average_precision": ("maximize", ("binary", "multiclass")),
+    "accuracy": ("maximize", ("binary", "multiclass")),
+    "f1_macro": ("maximize", ("binary", "multiclass")),
+    "rmse": ("minimize", ("regression",)),
+    "mae": ("minimize", ("regression",)),
+    "r2": ("maximize", ("regression",)),
+    "poisson_deviance": ("minimize", ("regression",)),
+}
+METRIC_NAMES = tuple(METRICS)
+#: The metric a job ranks by when it names none, per task.
+DEFAULT_METRICS = {"binary": "roc_auc", "multiclass": "log_loss", "regression": "rmse"}
+#: Regression objectives whose own metric suits them better than the task default.
+OBJECTIVE_METRICS = {"poisson": "poisson_deviance", "tweedie": "poisson_deviance",
+                     "quantile": "mae"}
 
 __all__ = [
-    "COLUMN_KINDS", "CV_STRATEGIES", "DECLARED_KINDS", "FEATURE_KINDS", "FINAL_REFITS",
-    "FINISHED_STATUSES", "JOB_STATUSES", "PRUNERS", "REGRESSION_OBJECTIVES", "SCOPES",
+    "COLUMN_KINDS", "CV_STRATEGIES", "DECLARED_KINDS", "DEFAULT_METRICS", "FEATURE_KINDS",
+    "FINAL_REFITS", "FINISHED_STATUSES", "JOB_STATUSES", "METRICS", "METRIC_NAMES",
+    "OBJECTIVE_METRICS", "PROMOTE_RULES", "PRUNERS", "REGRESSION_OBJECTIVES", "SCOPES",
     "SELECTION_RULES", "TASKS", "TRIAL_STATES", "UNSEEN_POLICIES",
 ]

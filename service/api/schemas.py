@@ -3,20 +3,32 @@
 from __future__ import annotations
 
 from datetime import UTC, datetime
-from typing import Annotated, Any, Generic, Literal, TypeVar
+from typing import TYPE_CHECKING, Any, Generic, Literal, TypeVar
 
-from pydantic import BaseModel, ConfigDict, Field, model_validator
+from pydantic import BaseModel, ConfigDict, Field
 
-Task = Literal["binary", "multiclass", "regression"]
-Strategy = Literal["kfold", "stratified", "group", "time"]
-DEFAULT_TRIALS = 40
+# The job request's shapes live in service/jobrequest.py (the worker reads them too);
+# re-exported here beside the other request shapes.
+from service.jobrequest import (  # noqa: F401
+    DEFAULT_TRIALS,
+    MAX_COLUMNS,
+    MAX_ENTRIES,
+    MAX_NAME,
+    Budget,
+    CVSpec,
+    DecisionSpec,
+    JobCreate,
+    JobRequest,
+    Name,
+    PromoteSpec,
+    Strict,
+)
+from vocabulary import UNSEEN_POLICIES
 
-# Bounds on every string and list a request may carry, so that no field can hold more
-# than a table's worth of names (the body-size guard bounds the whole request too).
-MAX_NAME = 1000  # a column name
-MAX_COLUMNS = 10_000  # a list of columns
-MAX_ENTRIES = 200  # search-space overrides
-Name = Annotated[str, Field(min_length=1, max_length=MAX_NAME)]
+if TYPE_CHECKING:
+    Unseen = str
+else:
+    Unseen = Literal[UNSEEN_POLICIES]
 
 
 def as_utc(value: datetime | None) -> datetime | None:
@@ -24,117 +36,6 @@ def as_utc(value: datetime | None) -> datetime | None:
     if value is None or value.tzinfo is not None:
         return value
     return value.replace(tzinfo=UTC)
-
-
-class Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid")
-
-
-class Budget(Strict):
-    trials: int | None = Field(default=None, ge=1, le=100_000)
-    seconds: float | None = Field(default=None, gt=0, le=7 * 24 * 3600)
-
-    @model_validator(mode="after")
-    def _default_trials(self) -> Budget:
-        if self.trials is None and self.seconds is None:
-            self.trials = DEFAULT_TRIALS
-        return self
-
-
-class CVSpec(Strict):
-    # None: chosen from the search rows (tuner.validation.validation_splits).
-    folds: int | None = Field(default=None, ge=2, le=20)
-    strategy: Strategy | None = None
-    group_column: Name | None = None
-    time_column: Name | None = None
-
-
-class DecisionSpec(Strict):
-    """The costs of a binary model's two mistakes, in any one unit."""
-
-    false_positive_cost: float = Field(ge=0, le=1e12)
-    false_negative_cost: float = Field(ge=0, le=1e12)
-
-    @model_validator(mode="after")
-    def _not_both_zero(self) -> DecisionSpec:
-        if self.false_positive_cost + self.false_negative_cost <= 0:
-            raise ValueError("at least one of the two costs must be above zero")
-        return self
-
-
-class PromoteSpec(Strict):
-    """Move a channel to the job's model when it succeeds (see README, champion and
-    challenger)."""
-
-    channel: str = Field(pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,99}$")
-    rule: Literal["if_better", "always"] = "if_better"
-
-
-class JobCreate(Strict):
-    """A tuning job request. Only ``dataset_id`` and ``target`` are required."""
-
-    model_config = ConfigDict(
-        extra="forbid",
-        json_schema_extra={
-            "examples": [
-                {"dataset_id": "ds_0123abcd", "target": "defect", "budget": {"trials": 40}}
-            ]
-        },
-    )
-
-    dataset_id: str = Field(min_length=1, max_length=64)
-    target: Name
-    task: Task | None = None
-    metric: str | None = Field(default=None, max_length=64)
-    features: list[Name] | None = Field(default=None, max_length=MAX_COLUMNS)
-    exclude: list[Name] | None = Field(default=None, max_length=MAX_COLUMNS)
-    budget: Budget = Field(default_factory=Budget)
-    cv: CVSpec = Field(default_factory=CVSpec)
-    holdout_fraction: float = Field(default=0.2, ge=0.0, le=0.5)
-    weight_column: Name | None = None
-    search_space: dict[str, Any] | None = Field(default=None, max_length=MAX_ENTRIES)
-    seed: int = Field(default=0, ge=0, le=2**31 - 1)
-    priority: int = Field(default=0, ge=-1000, le=1000)
-    # Worker processes that may run trials of this job at once (one study, one budget).
-    max_workers: int = Field(default=1, ge=1, le=256)
-    # Regression loss: regression (squared error), poisson, tweedie, huber, quantile.
-    objective: str | None = Field(default=None, max_length=64)
-    pruner: Literal["median", "halving", "none"] = "median"
-    # Trials one worker runs at once. None: chosen from the table's size to use every core
-    # of the worker (tuner.trial_loop.machine_split), or 1 for a reproducible job.
-    max_parallel_trials: int | None = Field(default=None, ge=1, le=64)
-    # LightGBM threads this job's running trials share in one worker (divided among them,
-    # at least one each, never more than the worker's cores); default as above.
-    num_threads: int | None = Field(default=None, ge=1, le=64)
-    # Byte-identical results (same data, seed and settings: same trials, same model file):
-    # one trial at a time in one worker.
-    reproducible: bool = False
-    selection: Literal["best", "one_se"] = "best"
-    final_refit: Literal["train", "all"] = "train"
-    #: Classification: calibrate the served probabilities (a map fitted on the winner's
-    #: out-of-fold scores, kept only when it helps, written into the model file).
-    calibrate: bool = True
-    #: Run the fixed portfolio of strong configurations right after trial 0.
-    portfolio: bool = True
-    warm_start_job_id: str | None = Field(default=None, min_length=1, max_length=64)
-    # {column: kind} declared by the user; wins over the upload's declarations and inference.
-    column_kinds: dict[str, Literal["numeric", "categorical", "datetime", "text",
-                                    "ignore"]] | None = None
-    # LightGBM parameters held for every trial and the final fit ({name: value}); those
-    # that would break the service's guarantees are refused (README lists them).
-    fixed: dict[str, Any] | None = None
-    # {column: 1 | -1}: predictions never fall (1) or never rise (-1) as the value grows.
-    monotone: dict[str, Literal[1, -1]] | None = None
-    # Groups of columns; every tree splits on the columns of one group only.
-    interaction_constraints: list[list[str]] | None = None
-    # Columns to report hold-out metrics by (need not be features).
-    segments: list[str] | None = Field(default=None, max_length=20)
-    # Boosting rounds at most per fit, and rounds without improvement before a fold stops.
-    max_rounds: int = Field(default=1000, ge=1, le=100_000)
-    early_stopping_rounds: int = Field(default=50, ge=1, le=10_000)
-    # Binary only: the threshold the model serves labels with comes from these costs.
-    decision: DecisionSpec | None = None
-    promote: PromoteSpec | None = None
 
 
 class ColumnOut(BaseModel):
@@ -361,7 +262,7 @@ class ScoringCreate(Strict):
     dataset_id: str = Field(min_length=1, max_length=64)
     # Dataset columns written unchanged beside each prediction, first.
     keep: list[str] = Field(default_factory=list, max_length=100)
-    unseen: Literal["error", "missing"] = "error"
+    unseen: Unseen = "error"
 
 
 class ScoringProgress(BaseModel):

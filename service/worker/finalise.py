@@ -145,11 +145,7 @@ def fit_and_store(url: str, store: ArtifactStore, job_id: str, run: RunPlan,
     """
     fitted = tuner.fit_final(run.data, run.plan, run.config, best)
 
-    def read_costs() -> dict[str, float] | None:
-        with session_scope(url) as session:
-            return repository.get_job(session, job_id).spec["request"].get("decision")
-
-    costs = with_reconnect(read_costs, f"job {job_id}: reading its costs")
+    costs = None if run.request.decision is None else run.request.decision.model_dump()
     decision = decide_safely(fitted, run, best, costs, job_id)
     # The hold-out confusion matrix uses the threshold the model serves labels with.
     threshold = float((decision or {}).get("threshold", 0.5))

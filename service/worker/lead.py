@@ -159,7 +159,7 @@ def promote_safely(ctx: WorkerContext, job_id: str, model_id: str, run: RunPlan)
     try:
         with session_scope(ctx.url) as session:
             job = repository.get_job(session, job_id)
-            if not job.spec["request"].get("promote"):
+            if run.request.promote is None:
                 return
             dataset = repository.get_dataset(session, job.dataset_id)
             path = ctx.store.local_path(dataset.file_key, dataset.file_sha256)
