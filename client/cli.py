@@ -1,7 +1,7 @@
 """Client commands of ``grovekeeper``, against a running server.
 
 ``upload``, ``datasets``, ``tune``, ``watch``, ``status``, ``cancel``, ``jobs``,
-``board``, ``model``, ``predict``. The server comes from ``--url`` or GROVEKEEPER_URL,
+``board``, ``model``, ``predict``, ``report``. The server comes from ``--url`` or GROVEKEEPER_URL,
 the key from ``--api-key`` or GROVEKEEPER_API_KEY (client/settings.py).
 Every failure leaves with a documented exit code and one line on stderr.
 """
@@ -91,6 +91,23 @@ def cmd_predict(args: argparse.Namespace) -> int:
         print(f"wrote {rows} predictions to {args.output}", file=sys.stderr)
     else:
         sys.stdout.write(response.text)
+    return client.OK
+
+
+def cmd_report(args: argparse.Namespace) -> int:
+    body = {} if args.expires_in is None else {"expires_in": args.expires_in}
+    with Api(args.url, args.api_key, timeout=args.timeout) as api:
+        link = api.post(f"/v1/jobs/{args.job_id}/report-links", json=body)
+    if args.format == "json":
+        jobs._emit(link)
+    else:
+        print(link["url"])
+        print(f"opens without a key until {link['expires_at']}", file=sys.stderr)
+    if args.open:
+        import webbrowser
+
+        if not webbrowser.open(link["url"]):
+            print("no browser to open it in; copy the link above", file=sys.stderr)
     return client.OK
 
 
@@ -271,6 +288,13 @@ def register(sub: Any) -> None:
     p.add_argument("--save-model", metavar="PATH", help="also write the LightGBM text model")
     p.add_argument("--save-bundle", metavar="PATH",
                    help="also write the hand-off zip (model, schema, predict.py, ...)")
+
+    p = add("report", cmd_report, "print a signed link to a job's report page that opens "
+            "without a key until it expires", ("url", "json"))
+    p.add_argument("job_id")
+    p.add_argument("--open", action="store_true", help="also open it in a web browser")
+    p.add_argument("--expires-in", type=_positive(int), metavar="SECONDS",
+                   help="how long the link stays valid (server default 900, at most 86400)")
 
     p = add("predict", cmd_predict, "predict the rows of a CSV file; CSV to stdout",
             ("csv",))

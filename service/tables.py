@@ -293,3 +293,15 @@ class AuditEntry(Base):
     method: Mapped[str | None] = mapped_column(sa.String(8))
     path: Mapped[str | None] = mapped_column(sa.String(300))
     status: Mapped[int | None]
+
+
+class ServerSecret(Base):
+    """Secrets the server makes for itself, by name (``report_links``: the HMAC key of
+    signed report links). Kept in the database so every API process signs and checks with
+    the same one; made on first use (service/links.py)."""
+
+    __tablename__ = "gk_server_secrets"
+
+    name: Mapped[str] = mapped_column(sa.String(40), primary_key=True)
+    value: Mapped[str] = mapped_column(sa.String(128))
+    created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)

@@ -10,7 +10,7 @@ from fastapi.middleware.cors import CORSMiddleware
 
 from service.api import openapi_examples, problems
 from service.api.audit import AuditTrail
-from service.api.deps import AdminDep, AuthDep
+from service.api.deps import AdminDep, AuthDep, ReadDep
 from service.api.drift import DriftRecorder
 from service.api.guard import RequestGuard
 from service.api.jobwatch import WatchHub
@@ -25,6 +25,7 @@ from service.api.routes import (
     events,
     health,
     jobs,
+    links,
     metrics,
     models,
     scorings,
@@ -32,6 +33,7 @@ from service.api.routes import (
 from service.api.routes import report as report_routes
 from service.auth import KeyChecker
 from service.db import init_db
+from service.links import LinkSigner
 from service.settings import Settings
 from service.storage import ArtifactStore
 
@@ -64,6 +66,7 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
     app.state.drift = DriftRecorder(settings.db_url, settings.drift_flush_seconds)
     app.state.predictors = PredictorCache(app.state.store, recorder=app.state.drift)
     app.state.keys = KeyChecker(settings.db_url, open_without_keys=loopback_only)
+    app.state.links = LinkSigner(settings.db_url)
     app.state.watch_hub = WatchHub(settings.db_url, per_key=settings.max_streams_per_key,
                                    total=settings.max_streams)
     origins = [o.strip() for o in settings.cors_origins.split(",") if o.strip()]
@@ -89,6 +92,7 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
     metrics.install(app)
     openapi_examples.install(app)
     app.include_router(report_routes.router, dependencies=[AuthDep])
+    app.include_router(links.router, dependencies=[ReadDep])
     app.include_router(audit.router, dependencies=[AdminDep])
     # Every successful change is recorded with the key that made it (service/api/audit.py).
     app.add_middleware(AuditTrail, url=settings.db_url)

@@ -8,6 +8,7 @@ from typing import Annotated
 from fastapi import Depends, Request
 from sqlalchemy.orm import Session
 
+from service.api.guard import LINK_STATE
 from service.db import session_scope
 from service.settings import Settings
 from service.storage import LocalStore
@@ -36,9 +37,22 @@ SessionDep = Annotated[Session, Depends(get_session, scope="function")]
 
 def require_key(request: Request) -> None:
     """Router-level dependency: the key's scope must allow the request's method. The key's
-    id stays on the request for the audit trail (service/api/audit.py)."""
+    id stays on the request for the audit trail (service/api/audit.py). A request that came
+    through a signed report link was checked by the guard (service/api/guard.py), which
+    lets only reads of that job's pages through; it has no key."""
+    if (getattr(request.state, LINK_STATE, None) is not None
+            and request.method in ("GET", "HEAD")):
+        request.state.key_id = None
+        return
     request.state.key_id = request.app.state.keys.check(
         request.method, request.headers.get("authorization"))
+
+
+def require_read(request: Request) -> None:
+    """Any active key, whatever the method: for POSTs that change nothing stored (minting
+    a signed report link)."""
+    request.state.key_id = request.app.state.keys.check(
+        request.method, request.headers.get("authorization"), needed="read")
 
 
 def require_admin(request: Request) -> None:
@@ -48,4 +62,5 @@ def require_admin(request: Request) -> None:
 
 
 AuthDep = Depends(require_key)
+ReadDep = Depends(require_read)
 AdminDep = Depends(require_admin)

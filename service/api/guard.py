@@ -11,6 +11,10 @@ every route:
 - **Key.** A request that may carry a body (any method but GET, HEAD and OPTIONS) must
   present a valid key before the first byte of its body is read. The route's own
   dependency still decides the scope.
+- **Signed report links** (``/v1/links/{token}/...``, service/links.py): the link is
+  the credential. It is checked here (signature, expiry, GET or HEAD, a path of its job),
+  then the request goes on with the prefix taken off, marked so that the route's key
+  dependency lets it through.
 - **No-key mode** (a loopback server that has never had a key): only loopback ``Host``
   names are served (a page on another site cannot reach the API by pointing its own
   name at 127.0.0.1), and a state-changing request that a browser marks as coming
@@ -24,16 +28,21 @@ import re
 from typing import Any
 from urllib.parse import urlsplit
 
+import anyio
 from starlette.exceptions import HTTPException
 from starlette.requests import Request
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
+from service import links
 from service.api import problems
 from service.errors import ServiceError
 
 #: Paths that need no key at all (health, metrics, the API description and its page).
 PUBLIC_PREFIXES = ("/healthz", "/readyz", "/metrics", "/docs", "/openapi.json")
 SAFE_METHODS = frozenset({"GET", "HEAD", "OPTIONS"})
+#: Where the guard leaves the job id of a checked signed link (``request.state``).
+LINK_STATE = "signed_link_job"
+
 #: Routes whose bodies are tables (uploads) or prediction batches.
 _LARGE_BODY = re.compile(r"^/v1/(datasets|models/[^/]+/predictions|channels/[^/]+/predictions)$")
 #: Multipart framing around an upload's file part (boundaries, part headers, the name).
@@ -108,7 +117,11 @@ class RequestGuard:
             declared = headers.get("content-length")
             if declared is not None and declared.isdigit() and int(declared) > limit:
                 raise BodyTooLarge(limit)
-            if not path.startswith(PUBLIC_PREFIXES):
+            if path.startswith(links.PREFIX):
+                opened = await anyio.to_thread.run_sync(state.links.open, method, path)
+                scope = {**scope, "path": opened.path, "raw_path": opened.path.encode()}
+                scope.setdefault("state", {})[LINK_STATE] = opened.job_id
+            elif not path.startswith(PUBLIC_PREFIXES):
                 self._check_access(state, method, headers)
         except Exception as exc:  # noqa: BLE001 - answered through the app's own handlers
             await self._answer(scope, receive, send, exc)

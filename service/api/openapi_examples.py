@@ -157,6 +157,12 @@ EXAMPLES: dict[tuple[str, str], dict[str, Any]] = {
             '<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 640 360">…</svg>'}}},
     ("get", "/v1/jobs/{job_id}/report"): {"responses": {"200": {
         "text/html": "<!doctype html><html><head><title>Job job_5c0f9a1e2b3d4e6f</title>…"}}},
+    ("post", "/v1/jobs/{job_id}/report-links"): {
+        "request": {JSON: {"expires_in": 3600}},
+        "responses": {"200": {JSON: {
+            "url": f"http://127.0.0.1:8000/v1/links/{JOB['id']}.1773484260."
+                   f"q0V6x1yWcHn5c6bS2wKf3jRrP8mQe7tYz4uLg9aDh0E/jobs/{JOB['id']}/report",
+            "expires_at": "2026-03-14T10:31:00Z"}}}},
     ("get", "/v1/models"): {"responses": {"200": {
         JSON: {"items": [MODEL_SUMMARY], "total": 1, "next": None},
         CSV: "id,job_id,dataset_id,task,metric,target,boosting_rounds,trial_number,holdout,"

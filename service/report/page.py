@@ -11,15 +11,13 @@ from html import escape
 from typing import Any
 
 REFRESH_SECONDS = 5
-SHOWN_PARAMS = ("learning_rate", "num_leaves", "min_data_in_leaf", "feature_fraction",
-                "bagging_fraction", "lambda_l2")
 CAPTIONS = {
     "history": "Each dot is one trial's mean CV score; the line is the best score so far.",
     "hyperparameters": "How much of the variation in CV score each tuned parameter explains.",
     "features": "Where the winner's trees found their gain.",
     "learning": "Training vs validation score per round on the first CV fold, refit as the "
                 "search fitted it; the dashed line is where early stopping settled on that "
-                "fold (the final model's tree count averages all folds).",
+                "fold (the final model's rounds average all folds).",
     "calibration": "Dots on the diagonal mean predicted probabilities can be taken at face "
                    "value.",
     "gains": "Working down the hold-out rows from the highest predicted probability: the "
@@ -35,7 +33,7 @@ CAPTIONS = {
 
 CSS = """
 :root{--ink:#1f2933;--muted:#616e7c;--line:#e4e7eb;--accent:#2f6f9f;--warn:#8a5a00;
---warnbg:#fff7e6;--bad:#b42318;--ok:#2e7d32}
+--warnbg:#fff7e6;--bad:#b42318;--ok:#2e7d32;--stop:#5b4a86;--stopbg:#efecf6}
 *{box-sizing:border-box}
 body{margin:0;font:15px/1.5 system-ui,-apple-system,"Segoe UI",Roboto,sans-serif;color:var(--ink);
 background:#f7f8fa}
@@ -47,7 +45,8 @@ margin-bottom:14px}
 .status{display:inline-block;padding:1px 10px;border-radius:999px;font-size:13px;
 font-weight:600;vertical-align:middle;margin-left:8px;background:#e8eef5;color:var(--accent)}
 .status.succeeded{background:#e7f4e8;color:var(--ok)}
-.status.failed,.status.cancelled{background:#fdecea;color:var(--bad)}
+.status.failed{background:#fdecea;color:var(--bad)}
+.status.cancelled{background:var(--stopbg);color:var(--stop)}
 .facts{display:grid;grid-template-columns:repeat(auto-fit,minmax(170px,1fr));gap:10px 20px;
 margin:0}
 .facts dt{color:var(--muted);font-size:12px;text-transform:uppercase;letter-spacing:.04em}
@@ -57,6 +56,10 @@ margin:0}
 .warnings{background:var(--warnbg);border-color:#f0d9a8;color:var(--warn)}
 .warnings ul{margin:6px 0 0;padding-left:20px}.warnings li{margin:3px 0}
 .error{background:#fdecea;border-color:#f5c2bd;color:var(--bad)}
+.stopped{background:var(--stopbg);border-color:#d6cfe8;color:var(--stop)}
+.settings dd{font-size:14px}
+.links{display:flex;flex-wrap:wrap;gap:6px 18px;margin:0;padding:0;list-style:none}
+.space td:first-child{font-family:ui-monospace,SFMono-Regular,Menlo,monospace;font-size:13px}
 table{border-collapse:collapse;width:100%;font-variant-numeric:tabular-nums}
 th,td{text-align:left;padding:6px 10px;border-bottom:1px solid var(--line);vertical-align:top}
 th{font-size:12px;color:var(--muted);text-transform:uppercase;letter-spacing:.04em;
@@ -68,6 +71,17 @@ figure{margin:0}figure img{width:100%;height:auto;display:block}
 figcaption{color:var(--muted);font-size:13px;margin-top:6px}
 .note{color:var(--muted);font-size:13px}
 a{color:var(--accent)}
+@media print{
+@page{margin:14mm}
+body{background:#fff;font-size:11pt}main{max-width:none;padding:0}
+.card{border:none;border-radius:0;padding:0 0 8px;margin-bottom:10px;break-inside:avoid}
+.live,.bar,#links{display:none}
+h2{break-after:avoid}.plots{display:block}
+figure{break-inside:avoid;margin-bottom:12px}figure img{max-width:16cm}
+table{font-size:9.5pt}tr{break-inside:avoid}tr.win td{background:none;font-weight:600}
+.status{border:1px solid currentColor}
+a{color:inherit;text-decoration:none}
+}
 """
 
 
@@ -81,7 +95,8 @@ def _num(value: Any, digits: int = 4) -> str:
 
 def _facts(job: dict[str, Any]) -> str:
     p = job["progress"]
-    done = p["trials_completed"] + p["trials_pruned"]
+    # Every finished trial counts against the budget, failed ones too (as on the CLI).
+    done = p["trials_completed"] + p["trials_pruned"] + p["trials_failed"]
     budget = p.get("trials_budget")
     items = [
         ("trials", f"{done}" + (f" of {budget}" if budget else "")),
@@ -143,7 +158,7 @@ def _winner(model: dict[str, Any]) -> str:
         extra.append(f"Brier score {cal['brier']:.4f}")
     return (
         f'<section class="card" id="winner"><p>Model <code>{escape(model["id"])}</code>, '
-        f"trial {model['trial_number']}, {model['boosting_rounds']} trees. "
+        f"trial {model['trial_number']}, {_rounds(model)}. "
         f"CV {escape(model['metric'])}: <strong>{_num(cv.get('mean'))}</strong> ± "
         f"{_num(cv.get('std'), 2)} (folds: {folds}).</p>{_gain(model)}{gap_text}"
         f"{_calibration(model)}"
@@ -151,6 +166,16 @@ def _winner(model: dict[str, Any]) -> str:
         + (f"<p class='note'>{escape('; '.join(extra))}.</p>" if extra else "")
         + "</section>"
     )
+
+
+def _rounds(model: dict[str, Any]) -> str:
+    """Boosting rounds; multiclass models grow one tree per class in each round."""
+    rounds = model["boosting_rounds"]
+    classes = len(model.get("classes") or ()) if model["task"] == "multiclass" else 0
+    text = f"{rounds} boosting round{'s' if rounds != 1 else ''}"
+    if classes > 2:
+        text += f" ({rounds * classes} trees: one per class in each round)"
+    return text
 
 
 def _segments(ev: dict[str, Any]) -> str:
@@ -219,12 +244,22 @@ def _gain(model: dict[str, Any]) -> str:
             f"bootstrap, {gain['resamples']} resamples.</span></p>")
 
 
-def _leaderboard(rows: list[dict[str, Any]], count: int, winner: int | None) -> str:
+def _param_order(space: dict[str, Any], rows: list[dict[str, Any]]) -> list[str]:
+    """The search space's order, then any other name a trial carries (a warm start's)."""
+    names = list(space)
+    for r in rows:
+        names += [k for k in r["params"] if k not in names]
+    return names
+
+
+def _leaderboard(rows: list[dict[str, Any]], count: int, winner: int | None,
+                 space: dict[str, Any]) -> str:
     if not rows:
         return "<p class='note'>No trial has completed yet.</p>"
+    order = _param_order(space, rows)
     body = []
     for r in rows:
-        params = ", ".join(f"{k}={_num(r['params'][k], 3)}" for k in SHOWN_PARAMS
+        params = ", ".join(f"{k}={_num(r['params'][k], 3)}" for k in order
                            if k in r["params"])
         cls = ' class="win"' if r["number"] == winner else ""
         body.append(f"<tr{cls}><td class='num'>{r['rank']}</td><td class='num'>{r['number']}"
@@ -235,7 +270,7 @@ def _leaderboard(rows: list[dict[str, Any]], count: int, winner: int | None) -> 
             if count > len(rows) else "")
     return ("<table id='leaderboard'><thead><tr><th class='num'>rank</th><th class='num'>"
             "trial</th><th class='num'>CV score</th><th class='num'>± std</th><th class='num'>"
-            f"trees</th><th>parameters</th></tr></thead><tbody>{''.join(body)}</tbody></table>"
+            f"rounds</th><th>parameters</th></tr></thead><tbody>{''.join(body)}</tbody></table>"
             + more)
 
 
@@ -271,9 +306,115 @@ def _plots(names: list[str]) -> str:
     return f'<div class="plots">{figures}</div>'
 
 
+def _range(spec: dict[str, Any]) -> str:
+    """A search-space entry in words: a range, a list of choices, or a held value."""
+    if "choices" in spec:
+        return "one of " + ", ".join(_num(c, 3) for c in spec["choices"])
+    if "value" in spec:
+        return f"held at {_num(spec['value'], 4)}"
+    scale = ", log scale" if spec.get("log") else ""
+    kind = "integers " if spec.get("type") == "int" else ""
+    return f"{kind}{_num(spec['low'], 3)} – {_num(spec['high'], 3)}{scale}"
+
+
+def _validation(spec: dict[str, Any]) -> str:
+    cv = spec.get("cv") or {}
+    folds, parts = cv.get("folds"), cv.get("partition_folds")
+    text = (f"{folds} of {parts} folds" if parts and parts != folds
+            else f"{folds} folds") if folds else "–"
+    text += f", {cv.get('strategy') or 'kfold'}"
+    for key in ("group_column", "time_column"):
+        if cv.get(key):
+            text += f" by {cv[key]}"
+    return text
+
+
+def _settings(job: dict[str, Any], dataset: dict[str, Any] | None) -> str:
+    """What the job was asked to do, as the worker ran it (the effective spec)."""
+    spec = job.get("spec") or {}
+    rows = spec.get("rows") or {}
+    budget = spec.get("budget") or {}
+    space = spec.get("search_space") or {}
+    tuned = sum(1 for v in space.values() if "value" not in v)
+    held = len(space) - tuned
+    name = (dataset or {}).get("name")
+    items = [
+        ("dataset", f"{name} ({job['dataset_id']})" if name else job["dataset_id"]),
+        ("rows", f"{rows.get('search', '–')} searched, {rows.get('holdout', '–')} held out"
+         if rows else "–"),
+        ("validation", _validation(spec)),
+        ("hold-out", f"{spec.get('holdout_fraction', 0):.0%} of rows"),
+        ("budget", " or ".join(part for part in (
+            f"{budget['trials']} trials" if budget.get("trials") else "",
+            f"{budget['seconds']:g} s" if budget.get("seconds") else "") if part) or "–"),
+        ("search space", f"{tuned} parameters tuned" + (f", {held} held" if held else "")),
+        ("seed", str(spec.get("seed", "–"))),
+        ("objective", str(spec.get("objective") or "–")),
+        ("pruner", str(spec.get("pruner") or "–")),
+        ("selection", str(spec.get("selection") or "–")),
+        ("rounds", f"at most {spec.get('max_rounds', '–')}, early stopping after "
+                   f"{spec.get('early_stopping_rounds', '–')} without gain"),
+        ("reproducible", "yes" if spec.get("reproducible") else "no"),
+    ]
+    if spec.get("weight_column"):
+        items.insert(3, ("weights", spec["weight_column"]))
+    dl = "".join(f"<div><dt>{escape(k)}</dt><dd>{escape(v)}</dd></div>" for k, v in items)
+    return f'<section class="card" id="settings"><dl class="facts settings">{dl}</dl></section>'
+
+
+def _space(job: dict[str, Any], model: dict[str, Any] | None,
+           board: list[dict[str, Any]]) -> str:
+    """Every parameter of the search space (the default one or the job's own), its range,
+    and the winner's value."""
+    space = (job.get("spec") or {}).get("search_space") or {}
+    chosen = (model or {}).get("params") or (board[0]["params"] if board else {})
+    head = "winner" if model else "best so far"
+    names = _param_order(space, board)
+    if not names:
+        return ""
+    body = "".join(
+        f"<tr><td>{escape(n)}</td><td>{escape(_range(space[n])) if n in space else '–'}</td>"
+        f"<td class='num'>{_num(chosen.get(n), 4)}</td></tr>" for n in names)
+    return ("<h2>Search space</h2><section class='card'><table class='space' id='space'>"
+            f"<thead><tr><th>parameter</th><th>searched</th><th class='num'>{head}</th></tr>"
+            f"</thead><tbody>{body}</tbody></table></section>")
+
+
+def _links(job: dict[str, Any], model: dict[str, Any] | None) -> str:
+    """Relative links, so that under a signed link's prefix they stay inside it."""
+    job_id = escape(job["id"])
+    items = [(f"../{job_id}", "job (JSON)"), ("leaderboard?format=csv", "leaderboard (CSV)")]
+    if model:
+        base = f"../../models/{escape(model['id'])}"
+        items += [(base, "model (JSON)"), (f"{base}/file", "model file (LightGBM text)"),
+                  (f"{base}/bundle", "bundle (zip with predict.py)")]
+    lis = "".join(f'<li><a href="{href}">{escape(text)}</a></li>' for href, text in items)
+    return f'<nav class="card" id="links"><ul class="links">{lis}</ul></nav>'
+
+
+def _state(job: dict[str, Any]) -> str:
+    """Why a job ended without a model, drawn apart: a failure or a cancellation."""
+    p = job["progress"]
+    if job["status"] == "cancelled":
+        done = p["trials_completed"] + p["trials_pruned"]
+        return ('<section class="card stopped" id="state"><strong>Cancelled</strong> on '
+                f"request after {done} trial{'s' if done != 1 else ''}. Cancelled jobs are "
+                "not refit, so there is no model; the finished trials stay ranked below."
+                "</section>")
+    if job["status"] == "failed" or job.get("error"):
+        return (f'<section class="card error" id="state"><strong>Failed:</strong> '
+                f"{escape(job.get('error') or 'no reason recorded')}</section>")
+    if job.get("cancel_requested"):
+        return ('<section class="card stopped" id="state">Cancellation requested: the '
+                "trials under way finish first.</section>")
+    return ""
+
+
 def render(job: dict[str, Any], board: list[dict[str, Any]], count: int,
-           model: dict[str, Any] | None, plots: list[str]) -> str:
-    """The whole page from plain dicts (``JobOut``, leaderboard rows, ``ModelOut``)."""
+           model: dict[str, Any] | None, plots: list[str], *,
+           dataset: dict[str, Any] | None = None) -> str:
+    """The whole page from plain dicts (``JobOut``, leaderboard rows, ``ModelOut``, and the
+    dataset's ``id`` and ``name``)."""
     running = job["status"] in ("queued", "running")
     refresh = f'<meta http-equiv="refresh" content="{REFRESH_SECONDS}">' if running else ""
     ev = ((model or {}).get("details") or {}).get("evaluation") or {}
@@ -281,28 +422,32 @@ def render(job: dict[str, Any], board: list[dict[str, Any]], count: int,
     if ev.get("error"):
         warnings.append(ev["error"])
     job_id = escape(job["id"])
-    error = (f'<section class="card error"><strong>Failed:</strong> {escape(job["error"])}'
-             "</section>" if job.get("error") else "")
-    live = (f"<p class='note'>This page reloads every {REFRESH_SECONDS} s while the job runs."
-            "</p>" if running else "")
+    status = escape(job["status"])
+    live = (f"<p class='note live'>This page reloads every {REFRESH_SECONDS} s while the job "
+            "runs.</p>" if running else "")
     winner = _winner(model) if model else ""
+    name = (dataset or {}).get("name")
+    shown = (f"<strong>{escape(name)}</strong> (<code>{escape(job['dataset_id'])}</code>)"
+             if name else f"<code>{escape(job['dataset_id'])}</code>")
+    model_note = (f" · model <code>{escape(model['id'])}</code>" if model else "")
+    space = (job.get("spec") or {}).get("search_space") or {}
     return f"""<!doctype html>
 <html lang="en"><head><meta charset="utf-8">
 <meta name="viewport" content="width=device-width,initial-scale=1">{refresh}
-<title>{job_id} · {escape(job['status'])} · Grovekeeper</title>
+<title>{job_id} · {status} · Grovekeeper</title>
 <style>{CSS}</style></head>
 <body><main>
-<h1>Tuning job <code>{job_id}</code><span class="status {escape(job['status'])}">
-{escape(job['status'])}</span></h1>
-<p class="sub">Predicting <strong>{escape(job['target'])}</strong> ({escape(job['task'])}),
-scored by <strong>{escape(job['metric'])}</strong> · dataset
-<code>{escape(job['dataset_id'])}</code> · <a href="../{job_id}">JSON</a> ·
-<a href="leaderboard?format=csv">leaderboard CSV</a></p>
-{live}{_facts(job)}{error}{_warnings(warnings)}
+<h1>Tuning job <code>{job_id}</code><span class="status {status}">{status}</span></h1>
+<p class="sub">Predicting <strong>{escape(job['target'])}</strong> ({escape(job['task'])})
+from dataset {shown}, scored by <strong>{escape(job['metric'])}</strong>{model_note}</p>
+{_links(job, model)}
+{live}{_facts(job)}{_state(job)}{_warnings(warnings)}
 {'<h2>Winner</h2>' + winner if winner else ''}
 {_promotion(job.get('promotion'))}
+<h2>Settings</h2>{_settings(job, dataset)}
+{_space(job, model, board)}
 <h2>Plots</h2>{_plots(plots)}{_segments(ev)}
 <h2>Leaderboard</h2><section class="card">{_leaderboard(board, count,
-    (model or {}).get('trial_number'))}</section>
+    (model or {}).get('trial_number'), space)}</section>
 </main></body></html>
 """

@@ -29,6 +29,10 @@ matplotlib.rcParams.update({"svg.fonttype": "none", "path.simplify": False,
                             "text.parse_math": False})
 
 INK, ACCENT, MUTED, WARM = "#1f2933", "#2f6f9f", "#9aa5b1", "#c8553d"
+# The search history's own palette: teal trials, a plum best-so-far line, stone-grey
+# pruned marks. They differ in lightness as well as hue, so they stay apart in print and
+# for readers who confuse reds and greens.
+HISTORY_TRIAL, HISTORY_BEST, HISTORY_PRUNED = "#0f766e", "#86198f", "#a8a29e"
 NAMES = ("history", "hyperparameters", "features", "learning", "calibration", "gains",
          "confusion", "predicted", "residuals", "segments")
 TOP_BARS = 15
@@ -69,16 +73,18 @@ def history(trials: Sequence[dict[str, Any]], *, metric: str, direction: str) ->
     if pruned:
         ax.scatter([t["number"] for t in pruned],
                    [sum(t["fold_scores"]) / len(t["fold_scores"]) for t in pruned],
-                   marker="x", s=18, color=MUTED, label="pruned (mean of folds run)",
+                   marker="x", s=18, color=HISTORY_PRUNED, label="pruned (mean of folds run)",
                    gid="pruned")
     xs = [t["number"] for t in complete]
     ys = [t["score"] for t in complete]
-    ax.scatter(xs, ys, s=22, color=ACCENT, label="complete trial", gid="trials", zorder=3)
+    ax.scatter(xs, ys, s=22, color=HISTORY_TRIAL, label="complete trial", gid="trials",
+               zorder=3)
     best, running = [], None
     for y in ys:
         running = y if running is None else pick(running, y)
         best.append(running)
-    ax.step(xs, best, where="post", color=WARM, linewidth=1.6, label="best so far", gid="best")
+    ax.step(xs, best, where="post", color=HISTORY_BEST, linewidth=1.6, label="best so far",
+            gid="best")
     ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     ax.set_xlabel("trial number")
     ax.set_ylabel(f"{metric} (mean over CV folds)")

@@ -52,6 +52,8 @@ ROUTES = [
     ("GET", "/v1/jobs/{job}/events", "read", 200),
     ("GET", "/v1/jobs/{job}/report", "read", 200),
     ("GET", "/v1/jobs/{job}/plots/history.svg", "read", 200),
+    # A POST that stores nothing: any key may mint a signed report link.
+    ("POST", "/v1/jobs/{job}/report-links", "read", 200),
     ("POST", "/v1/models/{model}/predictions", "write", 200),
     ("GET", "/v1/audit", "admin", 200),  # who changed what: admin keys only
     ("GET", "/healthz", None, 200),

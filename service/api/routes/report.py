@@ -41,6 +41,12 @@ def _load(url: str, job_id: str, *, board: bool) -> dict[str, Any]:
             out["count"] = count
         out["model"] = (model_out(repository.get_model(session, job.model_id))
                         .model_dump(mode="json") if job.model_id else None)
+        if board:
+            try:
+                out["dataset"] = {"id": job.dataset_id,
+                                  "name": repository.get_dataset(session, job.dataset_id).name}
+            except NotFound:
+                out["dataset"] = {"id": job.dataset_id, "name": None}  # deleted since
     return out
 
 
@@ -69,7 +75,8 @@ async def get_plot(job_id: str, name: PlotName, settings: SettingsDep) -> Respon
 def _report(url: str, job_id: str) -> str:
     loaded = _load(url, job_id, board=True)
     return page.render(loaded["job"], loaded["board"], loaded["count"], loaded["model"],
-                       plots.available(trials=loaded["trials"], model=loaded["model"]))
+                       plots.available(trials=loaded["trials"], model=loaded["model"]),
+                       dataset=loaded["dataset"])
 
 
 @router.get("/{job_id}/report", response_class=HTMLResponse,
