@@ -10,11 +10,14 @@ of the SQLite database and its WAL are sampled.
 
 It prints: errors (any non-2xx answer or failed request), p50/p99 latency per route in the
 first and in the last window (5 minutes, or a quarter of a shorter run), RSS and open fds
-of each process at the start (after the warm-up job) and at the end, and the database and
-WAL sizes at the start, the largest seen and at the end. Targets: zero errors, p99 drift
-(last/first) <= 1.5x, RSS growth <= 10% after warm-up, and a WAL that stays bounded (it is
-checkpointed and truncated, see service/db.py). On a shared machine the absolute numbers
-move with the neighbours' load; the ratios are what to read.
+of each process at the start (after the warm-up job), after the warm-up minutes
+(``--warmup-minutes``, default 2: caches, pools and allocator arenas fill up in them) and
+at the end, and the database and WAL sizes at the start, the largest seen and at the end;
+the machine's load average beside them. Targets: zero errors, p99 drift (last/first)
+<= 1.5x, RSS growth <= 10% after warm-up, and a WAL that stays bounded (it is checkpointed
+and truncated, see service/db.py). On a shared machine the absolute numbers move with the
+neighbours' load; the ratios are what to read. Every sample is also written as JSON
+(``--samples``) for a closer look.
 """
 
 from __future__ import annotations
@@ -95,6 +98,11 @@ def fds(pid: int) -> int:
     return len(os.listdir(f"/proc/{pid}/fd"))
 
 
+def load_average() -> float:
+    """The one-minute load average (what ``uptime`` shows first)."""
+    return float(Path("/proc/loadavg").read_text().split()[0])
+
+
 def sample(serve: int, db: Path) -> dict[str, object]:
     procs = {}
     for name, pid in pids_of(serve).items():
@@ -103,7 +111,7 @@ def sample(serve: int, db: Path) -> dict[str, object]:
         except OSError:
             continue
     wal = db.with_name(db.name + "-wal")
-    return {"t": time.monotonic(), "procs": procs,
+    return {"t": time.monotonic(), "procs": procs, "load": load_average(),
             "db": db.stat().st_size if db.exists() else 0,
             "wal": wal.stat().st_size if wal.exists() else 0}
 
@@ -154,6 +162,10 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--minutes", type=float, default=20.0)
     parser.add_argument("--readers", type=int, default=3)
+    parser.add_argument("--warmup-minutes", type=float, default=2.0,
+                        help="RSS growth is also read from this point on")
+    parser.add_argument("--samples", type=Path, default=None,
+                        help="write every sample here as JSON (default: in the run's home)")
     args = parser.parse_args(argv)
     home = Path(tempfile.mkdtemp(prefix="gk-soak-"))
     import socket
@@ -215,15 +227,32 @@ def main(argv: list[str] | None = None) -> int:
         except subprocess.TimeoutExpired:
             proc.kill()
         serve_log.close()
-    report(log, samples, start, end, args.minutes)
+    report(log, samples, start, end, args.minutes, args.warmup_minutes)
+    out = args.samples or home / "soak-samples.json"
+    rebased = [{**x, "t": float(x["t"]) - start} for x in samples]  # type: ignore[arg-type]
+    out.write_text(json.dumps(rebased))
+    print(f"samples: {out}")
     return 0 if not log.errors else 1
 
 
+def slope(points: list[tuple[float, float]]) -> float:
+    """Least-squares slope of y over x; nan with fewer than two points."""
+    if len(points) < 2:
+        return float("nan")
+    mx = sum(x for x, _ in points) / len(points)
+    my = sum(y for _, y in points) / len(points)
+    var = sum((x - mx) ** 2 for x, _ in points)
+    return sum((x - mx) * (y - my) for x, y in points) / var if var else float("nan")
+
+
 def report(log: Log, samples: list[dict[str, object]], start: float, end: float,
-           minutes: float) -> None:
+           minutes: float, warmup_minutes: float = 2.0) -> None:
     window = min(5.0, minutes / 4) * 60
+    loads = [float(x["load"]) for x in samples]  # type: ignore[arg-type]
     print(f"soak: {minutes:g} min, {len(log.calls)} requests, {len(log.errors)} errors; "
-          f"windows: first and last {window / 60:g} min")
+          f"windows: first and last {window / 60:g} min; load average (1 min) "
+          f"{loads[0]:.1f} at start, {sum(loads) / len(loads):.1f} mean, {max(loads):.1f} "
+          f"highest, {loads[-1]:.1f} at end ({os.cpu_count()} cores)")
     for line in log.errors[:10]:
         print(f"  error: {line}")
     print(f"\n{'route':<22} {'n first':>8} {'p50 first':>10} {'p99 first':>10} "
@@ -236,31 +265,50 @@ def report(log: Log, samples: list[dict[str, object]], start: float, end: float,
               f"{len(last):>7} {pct(last, .5):>8.1f}ms {pct(last, .99):>8.1f}ms "
               f"{drift:>8.2f}x")
     first_s, last_s = samples[0], samples[-1]
-    print(f"\n{'process':<10} {'RSS start':>10} {'RSS end':>10} {'growth':>8} "
-          f"{'fds start':>10} {'fds end':>8}")
+    # The first sample at or after the warm-up minutes (the last one if the run is shorter).
+    since = [float(x["t"]) - start for x in samples]  # type: ignore[arg-type]
+    warm_s = next((x for x, t in zip(samples, since, strict=True)
+                   if t >= warmup_minutes * 60), last_s)
+    warm_at = (float(warm_s["t"]) - start) / 60  # type: ignore[arg-type]
+    print(f"\n{'process':<10} {'RSS start':>10} {f'RSS {warm_at:.0f} min':>10} {'RSS end':>9} "
+          f"{'growth':>7} {'after warm-up':>13} {'MiB/min':>8} {'fds start':>10} "
+          f"{'fds end':>8}")
+    later = [(t, x) for t, x in zip(since, samples, strict=True)
+             if t >= warmup_minutes * 60]
     procs_first: dict = first_s["procs"]  # type: ignore[assignment]
+    procs_warm: dict = warm_s["procs"]  # type: ignore[assignment]
     procs_last: dict = last_s["procs"]  # type: ignore[assignment]
-    total_a = total_b = 0.0
+    total_a = total_w = total_b = 0.0
     for name in procs_first:
-        if name not in procs_last:
+        if name not in procs_last or name not in procs_warm:
             print(f"{name:<10} (gone by the end)")
             continue
         _, rss_a, fd_a = procs_first[name]
+        _, rss_w, _ = procs_warm[name]
         pid_b, rss_b, fd_b = procs_last[name]
-        total_a, total_b = total_a + rss_a, total_b + rss_b
-        print(f"{name:<10} {rss_a:>8.0f}Mi {rss_b:>8.0f}Mi {100 * (rss_b / rss_a - 1):>7.1f}% "
-              f"{fd_a:>10} {fd_b:>8}")
+        total_a, total_w, total_b = total_a + rss_a, total_w + rss_w, total_b + rss_b
+        # Least-squares slope of RSS after the warm-up: a leak keeps climbing, warm-up
+        # growth levels off.
+        series = [(t / 60, x["procs"][name][1]) for t, x in later  # type: ignore[index]
+                  if name in x["procs"]]  # type: ignore[operator]
+        print(f"{name:<10} {rss_a:>8.0f}Mi {rss_w:>8.0f}Mi {rss_b:>7.0f}Mi "
+              f"{100 * (rss_b / rss_a - 1):>6.1f}% {100 * (rss_b / rss_w - 1):>12.1f}% "
+              f"{slope(series):>8.2f} {fd_a:>10} {fd_b:>8}")
     if total_a:
-        print(f"{'all':<10} {total_a:>8.0f}Mi {total_b:>8.0f}Mi "
-              f"{100 * (total_b / total_a - 1):>7.1f}%")
+        print(f"{'all':<10} {total_a:>8.0f}Mi {total_w:>8.0f}Mi {total_b:>7.0f}Mi "
+              f"{100 * (total_b / total_a - 1):>6.1f}% {100 * (total_b / total_w - 1):>12.1f}%")
     walmax = max(int(s["wal"]) for s in samples)  # type: ignore[call-overload]
     print(f"\nSQLite db: {int(first_s['db']) / 2**20:.1f} MiB -> {int(last_s['db']) / 2**20:.1f}"  # type: ignore[call-overload]
           f" MiB; WAL: {int(first_s['wal']) / 2**20:.1f} MiB at start, "  # type: ignore[call-overload]
           f"{walmax / 2**20:.1f} MiB largest, {int(last_s['wal']) / 2**20:.1f} MiB at end")  # type: ignore[call-overload]
     if len(samples) > 2:
-        print("RSS of all processes over time (MiB): " + " ".join(
-            f"{sum(v[1] for v in s['procs'].values()):.0f}"  # type: ignore[attr-defined]
-            for s in samples[:: max(1, len(samples) // 12)]))
+        step = max(1, len(samples) // 12)
+        print("minute:              " + " ".join(f"{t / 60:>5.1f}" for t in since[::step]))
+        print("RSS, all (MiB):      " + " ".join(
+            f"{sum(v[1] for v in x['procs'].values()):>5.0f}"  # type: ignore[attr-defined]
+            for x in samples[::step]))
+        print("load average:        " + " ".join(
+            f"{float(x['load']):>5.1f}" for x in samples[::step]))  # type: ignore[arg-type]
 
 
 if __name__ == "__main__":

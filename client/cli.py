@@ -1,8 +1,9 @@
 """Client commands of ``grovekeeper``, against a running server.
 
 ``upload``, ``datasets``, ``tune``, ``watch``, ``status``, ``cancel``, ``jobs``,
-``board``, ``model``, ``predict``, ``report``. The server comes from ``--url`` or GROVEKEEPER_URL,
-the key from ``--api-key`` or GROVEKEEPER_API_KEY (client/settings.py).
+``board``, ``model``, ``predict``, ``report``, ``delete``. The server comes from
+``--url`` or GROVEKEEPER_URL, the key from ``--api-key`` or GROVEKEEPER_API_KEY
+(client/settings.py).
 Every failure leaves with a documented exit code and one line on stderr.
 """
 
@@ -28,6 +29,8 @@ Command = Callable[[argparse.Namespace], int]
 def cmd_model(args: argparse.Namespace) -> int:
     with Api(args.url, args.api_key, timeout=args.timeout) as api:
         model = api.get(f"/v1/models/{args.model_id}")
+        job = api.get(f"/v1/jobs/{model['job_id']}")
+        jobs.warn(data=job.get("warnings"), winner=jobs.winner_warnings(model))
         if args.save_model:
             _save(api, f"/v1/models/{args.model_id}/file", args.save_model)
         if args.save_bundle:
@@ -79,8 +82,13 @@ def cmd_predict(args: argparse.Namespace) -> int:
             raise ClientError(client.USAGE, f"no such file: {source}")
         body = source.read_bytes()
     with Api(args.url, args.api_key, timeout=args.timeout) as api:
+        params: dict[str, str] = {"unseen": args.unseen}
+        if args.explain:
+            params["explain"] = "true"
+        if args.keep:
+            params["keep"] = ",".join(args.keep)
         response = api.request("POST", f"/v1/models/{args.model_id}/predictions",
-                               content=body, params={"unseen": args.unseen},
+                               content=body, params=params,
                                headers={"Content-Type": "text/csv", "Accept": "text/csv"})
     if response.headers.get("x-ignored-columns"):
         names = [unquote(n) for n in response.headers["x-ignored-columns"].split(",")]
@@ -240,8 +248,8 @@ def register(sub: Any) -> None:
                    help="predictions never fall (1) or never rise (-1) as the column grows "
                         "(repeatable)")
     p.add_argument("--interaction", action="append", type=_group, metavar="COL,COL,...",
-                   help="a group of columns trees may combine; every tree stays within one "
-                        "group (repeatable)")
+                   help="a group of columns one tree may split on together; every tree "
+                        "stays within one group (repeatable)")
     p.add_argument("--fixed", action="append", type=_fixed, metavar="PARAMETER=VALUE",
                    help="hold a LightGBM parameter for every trial, e.g. max_bin=63 or "
                         "is_unbalance=true (repeatable; README lists what is refused)")
@@ -257,6 +265,10 @@ def register(sub: Any) -> None:
                         "exit 1 unless it succeeded")
     p.add_argument("--interval", type=_positive(float), default=0.5,
                    help="seconds between progress checks with --wait (default 0.5)")
+    p.add_argument("--print", choices=["job", "model"], default="job",
+                   help="which id goes to stdout: the job's (default) or, with --wait, the "
+                        "winning model's, so MODEL=$(grovekeeper tune ... --wait --print "
+                        "model) needs no parsing")
 
     p = add("watch", jobs.cmd_watch, "follow a job's progress until it ends; prints its "
             "final status", ("status", "json"))
@@ -304,3 +316,15 @@ def register(sub: Any) -> None:
     p.add_argument("--unseen", choices=["error", "missing"], default="error",
                    help="categories not seen in training: refuse (default) or treat as "
                         "missing")
+    p.add_argument("--explain", action="store_true",
+                   help="add each row's TreeSHAP contributions (a bias column, then one "
+                        "column per model input)")
+    p.add_argument("--keep", type=_group, metavar="COL,COL,...",
+                   help="columns of the input to repeat, exactly as sent, before the "
+                        "predictions (e.g. your row ids)")
+
+    p = add("delete", jobs.cmd_delete, "delete a dataset (refused while a queued or running "
+            "job uses it) or a model (refused while a channel serves it); needs an admin key",
+            ("text",))
+    p.add_argument("kind", choices=sorted(jobs.DELETABLE))
+    p.add_argument("id", help="the dataset's or model's id")

@@ -31,6 +31,23 @@ def _note(text: str) -> None:
     print(text, file=sys.stderr)
 
 
+def winner_warnings(model: dict[str, Any]) -> list[str]:
+    """What the evaluation of the winner flagged (optimism gap, overfitting, ...)."""
+    evaluation = (model.get("details") or {}).get("evaluation") or {}
+    found = list(evaluation.get("warnings") or [])
+    if evaluation.get("error"):
+        found.append(f"the evaluation failed: {evaluation['error']}")
+    return found
+
+
+def warn(data: list[str] | None = None, winner: list[str] | None = None) -> None:
+    """Warnings go to stderr, so stdout stays what a script reads."""
+    for message in data or ():
+        _note(f"warning (data): {message}")
+    for message in winner or ():
+        _note(f"warning (winner): {message}")
+
+
 # -- datasets --------------------------------------------------------------------
 
 
@@ -105,14 +122,26 @@ def _job_request(args: argparse.Namespace) -> dict[str, Any]:
 
 
 def cmd_tune(args: argparse.Namespace) -> int:
+    printing = getattr(args, "print", "job")
+    if printing == "model" and not args.wait:
+        raise ClientError(client.USAGE, "--print model needs --wait: the model exists only "
+                                        "once the job has succeeded")
     with _api(args) as api:
         job = api.post("/v1/jobs", json=_job_request(args))
         _note(f"queued {job['id']}: {job['task']} on {job['target']!r}, "
               f"metric {job['metric']}")
+        warn(data=job.get("warnings"))
         if not args.wait:
             _emit(job) if args.format == "json" else print(job["id"])
             return client.OK
         job = _follow(api, job["id"], args.interval)
+        model = api.get(f"/v1/models/{job['model_id']}") if job.get("model_id") else None
+    if model is not None:
+        warn(winner=winner_warnings(model))
+    if printing == "model":
+        code = _final(job)  # raises for a job without a model: nothing on stdout
+        _emit(model) if args.format == "json" else print(job["model_id"])
+        return code
     _emit(job) if args.format == "json" else print(job["id"])
     return _final(job)
 
@@ -153,6 +182,8 @@ def _final(job: dict[str, Any]) -> int:
 def cmd_status(args: argparse.Namespace) -> int:
     with _api(args) as api:
         job = api.get(f"/v1/jobs/{args.job_id}")
+        model = api.get(f"/v1/models/{job['model_id']}") if job.get("model_id") else None
+    warn(data=job.get("warnings"), winner=winner_warnings(model) if model else None)
     if args.format == "json":
         _emit(job)
         return client.OK
@@ -215,4 +246,17 @@ def cmd_board(args: argparse.Namespace) -> int:
              *(r["params"].get(n) for n in names)] for r in board["data"]]
     sys.stdout.write(table(header, rows))
     _note(f"{board['count']} finished trials, {board['direction']} {board['metric']}")
+    return client.OK
+
+
+# -- deleting --------------------------------------------------------------------
+
+#: What the API deletes (DELETE routes; admin keys): the command's word → its path.
+DELETABLE = {"dataset": "/v1/datasets", "model": "/v1/models"}
+
+
+def cmd_delete(args: argparse.Namespace) -> int:
+    with _api(args) as api:
+        api.request("DELETE", f"{DELETABLE[args.kind]}/{args.id}")
+    _note(f"deleted {args.kind} {args.id}")
     return client.OK

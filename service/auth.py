@@ -16,6 +16,7 @@ from datetime import datetime, timedelta
 
 import sqlalchemy as sa
 
+from service import audit
 from service.db import session_scope
 from service.errors import Forbidden, Unauthorized
 from service.repository import new_id
@@ -183,6 +184,7 @@ class KeyChecker:
             self._used[key_id] = now
         stamp = utcnow()
         with session_scope(self.url) as session:
+            session.info[audit.EXEMPT] = True  # bookkeeping, not the request's change
             session.execute(sa.update(ApiKey).where(
                 ApiKey.id == key_id,
                 sa.or_(ApiKey.last_used_at.is_(None),

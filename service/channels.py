@@ -1,5 +1,6 @@
 """Channels: stable names callers predict through. Moving one checks that callers of the
-current model can call the new one unchanged; every move is recorded."""
+current model can call the new one unchanged; every move is recorded, as a channel event
+and as an audit row (which key, from and to which model), in the move's transaction."""
 
 from __future__ import annotations
 
@@ -9,7 +10,7 @@ from typing import Any
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from service import repository
+from service import audit, repository
 from service.db import session_scope
 from service.errors import Conflict, NotFound, Unprocessable
 from service.tables import Channel, Model
@@ -83,8 +84,13 @@ def _switch(session: Session, name: str, model_id: str, *, force: bool, action: 
         return channel
     if channel is not None and not force:
         _refuse(repository.get_model(session, channel.model_id), new)
+    channel_was = None if channel is None else channel.model_id
+    if key_id is None and job_id is not None:
+        key_id = audit.key_of_job(session, job_id)  # a promotion: the key that asked for it
     moved = repository.move_channel(session, channel=channel, name=name, model_id=model_id,
                                     action=action, forced=force, key_id=key_id, job_id=job_id)
+    _audit(session, name, previous=channel_was,
+           model_id=model_id, action=action, forced=force, key_id=key_id, job_id=job_id)
     session.commit()
     session.refresh(moved)
     session.expunge(moved)
@@ -98,10 +104,24 @@ def rollback(url: str, name: str, *, key_id: str | None = None) -> Channel:
         last = repository.last_channel_event(session, name=name)
         if last is None or last.previous_model_id is None:
             raise Conflict(f"channel {name!r} has had only one model; nothing to roll back to")
+        previous = channel.model_id
         moved = repository.move_channel(session, channel=channel, name=name,
                                         model_id=last.previous_model_id, action="rollback",
                                         key_id=key_id)
+        _audit(session, name, previous=previous, model_id=moved.model_id, action="rollback",
+               forced=False, key_id=key_id, job_id=None)
         session.commit()
         session.refresh(moved)
         session.expunge(moved)
         return moved
+
+
+def _audit(session: Session, name: str, *, previous: str | None, model_id: str, action: str,
+           forced: bool, key_id: str | None, job_id: str | None) -> None:
+    detail: dict[str, Any] = {"from": previous, "to": model_id}
+    if forced:
+        detail["forced"] = True
+    if job_id is not None:
+        detail["job_id"] = job_id
+    audit.record(session, action=f"channel.{action}", target=name, key_id=key_id,
+                 detail=detail)

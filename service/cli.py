@@ -182,7 +182,8 @@ def cmd_worker(args: argparse.Namespace) -> int:
 def cmd_demo(args: argparse.Namespace) -> int:
     from service.demo import run_demo
 
-    return run_demo(trials=args.trials, keep=args.keep)
+    return run_demo(trials=args.trials, keep=args.keep, log=args.log,
+                    with_key=args.with_key, serve=args.serve)
 
 
 def cmd_migrate(args: argparse.Namespace) -> int:
@@ -333,6 +334,15 @@ def build_parser() -> argparse.ArgumentParser:
     demo = sub.add_parser("demo", help="tune the demo tables end to end in a temporary home")
     demo.add_argument("--trials", type=int, default=30, help="trial budget per job")
     demo.add_argument("--keep", action="store_true", help="keep the temporary home")
+    demo.add_argument("--log", type=Path, metavar="PATH",
+                      help="where the server's and workers' log lines go (default: "
+                           "grovekeeper-demo-TIME.log in the temporary directory)")
+    demo.add_argument("--with-key", action="store_true",
+                      help="give the demo server an API key, as a shared server has; the "
+                           "report pages are then signed links")
+    demo.add_argument("--serve", action="store_true",
+                      help="keep the server running after the demo (Ctrl-C stops it) so "
+                           "the report pages can be opened")
     demo.set_defaults(func=cmd_demo)
 
     migrate = sub.add_parser("migrate", help="create or upgrade the database schema")

@@ -18,11 +18,14 @@ raises the job's ``epoch`` and hands it to the claimer. A lead's heartbeat, stat
 trial copies and model go through only while the job still carries its epoch, so a lead
 cut off long enough to be replaced cannot write over its successor when it comes back; it
 learns that it lost the job and abandons it. A joiner's token is its participant row:
-once swept as stale, its writes are refused too.
+once swept as stale, its writes are refused too. The same checks guard the trials' own
+record, the Optuna journal (``journal_fence``): a stale worker can neither start a trial
+nor report one there.
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable, Collection
 from datetime import datetime, timedelta
 
 import sqlalchemy as sa
@@ -78,7 +81,8 @@ def _held(job_id: str, worker_id: str, epoch: int | None) -> sa.ColumnElement[bo
     return held if epoch is None else sa.and_(held, Job.epoch == epoch)
 
 
-def holds(session: Session, *, job_id: str, worker_id: str, epoch: int | None) -> bool:
+def holds(session: Session | sa.Connection, *, job_id: str, worker_id: str,
+          epoch: int | None) -> bool:
     """Whether the claim still stands; locks the job row (PostgreSQL) until commit, so
     the write that follows in the same transaction cannot race a new claim."""
     row = session.execute(sa.select(Job.id).where(_held(job_id, worker_id, epoch))
@@ -86,11 +90,25 @@ def holds(session: Session, *, job_id: str, worker_id: str, epoch: int | None) -
     return row is not None
 
 
-def is_participant(session: Session, *, job_id: str, worker_id: str) -> bool:
+def is_participant(session: Session | sa.Connection, *, job_id: str, worker_id: str) -> bool:
     """A joiner's claim: its row in ``gk_job_workers`` (swept when its heartbeat is stale)."""
-    session.get(Job, job_id, with_for_update={"key_share": True})
+    session.execute(sa.select(Job.id).where(Job.id == job_id)
+                    .with_for_update(key_share=True))
     return session.execute(sa.select(JobWorker.worker_id).where(
         JobWorker.job_id == job_id, JobWorker.worker_id == worker_id)).first() is not None
+
+
+def journal_fence(*, job_id: str, worker_id: str, epoch: int | None = None,
+                  lead: bool = True) -> Callable[[sa.Connection], bool]:
+    """The check every write of this worker to the job's trial journal runs in its own
+    transaction (``tuner.journal.Fence``): the lead's claim under ``epoch``, or the
+    joiner's participant row."""
+    def still_holds(conn: sa.Connection) -> bool:
+        if lead:
+            return holds(conn, job_id=job_id, worker_id=worker_id, epoch=epoch)
+        return is_participant(conn, job_id=job_id, worker_id=worker_id)
+
+    return still_holds
 
 
 def _add_participant(session: Session, *, job_id: str, worker_id: str, now: datetime) -> None:
@@ -107,21 +125,24 @@ def _participants(job_id: object) -> sa.ScalarSelect[int]:
             .where(JobWorker.job_id == job_id).scalar_subquery())
 
 
-def join_next(session: Session, *, worker_id: str) -> str | None:
+def join_next(session: Session, *, worker_id: str, skip: Collection[str] = ()) -> str | None:
     """Join a running job that has room for another worker; None when there is none.
 
     Queued jobs go first (``claim_next``): a waiting job gets a worker before a running
     one gets an extra. The job row is locked (PostgreSQL, SKIP LOCKED) while the
     participants are counted, and the insert itself re-checks the count in the same
     statement (one write transaction on SQLite), so ``max_workers`` is never exceeded.
+    ``skip``: jobs this worker joined lately and found nothing to run in.
     """
     now = utcnow()
+    where = [Job.status == RUNNING, Job.joinable.is_(True), Job.max_workers > 1,
+             Job.cancel_requested.is_(False), Job.max_workers > _participants(Job.id),
+             ~sa.exists().where(JobWorker.job_id == Job.id, JobWorker.worker_id == worker_id)]
+    if skip:
+        where.append(Job.id.not_in(list(skip)))
     candidate = session.execute(
         sa.select(Job.id, Job.max_workers)
-        .where(Job.status == RUNNING, Job.joinable.is_(True), Job.max_workers > 1,
-               Job.cancel_requested.is_(False), Job.max_workers > _participants(Job.id),
-               ~sa.exists().where(JobWorker.job_id == Job.id,
-                                  JobWorker.worker_id == worker_id))
+        .where(*where)
         .order_by(Job.priority.desc(), Job.created_at, Job.id)
         .limit(1)
         .with_for_update(skip_locked=True)
@@ -150,6 +171,13 @@ def leave(session: Session, *, job_id: str, worker_id: str) -> None:
 def participants(session: Session, *, job_id: str) -> list[str]:
     return list(session.scalars(sa.select(JobWorker.worker_id).where(JobWorker.job_id == job_id)
                                 .order_by(JobWorker.joined_at)))
+
+
+def close_joining(session: Session, *, job_id: str) -> None:
+    """Close a running job to further joiners (any participant may: its budget is all
+    handed out). Its lead opens it again if a new lead takes over with work left."""
+    session.execute(sa.update(Job).where(Job.id == job_id, Job.status == RUNNING)
+                    .values(joinable=False).execution_options(synchronize_session=False))
 
 
 def set_joinable(session: Session, *, job_id: str, worker_id: str,

@@ -293,6 +293,9 @@ class AuditEntry(Base):
     method: Mapped[str | None] = mapped_column(sa.String(8))
     path: Mapped[str | None] = mapped_column(sa.String(300))
     status: Mapped[int | None]
+    # What changed, where the action and target do not say it: a channel move's
+    # {"from": model, "to": model, "forced": ..., "job_id": ...}.
+    detail: Mapped[dict[str, Any] | None] = mapped_column(sa.JSON)
 
 
 class ServerSecret(Base):

@@ -34,6 +34,7 @@ _EXPORTS: dict[str, tuple[str, str]] = {
     "FeatureSchema": ("tuner.schema", "FeatureSchema"),
     "FeatureSpec": ("tuner.schema", "FeatureSpec"),
     "FittedModel": ("tuner.model", "FittedModel"),
+    "JournalFenced": ("tuner.journal", "JournalFenced"),
     "Fixed": ("tuner.space", "Fixed"),
     "KINDS": ("vocabulary", "COLUMN_KINDS"),
     "LIGHTGBM_DEFAULTS": ("tuner.space", "LIGHTGBM_DEFAULTS"),
@@ -112,6 +113,7 @@ if TYPE_CHECKING:  # the same names, for type checkers
     from tuner.evaluation.gain import gain_over_defaults
     from tuner.fidelity import REDUCTION, fidelity_rungs
     from tuner.io.read import read_table
+    from tuner.journal import JournalFenced
     from tuner.metrics import (
         METRICS,
         Metric,

@@ -25,6 +25,13 @@ appends and the stale-trial check wait and try again with growing pauses for up 
 once it is back. An append whose commit may have landed before the connection broke is
 looked up by its nonce (``_n``, a key Optuna's replay ignores) before it is tried again,
 so a retry never writes an operation twice.
+
+Fencing: a backend may be given a *fence*, a check run inside each append's write
+transaction before its rows go in (the service passes one that asks whether the worker
+still holds the job under its claim's epoch). When the fence says no, nothing is written
+and :class:`JournalFenced` is raised: a writer cut off long enough to be replaced cannot
+add trials, parameters or results to a study that is now someone else's. The tuner knows
+nothing of jobs or workers; the fence is only a callable over the transaction's connection.
 """
 
 from __future__ import annotations
@@ -79,6 +86,17 @@ POSTGRES_CONNECT_ARGS: dict[str, Any] = {
 RECONNECT_SECONDS = 300.0
 
 log = logging.getLogger("tuner.journal")
+
+#: Run inside an append's write transaction, with its connection, before the rows are
+#: written; False refuses the append (see the module docstring). It may lock rows: they
+#: stay locked until the append commits, so the check and the write cannot be split by a
+#: competing claim.
+Fence = Callable[[sa.Connection], bool]
+
+
+class JournalFenced(RuntimeError):
+    """An append to a study's journal was refused by its fence: this writer no longer
+    holds the study. Nothing of the refused operations was written."""
 
 _engines: dict[tuple[str, bool], Engine] = {}
 _lock = threading.Lock()
@@ -219,9 +237,10 @@ class SQLJournalBackend(BaseJournalBackend):
     for are the ones just written, and they are handed back without a query.
     """
 
-    def __init__(self, url: str, study: str) -> None:
+    def __init__(self, url: str, study: str, fence: Fence | None = None) -> None:
         self.url = url
         self.study = study
+        self._fence = fence
         self._last: tuple[int, list[str]] | None = None  # (first seq, bodies) just written
         reader, writer = engine(url), engine(url, writer=True)
         self._read_sql, self._append_sql = _sql(_READ, reader), _sql(_APPEND, writer)
@@ -262,6 +281,11 @@ class SQLJournalBackend(BaseJournalBackend):
             try:
                 seqs = self._append(bodies)
                 break
+            except JournalFenced:
+                log.warning("study %s: journal append refused by its fence (this process no "
+                            "longer holds the study); %d operation(s) dropped: %s",
+                            self.study, len(logs), _op_names(logs))
+                raise
             except Exception as exc:
                 if not is_transient(exc) or time.monotonic() + pause > deadline:
                     raise
@@ -300,6 +324,8 @@ class SQLJournalBackend(BaseJournalBackend):
         return None if row is None else list(range(row[0], row[0] + len(bodies)))
 
     def _append(self, bodies: list[str]) -> list[int]:
+        if self._fence is not None:
+            return self._append_fenced(bodies, self._fence)
         made = engine(self.url, writer=True)
         conflict = made.dialect.loaded_dbapi.IntegrityError
         for _ in range(_APPEND_ATTEMPTS):
@@ -329,6 +355,56 @@ class SQLJournalBackend(BaseJournalBackend):
             return seqs
         raise RuntimeError(f"could not append to the journal of study '{self.study}'")
 
+    def _append_fenced(self, bodies: list[str], fence: Fence) -> list[int]:
+        """``_append`` with the fence checked first in the same transaction. Through a
+        SQLAlchemy connection, so the fence can use Core statements; the rows still go
+        through the driver's cursor (see ``_APPEND``)."""
+        made = engine(self.url, writer=True)
+        conflict = made.dialect.loaded_dbapi.IntegrityError
+        for _ in range(_APPEND_ATTEMPTS):
+            conn = made.connect()
+            try:
+                trans = conn.begin()  # SQLite: BEGIN IMMEDIATE (the writer engine's event)
+                if not fence(conn):
+                    trans.rollback()
+                    raise JournalFenced(f"study '{self.study}': append refused by its fence")
+                cursor = conn.connection.cursor()
+                seqs = []
+                for body in bodies:
+                    cursor.execute(self._append_sql, (self.study, body, self.study))
+                    seqs.append(cursor.fetchone()[0])
+                cursor.close()
+                trans.commit()
+            except conflict:
+                conn.rollback()
+                continue  # another process took that number first: take the next one
+            except BaseException as exc:
+                if isinstance(exc, Exception) and is_transient(exc):
+                    if not conn.invalidated:
+                        conn.invalidate()
+                elif conn.in_transaction():
+                    conn.rollback()
+                raise
+            finally:
+                conn.close()
+            return seqs
+        raise RuntimeError(f"could not append to the journal of study '{self.study}'")
+
+
+def _op_names(logs: list[dict[str, Any]]) -> str:
+    """Optuna's operation codes of ``logs`` as words, for the refusal's log line."""
+    try:  # a private module of Optuna's: numbers will do if it moves
+        from optuna.storages.journal._storage import JournalOperation
+    except ImportError:
+        return ", ".join(str(entry.get("op_code")) for entry in logs)
+    names = []
+    for entry in logs:
+        try:
+            names.append(JournalOperation(entry.get("op_code")).name.lower())
+        except ValueError:
+            names.append(str(entry.get("op_code")))
+    return ", ".join(names)
+
 
 def _discard_if_lost(conn: Any, exc: BaseException) -> bool:
     """Invalidate a pooled connection that ``exc`` shows to be lost, so the pool neither
@@ -343,13 +419,13 @@ class TrialJournal(JournalStorage, BaseHeartbeat):
     """Optuna storage for one study, in the journal tables, with optional heartbeats."""
 
     def __init__(self, url: str, study: str, *, heartbeat_seconds: int | None = None,
-                 grace_seconds: int | None = None) -> None:
+                 grace_seconds: int | None = None, fence: Fence | None = None) -> None:
         self.url = url
         self.study = study
         self._interval = heartbeat_seconds
         self._grace = grace_seconds or (2 * heartbeat_seconds if heartbeat_seconds else None)
         create_tables(url)
-        super().__init__(SQLJournalBackend(url, study))
+        super().__init__(SQLJournalBackend(url, study, fence))
 
     # -- BaseHeartbeat -------------------------------------------------------------
 

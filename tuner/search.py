@@ -13,6 +13,7 @@ from tuner.config import SearchConfig, check_config
 from tuner.dataset import PreparedData
 from tuner.errors import TunerError
 from tuner.fidelity import fidelity_rungs
+from tuner.journal import Fence
 from tuner.metrics import get_metric
 from tuner.objective import CVObjective, checkpoints, fold_steps, pruner_step
 from tuner.portfolio import portfolio_params
@@ -23,6 +24,9 @@ from tuner.trials import SearchResult, TrialRecord, record_from_frozen, summaris
 from tuner.validation import ValidationPlan
 
 _BUDGET_STATES = (TrialState.COMPLETE, TrialState.PRUNED)
+# Trials that hold a share of the budget: finished ones and those running now. A failed
+# trial gives its share back (it is replaced by a new draw).
+_TAKEN_STATES = (TrialState.RUNNING, *_BUDGET_STATES)
 # Failures that stop a search, at least: an error in every trial is not worth repeating.
 _MIN_FAILURE_CAP = 5
 
@@ -41,6 +45,8 @@ def run_search(
     join: bool = False,
     seed_salt: int = 0,
     on_started: Callable[[], None] | None = None,
+    on_budget_taken: Callable[[], None] | None = None,
+    fence: Fence | None = None,
 ) -> SearchResult:
     """Run (or resume, or join) a search until its budget, timeout or a stop request.
 
@@ -81,6 +87,11 @@ def run_search(
         seed_salt: See :func:`open_study`; give each process on one study its own.
         on_started: Called once, when this process starts its first trial (by then an
             enqueued trial 0 has been taken, so other processes may join safely).
+        on_budget_taken: Called once, when this process starts a trial that takes the
+            last share of ``n_trials`` (running, complete and pruned trials of the study
+            reach it): a process joining after that would find nothing to run.
+        fence: Checked in every write to the study's journal (see :mod:`tuner.journal`);
+            a refusal ends the search with :class:`tuner.journal.JournalFenced`.
 
     Returns:
         Counts for the whole study, its best complete trial and the trial the selection
@@ -107,6 +118,7 @@ def run_search(
         portfolio=tuple(portfolio_params(config.space, n_train_rows=rows)
                         if config.portfolio else ()),
         heartbeat_seconds=heartbeat_seconds, grace_seconds=grace_seconds, seed_salt=seed_salt,
+        fence=fence,
     )
     if heartbeat_seconds is None and not join:
         fail_running(study)
@@ -125,13 +137,19 @@ def run_search(
         early_stopping_rounds=config.early_stopping_rounds, should_stop=should_stop,
         rungs=rungs, full_fidelity=enqueued, subsample_seed=config.seed,
     )
-    started = False
+    started = taken = False
 
     def objective(trial: optuna.Trial) -> float:
-        nonlocal started
+        nonlocal started, taken
         if not started and on_started is not None:
             on_started()
         started = True
+        if not taken and on_budget_taken is not None and config.n_trials is not None:
+            # This trial is RUNNING already, so it counts itself. Parallel threads may
+            # both see the last share taken: the callback must bear a second call.
+            if len(study.get_trials(deepcopy=False, states=_TAKEN_STATES)) >= config.n_trials:
+                taken = True
+                on_budget_taken()
         return cv_objective(trial)
 
     done = len(study.get_trials(deepcopy=False, states=_BUDGET_STATES))

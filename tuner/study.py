@@ -12,7 +12,7 @@ import optuna
 from optuna.trial import TrialState
 
 from tuner.config import make_pruner
-from tuner.journal import TrialJournal, create_tables, import_rdb_study, rdb_has_study
+from tuner.journal import Fence, TrialJournal, create_tables, import_rdb_study, rdb_has_study
 from tuner.space import LIGHTGBM_DEFAULTS
 from tuner.trials import SearchResult, TrialRecord, record_from_frozen, summarise_study
 
@@ -21,14 +21,14 @@ optuna.logging.set_verbosity(optuna.logging.WARNING)
 
 
 def _storage(storage_url: str, study_name: str, heartbeat_seconds: int | None = None,
-             grace_seconds: int | None = None) -> TrialJournal:
+             grace_seconds: int | None = None, fence: Fence | None = None) -> TrialJournal:
     # Optuna's trial heartbeat (works with optimize()): a trial whose process stopped
     # beating for grace_seconds is failed by the next trial any process starts.
     # No stale-trial callback: a retry would enqueue a WAITING copy, and a configuration
     # that got its worker killed (out of memory) would kill the next one. Only finished
     # trials count against the budget, so a failed one is simply replaced by a new draw.
     return TrialJournal(storage_url, study_name, heartbeat_seconds=heartbeat_seconds,
-                        grace_seconds=grace_seconds)
+                        grace_seconds=grace_seconds, fence=fence)
 
 
 def init_storage(storage_url: str) -> None:
@@ -40,9 +40,11 @@ def init_storage(storage_url: str) -> None:
     create_tables(storage_url)
 
 
-def load_study(storage_url: str, study_name: str) -> optuna.Study:
-    """Open an existing study for reading (``KeyError`` if there is none)."""
-    return optuna.load_study(study_name=study_name, storage=_storage(storage_url, study_name))
+def load_study(storage_url: str, study_name: str, *, fence: Fence | None = None) -> optuna.Study:
+    """Open an existing study (``KeyError`` if there is none); its writes go through
+    ``fence`` when one is given (:class:`tuner.journal.JournalFenced` when refused)."""
+    return optuna.load_study(study_name=study_name,
+                             storage=_storage(storage_url, study_name, fence=fence))
 
 
 def _count_trials(storage: TrialJournal, study_name: str) -> int:
@@ -70,6 +72,7 @@ def open_study(
     heartbeat_seconds: int | None = None,
     grace_seconds: int | None = None,
     seed_salt: int = 0,
+    fence: Fence | None = None,
 ) -> optuna.Study:
     """Open a study with the tuner's sampler and pruner.
 
@@ -95,6 +98,8 @@ def open_study(
         grace_seconds: Seconds without a heartbeat after which a running trial is failed.
         seed_salt: Mixed into the sampler seed, so that several processes sampling one
             study at once do not draw the same configurations (0 for a single process).
+        fence: Checked in every write to the study's journal; a refusal raises
+            :class:`tuner.journal.JournalFenced` and writes nothing (see that module).
 
     Returns:
         The study.
@@ -102,7 +107,7 @@ def open_study(
     Raises:
         KeyError: ``create`` is false and the study does not exist.
     """
-    storage = _storage(storage_url, study_name, heartbeat_seconds, grace_seconds)
+    storage = _storage(storage_url, study_name, heartbeat_seconds, grace_seconds, fence)
     existing = _count_trials(storage, study_name)
     if create and existing == 0 and rdb_has_study(storage_url, study_name):
         import_rdb_study(storage_url, study_name, storage)
@@ -141,14 +146,15 @@ def fail_running(study: optuna.Study) -> None:
 
 
 def close_search(storage_url: str, study_name: str, *, direction: str,
-                 selection: str = "best") -> SearchResult:
+                 selection: str = "best", fence: Fence | None = None) -> SearchResult:
     """Fail trials still RUNNING and return the study's final counts and chosen trial.
 
     Call it once no process is running trials of the study any more (the service's lead
     worker does, after its joiners left): whatever is still RUNNING belongs to a process
-    that died before its heartbeat went stale.
+    that died before its heartbeat went stale. ``fence`` guards those writes, as in
+    :func:`open_study`.
     """
-    study = load_study(storage_url, study_name)
+    study = load_study(storage_url, study_name, fence=fence)
     fail_running(study)
     return summarise_study(study, direction, selection)
 

@@ -5,9 +5,14 @@ An ASGI wrapper rather than a call in each route: every route that changes somet
 change nothing) is covered, including routes added later. The action is named from the
 path (``dataset.upload``, ``job.create``, ``job.cancel``, ``dataset.delete``,
 ``channel.set``, ``channel.rollback``, ...); the target is the id in the path, or the id
-of what was created, read from the answer. The row is written after the answer, in a
-worker thread; a failure to write it is logged, never turned into an error for a change
-that already happened.
+of what was created.
+
+The change is named before the route runs (``service.audit.Pending``), and its row goes
+into the transaction that commits the change (the session events in ``service/audit.py``),
+so a change never lands without its row. After the answer, the row gets the answer's
+status. A successful change whose transaction the events did not see (nothing went
+through a session) is recorded after the answer instead, as a fallback; a failure to
+write that is logged, never turned into an error for a change that already happened.
 """
 
 from __future__ import annotations
@@ -61,6 +66,9 @@ class AuditTrail:
             await self.app(scope, receive, send)
             return
         state = scope.setdefault("state", {})  # shared with request.state downstream
+        action, target = named
+        pending = audit.Pending(action=action, target=target, method=scope["method"],
+                                path=scope["path"], state=state)
         status = 0
         body = bytearray()
 
@@ -73,19 +81,30 @@ class AuditTrail:
                     body.extend(message.get("body", b"")[:_BODY_LIMIT])
             await send(message)
 
-        await self.app(scope, receive, watch)
-        if not 200 <= status < 300:
-            return
-        action, target = named
-        if target is None or action.endswith(".create") and target is not None:
-            created = _created_id(bytes(body))
-            if created and target is None:
-                target = created
-            elif created:
-                target = f"{target}:{created}"
-        key_id = state.get("key_id") if isinstance(state, dict) else None
-        await anyio.to_thread.run_sync(self._write, action, target, key_id, scope["method"],
-                                       scope["path"], status)
+        token = audit.begin(pending)
+        try:
+            await self.app(scope, receive, watch)
+        finally:
+            audit.end(token)
+        created = _created_id(bytes(body)) if 200 <= status < 300 else None
+        if pending.entry_id is not None:
+            await anyio.to_thread.run_sync(self._finish, pending, status, created)
+        elif 200 <= status < 300:
+            if target is None or action.endswith(".create") and target is not None:
+                if created and target is None:
+                    target = created
+                elif created:
+                    target = f"{target}:{created}"
+            await anyio.to_thread.run_sync(self._write, action, target, pending.key_id,
+                                           scope["method"], scope["path"], status)
+
+    def _finish(self, pending: audit.Pending, status: int, created: str | None) -> None:
+        try:
+            with session_scope(self.url) as session:
+                audit.finish(session, pending, status=status, created=created)
+        except Exception:  # noqa: BLE001 - the row is there; only its status is missing
+            log.exception("could not record the status of %s %s in the audit trail",
+                          pending.method, pending.path)
 
     def _write(self, action: str, target: str | None, key_id: str | None, method: str,
                path: str, status: int) -> None:

@@ -173,8 +173,9 @@ EXAMPLES: dict[tuple[str, str], dict[str, Any]] = {
     ("delete", "/v1/models/{model_id}"): {"responses": {}},
     ("get", "/v1/audit"): {"responses": {"200": {JSON: {
         "items": [{"id": 41, "at": "2026-04-02T08:00:00Z", "key_id": "key_5a5a5a5a5a5a5a5a",
-                   "action": "PUT /v1/channels/{name}", "target": "kilns", "method": "PUT",
-                   "path": "/v1/channels/kilns", "status": 200}],
+                   "action": "channel.set", "target": "kilns", "method": "PUT",
+                   "path": "/v1/channels/kilns", "status": 200,
+                   "detail": {"from": "mdl_1c1c1c1c1c1c1c1c", "to": MODEL["id"]}}],
         "total": 1, "next": None}}}},
     ("get", "/v1/models/{model_id}/drift"): {"responses": {"200": {JSON: {
         "model_id": MODEL["id"], "rows": 5000, "training_rows": 960,

@@ -322,6 +322,8 @@ class AuditOut(BaseModel):
     method: str | None
     path: str | None
     status: int | None
+    #: A channel move's models: {"from", "to"} (and "forced", "job_id" when they apply).
+    detail: dict[str, Any] | None = None
 
 
 class AuditPage(BaseModel):

@@ -74,7 +74,8 @@ a{color:var(--accent)}
 @media print{
 @page{margin:14mm}
 body{background:#fff;font-size:11pt}main{max-width:none;padding:0}
-.card{border:none;border-radius:0;padding:0 0 8px;margin-bottom:10px;break-inside:avoid}
+.card{border:none;border-radius:0;padding:0 0 8px;margin-bottom:10px}
+#settings,.warnings,#state{break-inside:avoid}
 .live,.bar,#links{display:none}
 h2{break-after:avoid}.plots{display:block}
 figure{break-inside:avoid;margin-bottom:12px}figure img{max-width:16cm}

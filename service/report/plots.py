@@ -152,7 +152,7 @@ def learning(curve: dict[str, Any] | None) -> bytes:
     best = curve["best_round"]
     ax.axvline(best, color=WARM, linewidth=1, linestyle="--",
                label=f"early stop on this fold: round {best}")
-    ax.set_xlabel("boosting round (trees)")
+    ax.set_xlabel("boosting round")
     better = "higher is better" if curve.get("higher_is_better") else "lower is better"
     ax.set_ylabel(f"{curve['metric']} ({better})")
     ax.set_title(f"Learning curve of the winner, CV fold {curve['fold'] + 1}", loc="left")

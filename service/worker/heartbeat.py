@@ -39,7 +39,11 @@ def beat_until_done(url: str, job_id: str, worker_id: str, flags: JobFlags, *, l
             reason = describe_outage(exc) if is_transient(exc) else repr(exc)
             log.warning("job %s: heartbeat failed: %s", job_id, reason)
             continue
-        flags.cancel = flags.cancel or cancel
+        if cancel and not flags.cancel:
+            flags.cancel = True
+            # Logged after the flag is set: trials started later stop before they train.
+            log.info("job %s: cancel requested; the trials in flight stop at their next "
+                     "boosting round", job_id)
         if not ours:
             log.warning("job %s: %s no longer holds the job; abandoning it", job_id, worker_id)
             flags.lost = True

@@ -20,19 +20,30 @@ from service.worker.trials import record_trial
 log = logging.getLogger("grovekeeper.worker")
 
 
-def join_job(ctx: WorkerContext, job_id: str) -> None:
+def join_job(ctx: WorkerContext, job_id: str) -> int:
+    """Run trials of the job until its budget is spent; the number of trials this worker
+    finished (0: it found nothing to run, and should not join this job again soon)."""
     flags, beat = heartbeat.start(ctx.url, job_id, ctx.worker_id, lead=False,
                                   interval=ctx.settings.heartbeat_seconds)
     log.info("worker %s joined job %s", ctx.worker_id, job_id)
+    ran = 0
     try:
         job = with_reconnect(lambda: load_job(ctx, job_id), f"job {job_id}: loading")
         if job.config.timeout is not None and job.config.timeout <= 1.0:
-            return  # the job's wall-clock limit is (nearly) spent: nothing to add
+            return 0  # the job's wall-clock limit is (nearly) spent: nothing to add
         # Each process on one study samples with its own salt, so they draw different
         # configurations.
         def on_trial(record: tuner.TrialRecord) -> None:
+            nonlocal ran
+            ran += 1
             if not record_trial(ctx.url, job_id, ctx.worker_id, record, lead=False):
                 flags.lost = True  # swept as stale: stop at the next fold
+
+        def close_joining() -> None:
+            def write() -> None:
+                with session_scope(ctx.url) as session:
+                    queue.close_joining(session, job_id=job_id)
+            with_reconnect(write, f"job {job_id}: closing to joiners")
 
         salt = int(hashlib.sha256(ctx.worker_id.encode()).hexdigest()[:8], 16) | 1
         tuner.run_search(
@@ -41,8 +52,12 @@ def join_job(ctx: WorkerContext, job_id: str) -> None:
             on_trial=on_trial,
             should_stop=lambda: flags.cancel or flags.lost or ctx.shutdown.is_set(),
             heartbeat_seconds=ctx.trial_heartbeat, grace_seconds=ctx.trial_grace,
-            join=True, seed_salt=salt,
+            join=True, seed_salt=salt, on_budget_taken=close_joining,
+            fence=queue.journal_fence(job_id=job_id, worker_id=ctx.worker_id, lead=False),
         )
+    except tuner.JournalFenced:
+        log.warning("job %s: refused the late trial journal writes from %s (its joiner row "
+                    "was swept as stale)", job_id, ctx.worker_id)
     except Exception:  # noqa: BLE001 - a joiner's trouble must not fail the job
         log.error("worker %s on job %s (joined):\n%s", ctx.worker_id, job_id,
                   traceback.format_exc())
@@ -58,4 +73,5 @@ def join_job(ctx: WorkerContext, job_id: str) -> None:
         except Exception as exc:
             if not is_transient(exc):
                 raise  # otherwise the stale sweep removes the row
-    log.info("worker %s left job %s", ctx.worker_id, job_id)
+    log.info("worker %s left job %s (%d trials)", ctx.worker_id, job_id, ran)
+    return ran

@@ -37,7 +37,10 @@ def run_job(ctx: WorkerContext, job_id: str, epoch: int | None = None) -> None:
                                   interval=ctx.settings.heartbeat_seconds, epoch=epoch)
     try:
         status, error, model_id = _execute(ctx, job_id, flags, epoch)
-    except Fenced:
+    except (Fenced, tuner.JournalFenced) as exc:
+        if isinstance(exc, tuner.JournalFenced):
+            log.warning("job %s: refused the late trial journal writes from %s (claim epoch "
+                        "%s superseded)", job_id, ctx.worker_id, epoch)
         flags.lost = True
         status, error, model_id = None, None, None
     except JobFailed as exc:
@@ -118,11 +121,17 @@ def _execute(ctx: WorkerContext, job_id: str, flags: heartbeat.JobFlags,
         if not record_trial(ctx.url, job_id, ctx.worker_id, record, epoch=epoch):
             flags.lost = True  # fenced off: stop at the next fold
 
+    # Joiners may come once trial 0 is taken, and only until the last share of the
+    # budget is handed out: one joining later would load the study to find nothing to run.
+    shared = job.max_workers > 1
+    fence = queue.journal_fence(job_id=job_id, worker_id=ctx.worker_id, epoch=epoch)
     tuner.run_search(
         run.data, run.plan, config, storage_url=ctx.url, study_name=job.study_name,
         on_trial=on_trial, should_stop=should_stop, heartbeat_seconds=ctx.trial_heartbeat,
         grace_seconds=ctx.trial_grace,
-        on_started=(lambda: set_joinable(True)) if job.max_workers > 1 else None,
+        on_started=(lambda: set_joinable(True)) if shared else None,
+        on_budget_taken=(lambda: set_joinable(False)) if shared else None,
+        fence=fence,
     )
     if job.max_workers > 1 and not flags.lost:
         set_joinable(False)
@@ -141,7 +150,7 @@ def _execute(ctx: WorkerContext, job_id: str, flags: heartbeat.JobFlags,
     result = with_reconnect(
         lambda: tuner.close_search(ctx.url, job.study_name,
                                    direction=run.effective["direction"],
-                                   selection=config.selection),
+                                   selection=config.selection, fence=fence),
         f"job {job_id}: closing the search")
     resync_trials(ctx.url, job_id, job.study_name)
     if result.chosen is None:

@@ -11,6 +11,7 @@ import logging
 import os
 import signal
 import threading
+import time
 from typing import Any
 
 from service import queue, repository
@@ -35,6 +36,10 @@ class Worker:
         self.settings = settings
         self.worker_id = self.ctx.worker_id
         self.shutdown = self.ctx.shutdown
+        # Jobs this worker joined and found nothing to run in (their budget was handed
+        # out, or their time was up), with when: not joined again for a while, so a job
+        # finishing its last trials is not joined and left over and over.
+        self._fruitless: dict[str, float] = {}
 
     def run_forever(self, *, parent_pid: int | None = None) -> None:
         log.info("worker %s started on %s", self.worker_id, _redact(self.ctx.url))
@@ -98,11 +103,16 @@ class Worker:
             with log_context(job_id=comparison_id, worker_id=self.worker_id):
                 run_comparison(url, self.ctx.store, comparison_id, self.worker_id)
             return True
+        now = time.monotonic()
+        self._fruitless = {j: at for j, at in self._fruitless.items()
+                           if now - at < max(10.0, self.settings.stale_after_seconds)}
         with session_scope(url) as session:
-            job_id = queue.join_next(session, worker_id=self.worker_id)
+            job_id = queue.join_next(session, worker_id=self.worker_id,
+                                     skip=self._fruitless)
         if job_id is not None:
             with log_context(job_id=job_id, worker_id=self.worker_id):
-                join_job(self.ctx, job_id)
+                if join_job(self.ctx, job_id) == 0:
+                    self._fruitless[job_id] = time.monotonic()
             return True
         return False
 

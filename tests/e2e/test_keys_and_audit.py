@@ -11,12 +11,14 @@ from datetime import UTC, datetime
 from pathlib import Path
 
 import pytest
+import sqlalchemy as sa
 
 from examples.demo_data import kilns
+from service import channels, repository
 from service.api.audit import action_for
 from service.auth import create_key
-from service.db import init_db, session_scope
-from service.tables import ApiKey
+from service.db import get_engine, init_db, session_scope
+from service.tables import ApiKey, AuditEntry, Dataset, Job
 from tests.conftest import ROOT, Server, child_env
 
 pytestmark = pytest.mark.e2e
@@ -126,6 +128,106 @@ def test_every_kind_of_change_leaves_an_audit_row_readable_by_admin_keys_only(
         assert [e["id"] for e in seen] == sorted((e["id"] for e in seen), reverse=True)
     finally:
         server.stop()
+
+
+def _model_row(url: str, job_id: str, model_id: str, features: list[str]) -> None:
+    """A model row as a worker stores it, minus the training (only channels read it here)."""
+    with session_scope(url) as session:
+        repository.add_model(
+            session, id=model_id, job_id=job_id, task="binary", metric="roc_auc", params={},
+            boosting_rounds=1, trial_number=0, cv={}, holdout={}, target="defect",
+            feature_schema={"features": [{"name": f, "kind": "numeric"} for f in features]},
+            feature_importance=[], sha256="0" * 64, file_key=f"models/{model_id}.txt",
+            size_bytes=1)
+
+
+def test_channel_moves_leave_one_audit_row_each_with_key_and_models(
+        db_url: str, tmp_path: Path) -> None:
+    home = tmp_path / "home"
+    init_db(db_url)
+    admin_id, admin = create_key(db_url, scope="admin")
+    writer_id, writer = create_key(db_url, scope="write")
+    server = Server(home=home, db_url=db_url, workers=0).start()
+    try:
+        with server.client(headers={"Authorization": f"Bearer {writer}"}) as client:
+            body = kilns(n_rows=200, seed=3).to_csv(index=False).encode()
+            dataset = client.post("/v1/datasets", params={"name": "kilns"}, content=body,
+                                  headers={"Content-Type": "text/csv"}).json()
+            job = client.post("/v1/jobs", json={
+                "dataset_id": dataset["id"], "target": "defect", "budget": {"trials": 2},
+                "promote": {"channel": "live", "rule": "always"}}).json()
+        _model_row(db_url, job["id"], "mdl_a", ["x", "y"])
+        _model_row(db_url, job["id"], "mdl_b", ["x", "y"])
+        _model_row(db_url, job["id"], "mdl_wide", ["x", "y", "z"])
+        with server.client(headers={"Authorization": f"Bearer {admin}"}) as client:
+            assert client.put("/v1/channels/live", json={"model_id": "mdl_a"}).status_code == 200
+            assert client.put("/v1/channels/live", json={"model_id": "mdl_b"}).status_code == 200
+            # Refused (callers would have to add a column): no move, so no row.
+            assert client.put("/v1/channels/live",
+                              json={"model_id": "mdl_wide"}).status_code == 409
+            assert client.post("/v1/channels/live/rollback").status_code == 200
+            # The job asked to be promoted: what its worker does once the model is stored.
+            channels.switch(db_url, "live", "mdl_b", force=True, action="promote",
+                            job_id=job["id"])
+            rows = [e for e in client.get("/v1/audit", params={"limit": 100}).json()["items"]
+                    if e["action"].startswith("channel.")]
+    finally:
+        server.stop()
+    rows.reverse()  # oldest first
+    assert [(e["action"], e["target"], e["key_id"], e["detail"]) for e in rows] == [
+        ("channel.set", "live", admin_id, {"from": None, "to": "mdl_a"}),
+        ("channel.set", "live", admin_id, {"from": "mdl_a", "to": "mdl_b"}),
+        ("channel.rollback", "live", admin_id, {"from": "mdl_b", "to": "mdl_a"}),
+        # The key that queued the job asking for the promotion.
+        ("channel.promote", "live", writer_id,
+         {"from": "mdl_a", "to": "mdl_b", "forced": True, "job_id": job["id"]}),
+    ]
+    assert [e["status"] for e in rows] == [200, 200, 200, None]  # the promotion had no answer
+    assert [e["method"] for e in rows] == ["PUT", "PUT", "POST", None]
+
+
+_REFUSE_AUDIT = {
+    "sqlite": ["CREATE TRIGGER refuse_audit BEFORE INSERT ON gk_audit "
+               "BEGIN SELECT RAISE(ABORT, 'audit refused'); END"],
+    "postgresql": ["CREATE FUNCTION refuse_audit() RETURNS trigger AS $$ BEGIN "
+                   "RAISE EXCEPTION 'audit refused'; END $$ LANGUAGE plpgsql",
+                   "CREATE TRIGGER refuse_audit BEFORE INSERT ON gk_audit FOR EACH ROW "
+                   "EXECUTE FUNCTION refuse_audit()"],
+}
+
+
+def test_a_change_whose_audit_row_cannot_be_written_does_not_happen(
+        db_url: str, tmp_path: Path) -> None:
+    """The row is written in the change's own transaction: when the database refuses the
+    row (a trigger here), the change is rolled back with it."""
+    home = tmp_path / "home"
+    init_db(db_url)
+    _, admin = create_key(db_url, scope="admin")
+    server = Server(home=home, db_url=db_url, workers=0).start()
+    try:
+        with server.client(headers={"Authorization": f"Bearer {admin}"}) as client:
+            body = kilns(n_rows=200, seed=3).to_csv(index=False).encode()
+            dataset = client.post("/v1/datasets", params={"name": "kilns"}, content=body,
+                                  headers={"Content-Type": "text/csv"}).json()
+            engine = get_engine(db_url)
+            with engine.begin() as conn:
+                for statement in _REFUSE_AUDIT[engine.dialect.name]:
+                    conn.execute(sa.text(statement))
+            job = client.post("/v1/jobs", json={"dataset_id": dataset["id"],
+                                                "target": "defect", "budget": {"trials": 2}})
+            upload = client.post("/v1/datasets", params={"name": "again"}, content=body,
+                                 headers={"Content-Type": "text/csv"})
+            gone = client.delete(f"/v1/datasets/{dataset['id']}")
+    finally:
+        server.stop()
+    assert job.status_code >= 500 and upload.status_code >= 500 and gone.status_code >= 500
+    with session_scope(db_url) as session:
+        assert session.scalar(sa.select(sa.func.count()).select_from(Job)) == 0
+        assert list(session.scalars(sa.select(Dataset.id))) == [dataset["id"]]
+        actions = session.scalars(sa.select(AuditEntry.action).order_by(AuditEntry.id))
+        assert list(actions) == ["key.create", "dataset.upload"]
+    # The refused upload kept no file either.
+    assert len(list((home / "datasets").iterdir())) == 1
 
 
 def test_read_and_write_keys_may_not_read_the_audit_trail(tmp_path: Path) -> None:

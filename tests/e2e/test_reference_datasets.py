@@ -41,7 +41,11 @@ def test_breast_cancer_reaches_auc_097(server: Server) -> None:
     # Reference: sklearn.metrics.roc_auc_score on the stored model's hold-out predictions.
     auc = roc_auc_score(data.y[plan.holdout_idx], proba)
     assert model["holdout"]["roc_auc"] == pytest.approx(auc, abs=1e-12)
-    assert auc >= 0.97  # the bar; published results on this set sit near 0.99
+    # The bar is the service's own requirement. Source for what is reachable: gradient-
+    # boosted and other standard classifiers score a ROC AUC of about 0.99 on this set in
+    # common practice (scikit-learn's examples and many published comparisons; a value
+    # from memory), so 0.97 leaves room for a short search without hiding a broken one.
+    assert auc >= 0.97
 
 
 def test_diabetes_tuned_is_no_worse_than_defaults(server: Server) -> None:

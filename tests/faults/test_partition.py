@@ -14,6 +14,7 @@ from pathlib import Path
 import pytest
 import sqlalchemy as sa
 
+import tuner
 from service.db import session_scope
 from service.tables import Model
 from tests.conftest import ROOT, child_env
@@ -89,7 +90,8 @@ def test_partitioned_lead_is_fenced_off_and_the_job_ends_with_one_model(
                 # The cut-off worker came back and abandoned the job; give its late
                 # writes time to arrive (and be refused).
                 wait_until(lambda: "abandons it untouched" in cut_log()
-                           or "refused the late" in cut_log(), 60,
+                           or "refused the late" in cut_log()
+                           or "refused by its fence" in cut_log(), 60,
                            "the cut-off worker to notice it lost the job", cut_log)
                 time.sleep(2.0)
                 assert cut_worker.poll() is None, cut_log()  # it never exits
@@ -116,3 +118,10 @@ def test_partitioned_lead_is_fenced_off_and_the_job_ends_with_one_model(
     assert mine and all(t.finished_at <= cut_at for t in mine)
     text = cut_log()
     assert "refused the late" in text or "abandons it untouched" in text, text[-3000:]
+    # Optuna's own record, the trial journal, agrees with our copy: no trial the cut-off
+    # worker started or finished after the cut went in (its appends are fenced too, and
+    # say so when it tried), and nothing is left running.
+    journal = {r.number: r.state
+               for r in tuner.load_trial_records(pg_url, f"grovekeeper-{job_id}")}
+    assert journal == {t.number: t.state for t in rows}
+    assert "running" not in journal.values()

@@ -3,11 +3,13 @@ real PostgreSQL (db_url runs each test on both)."""
 
 from __future__ import annotations
 
+import os
 import signal
-import time
+from datetime import datetime
 from pathlib import Path
 
 import pytest
+from optuna.trial import TrialState
 
 import tuner
 from service import repository
@@ -71,12 +73,33 @@ def test_two_workers_share_one_job_within_the_budget_bound(db_url: str,
         pool.start(2)
         job = wait_until(lambda: (j := job_row(db_url, job_id)).status == "succeeded" and j,
                          240, "the shared job to succeed", pool.logs)
+        logs = pool.logs()
+    # The joiner joins while there is work left; finding none (its last join raced the
+    # lead closing the job) happens at most once, not join-and-leave over and over.
+    assert logs.count(f"left job {job_id} (0 trials)") <= 1, logs[-3000:]
     done = finished(db_url, job_id)
-    # Each of the other (workers - 1) workers may have one trial in flight when the
-    # budget is reached: budget <= finished <= budget + 1 (README, several workers).
-    assert budget <= len(done) <= budget + 1
     contributors = {t.worker_id for t in done}
-    assert len(contributors) == 2, contributors
+    # Each worker beyond the first may have one trial in flight when the budget is reached
+    # (README, several workers). Whether the second worker joined in time depends on how
+    # fast trials run, so the bound counts the workers that did.
+    assert budget <= len(done) <= budget + len(contributors) - 1
+    numbers = [t.number for t in trials(db_url, job_id)]
+    assert sorted(numbers) == list(range(len(numbers)))  # unique, none skipped
+    assert job.attempts == 1 and job.model_id is not None
+    assert participants(db_url, job_id) == []
+
+
+def test_a_second_worker_joins_a_running_job(db_url: str, tmp_path: Path) -> None:
+    # A time budget, so the job runs long enough to be joined however fast trials are.
+    home = tmp_path / "home"
+    job_id = add_job(db_url, home, add_dataset(db_url, home), budget={"seconds": 8},
+                     max_workers=2)
+    with workers(home, db_url) as pool:
+        pool.start(2)
+        job = wait_until(lambda: (j := job_row(db_url, job_id)).status == "succeeded" and j,
+                         240, "the shared job to succeed", pool.logs)
+    done = finished(db_url, job_id)
+    assert len({t.worker_id for t in done}) == 2
     numbers = [t.number for t in trials(db_url, job_id)]
     assert sorted(numbers) == list(range(len(numbers)))  # unique, none skipped
     assert job.attempts == 1 and job.model_id is not None
@@ -97,7 +120,13 @@ def test_two_workers_many_jobs_each_claimed_once(db_url: str, tmp_path: Path) ->
         assert {t.worker_id for t in trials(db_url, job_id)} == {job.worker_id}
 
 
-def test_cancel_reaches_cancelled_within_one_trial(db_url: str, tmp_path: Path) -> None:
+def _logged_at(logs: str, message: str) -> datetime:
+    """When a text log line containing ``message`` was written (the worker's local time)."""
+    line = next(line for line in logs.splitlines() if message in line)
+    return datetime.strptime(line[:23], "%Y-%m-%d %H:%M:%S,%f")
+
+
+def test_cancel_stops_at_the_trials_in_flight(db_url: str, tmp_path: Path) -> None:
     home = tmp_path / "home"
     job_id = add_job(db_url, home, add_dataset(db_url, home), budget={"trials": 500})
     # The cancel flag travels with the heartbeat; beat often, as trials here are short.
@@ -105,21 +134,24 @@ def test_cancel_reaches_cancelled_within_one_trial(db_url: str, tmp_path: Path) 
         pool.start(1)
         wait_until(lambda: len(finished(db_url, job_id)) >= 2, 120, "2 finished trials",
                    pool.logs)
-        at_cancel = len(finished(db_url, job_id))
         with session_scope(db_url) as session:
             repository.request_cancel(session, job_id)
-        asked = time.monotonic()
         job = wait_until(lambda: (j := job_row(db_url, job_id)).status == "cancelled" and j,
-                         60, "the job to be cancelled", pool.logs)
-        took = time.monotonic() - asked
-        slowest = max(t.duration_seconds or 0 for t in finished(db_url, job_id))
-    # The flag arrives with the next heartbeat (0.2 s, later on a busy machine); the trial
-    # running then is pruned at its next fold. Pruned trials here take as little as 0.05 s,
-    # so several may finish before the flag arrives, but nothing like the 500 of the budget.
-    assert len(finished(db_url, job_id)) <= at_cancel + 20
-    # One trial's time plus a heartbeat, with slack for a shared machine; 500 trials would
-    # take minutes.
-    assert took < slowest + 0.2 + 10, (took, slowest)
+                         120, "the job to be cancelled", pool.logs)
+        seen = _logged_at(pool.logs(), f"job {job_id}: cancel requested")
+    study = tuner.load_study(db_url, f"grovekeeper-{job_id}")
+    threads = os.cpu_count() or 1  # parallel trials never exceed the cores
+    started_after = [t for t in study.trials if t.datetime_start > seen]
+    in_flight = [t for t in study.trials if t.datetime_start <= seen
+                 and (t.datetime_complete is None or t.datetime_complete > seen)]
+    # The worker sets the flag, then logs it: a trial started after that line saw the flag
+    # before its first boosting round and was stopped, never scored; at most one per thread
+    # can have been asked for before the search loop noticed.
+    assert all(t.state == TrialState.PRUNED for t in started_after), started_after
+    assert len(started_after) <= threads
+    # The trials running when the flag arrived were the last to finish.
+    assert len(in_flight) <= threads
+    assert len(study.trials) < 500
     assert job.model_id is None  # cancelled jobs are not refit (README)
     assert participants(db_url, job_id) == []
 

@@ -18,7 +18,6 @@ from tuner import (
     fit_final,
     load_trial_records,
     plan_validation,
-    predict,
     prepare,
     run_search,
 )
@@ -86,14 +85,14 @@ def test_weights_are_used_in_training_and_in_fold_scores(regression, storage_url
     booster = lgb.train(params, make_dataset(data.X.iloc[rows_fit], data.y[rows_fit],
                                              data.weight[rows_fit], params),
                         num_boost_round=trial0.best_iterations[0])
-    pred = predict(booster, "regression", data.X.iloc[rows_valid])
+    pred = booster.predict(data.X.iloc[rows_valid])  # LightGBM's own predict
     expected = np.sqrt(skm.mean_squared_error(data.y[rows_valid], pred,
                                               sample_weight=data.weight[rows_valid]))
     assert trial0.fold_scores[0] == pytest.approx(expected, rel=1e-9)
     unweighted = lgb.train(params, make_dataset(data.X.iloc[rows_fit], data.y[rows_fit],
                                                 None, params),
                            num_boost_round=trial0.best_iterations[0])
-    assert not np.allclose(pred, predict(unweighted, "regression", data.X.iloc[rows_valid]))
+    assert not np.allclose(pred, unweighted.predict(data.X.iloc[rows_valid]))
 
 
 def test_pruners_prune_and_record_state(make_frame, storage_url) -> None:
@@ -157,6 +156,9 @@ def _rec(number: int, score: float, folds: list[float], leaves: int, rounds: int
 
 
 def test_one_se_rule_on_hand_made_trials() -> None:
+    # Reference for the rule: Hastie, Tibshirani & Friedman, The Elements of Statistical
+    # Learning (2nd ed.), section 7.10: take the simplest model whose score is within one
+    # standard error of the best. The expected choices below are worked out by hand.
     best = _rec(0, 0.90, [0.88, 0.90, 0.92], 64, 100)  # SE = 0.02 / sqrt(3) ~ 0.0115
     close_simple = _rec(1, 0.895, [0.89, 0.895, 0.90], 8, 100)
     far_simpler = _rec(2, 0.80, [0.80, 0.80, 0.80], 2, 10)

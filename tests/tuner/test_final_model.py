@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 
+import lightgbm as lgb
 import numpy as np
 import pandas as pd
 import pytest
@@ -121,8 +122,10 @@ def test_multiclass_and_regression_predictions(make_frame) -> None:
     plan = plan_validation(data, n_folds=3, holdout_fraction=0.0)
     fitted = fit_final(data, plan, SearchConfig(task="multiclass", metric="log_loss"), _record())
     assert fitted.holdout == {}
-    probs = predict(fitted.booster, "multiclass", data.X.iloc[:4])
+    # Reference: LightGBM's own Booster.predict on the stored text model, not our wrapper.
+    probs = lgb.Booster(model_str=fitted.booster.model_to_string()).predict(data.X.iloc[:4])
     assert probs.shape == (4, 3)
+    np.testing.assert_allclose(predict(fitted.booster, "multiclass", data.X.iloc[:4]), probs)
     out = Predictor(fitted.booster, fitted.schema, "multiclass", fitted.classes).predict_table(
         frame.iloc[:4])
     assert out["predictions"] == [int(k) for k in probs.argmax(axis=1)]

@@ -17,10 +17,11 @@ import warnings
 
 import optuna
 import pytest
+import sqlalchemy as sa
 from optuna.storages import fail_stale_trials
 from optuna.trial import TrialState
 
-from tuner.journal import TrialJournal
+from tuner.journal import BEATS, TrialJournal, engine
 from tuner.study import open_study
 
 N_PROCESSES = 3
@@ -92,17 +93,23 @@ def test_studies_keep_separate_journals(db_url: str) -> None:
 
 
 def test_a_trial_without_heartbeat_goes_stale_and_a_live_one_does_not(db_url: str) -> None:
-    # One process started trial 0 and died (no beat ever); another is alive and beating.
-    dead = TrialJournal(db_url, "hb", heartbeat_seconds=1, grace_seconds=1)
+    # One process started trial 0 and died long ago; another is alive and beating.
+    # A grace of an hour: the live trial cannot go stale however slow this machine is; the
+    # dead one's last beat is written an hour and a minute in the past instead of waiting.
+    dead = TrialJournal(db_url, "hb", heartbeat_seconds=1, grace_seconds=3600)
     study = optuna.create_study(study_name="hb", storage=dead)
-    live_storage = TrialJournal(db_url, "hb", heartbeat_seconds=1, grace_seconds=1)
+    live_storage = TrialJournal(db_url, "hb", heartbeat_seconds=1, grace_seconds=3600)
     live_study = optuna.load_study(study_name="hb", storage=live_storage)
     with warnings.catch_warnings():
         # ask() warns that heartbeats belong to optimize(); here the beats are by hand.
         warnings.simplefilter("ignore", UserWarning)
         orphan = study.ask()
         live = live_study.ask()
-    time.sleep(1.5)
+    dead.record_heartbeat(orphan._trial_id)
+    with engine(db_url, writer=True).begin() as conn:
+        conn.execute(sa.update(BEATS).where(BEATS.c.study == "hb",
+                                            BEATS.c.trial_id == orphan._trial_id)
+                     .values(beat_at=time.time() - 3660))
     live_storage.record_heartbeat(live._trial_id)
     assert live_storage._get_stale_trial_ids(live_study._study_id) == [orphan._trial_id]
     with warnings.catch_warnings():

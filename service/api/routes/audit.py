@@ -31,6 +31,7 @@ def list_audit(
     rows, total, nxt = audit.page(session, limit=limit, cursor=after, action=action,
                                   key_id=key_id)
     items = [AuditOut(id=r.id, at=as_utc(r.at), key_id=r.key_id, action=r.action,
-                      target=r.target, method=r.method, path=r.path, status=r.status)
+                      target=r.target, method=r.method, path=r.path, status=r.status,
+                      detail=r.detail)
              for r in rows]
     return AuditPage(items=items, total=total, next=None if nxt is None else str(nxt))
