@@ -43,7 +43,7 @@ def cmd_model(args: argparse.Namespace) -> int:
         f"task       {model['task']} on {model['target']!r}, metric {model['metric']}",
         f"rounds     {model['boosting_rounds']}",
         "cv         " + _scores(model["cv"]),
-        "hold-out   " + _scores(model["holdout"]),
+        "hold-out   " + _scores(model["holdout"]) + f"  ({model['holdout_rows']} rows)",
         "params     " + "  ".join(f"{k}={fmt(v)}" for k, v in sorted(model["params"].items())
                                   if k not in _PLUMBING),
         f"sha256     {model['sha256']}",
@@ -274,7 +274,7 @@ def register(sub: Any) -> None:
             "final status", ("status", "json"))
     p.add_argument("job_id")
     p.add_argument("--interval", type=_positive(float), default=0.5,
-                   help="seconds between progress checks (default 0.5)")
+                   help="seconds before looking again when the stream drops (default 0.5)")
 
     p = add("status", jobs.cmd_status, "show one job as 'key value' lines", ("text", "json"))
     p.add_argument("job_id")

@@ -7,6 +7,7 @@ and notes go to stderr; failures raise ClientError with their exit code.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import sys
 import time
@@ -73,16 +74,16 @@ def cmd_upload(args: argparse.Namespace) -> int:
 
 def cmd_datasets(args: argparse.Namespace) -> int:
     with _api(args) as api:
-        page = api.get("/v1/datasets", params={"limit": args.limit})
         if args.format == "csv":
             sys.stdout.write(api.request("GET", "/v1/datasets", params={
-                "limit": args.limit, "format": "csv"}).text)
+                "limit": min(args.limit, 1000), "format": "csv"}).text)
             return client.OK
+        page = api.items("/v1/datasets", most=args.limit)
     if args.format == "json":
         _emit(page)
         return client.OK
     header = ["id", "name", "rows", "n_columns", "created_at"]
-    sys.stdout.write(table(header, [[d[h] for h in header] for d in page["data"]]))
+    sys.stdout.write(table(header, [[d[h] for h in header] for d in page["items"]]))
     return client.OK
 
 
@@ -154,6 +155,8 @@ def cmd_watch(args: argparse.Namespace) -> int:
 
 
 def _follow(api: Api, job_id: str, interval: float) -> dict[str, Any]:
+    """Follow the job's stream (GET /v1/jobs/{id}/watch) until its final event; a
+    dropped stream is reopened after ``interval`` seconds."""
     view = ProgressView(sys.stderr)
     try:
         while True:
@@ -161,7 +164,18 @@ def _follow(api: Api, job_id: str, interval: float) -> dict[str, Any]:
             view.update(job)
             if job["status"] in FINISHED:
                 return job
-            time.sleep(interval)
+            # A refused (429) or dropped stream is no failure: look again after a pause.
+            with contextlib.suppress(ClientError):
+                for event, data in api.events(f"/v1/jobs/{job_id}/watch"):
+                    if event == "status":
+                        job = {**job, "status": data["status"], "progress": data["progress"]}
+                    elif event == "trial":
+                        job = api.get(f"/v1/jobs/{job_id}")  # the best score so far too
+                    view.update(job)
+                    if data.get("final"):
+                        break
+            if job["status"] not in FINISHED:
+                time.sleep(interval)
     except KeyboardInterrupt:
         view.close()
         raise ClientError(client.INTERRUPTED, f"stopped watching; {job_id} goes on "
@@ -213,10 +227,11 @@ def cmd_jobs(args: argparse.Namespace) -> int:
         params["status"] = args.status
     with _api(args) as api:
         if args.format == "csv":
-            sys.stdout.write(api.request("GET", "/v1/jobs",
-                                         params={**params, "format": "csv"}).text)
+            sys.stdout.write(api.request("GET", "/v1/jobs", params={
+                **params, "limit": min(args.limit, 1000), "format": "csv"}).text)
             return client.OK
-        page = api.get("/v1/jobs", params=params)
+        page = api.items("/v1/jobs", params={"status": args.status} if args.status else {},
+                         most=args.limit)
     if args.format == "json":
         _emit(page)
         return client.OK
@@ -224,7 +239,7 @@ def cmd_jobs(args: argparse.Namespace) -> int:
     rows = [[j["id"], j["status"], j["target"], j["metric"],
              j["progress"]["trials_completed"] + j["progress"]["trials_pruned"],
              j["progress"]["trials_budget"], j["progress"]["best_score"], j["model_id"]]
-            for j in page["data"]]
+            for j in page["items"]]
     sys.stdout.write(table(header, rows))
     return client.OK
 
@@ -236,16 +251,16 @@ def cmd_board(args: argparse.Namespace) -> int:
             sys.stdout.write(api.request("GET", f"/v1/jobs/{args.job_id}/leaderboard",
                                          params={**params, "format": "csv"}).text)
             return client.OK
-        board = api.get(f"/v1/jobs/{args.job_id}/leaderboard", params=params)
+        board = api.items(f"/v1/jobs/{args.job_id}/leaderboard", most=args.limit)
     if args.format == "json":
         _emit(board)
         return client.OK
-    names = sorted({n for r in board["data"] for n in r["params"]})
+    names = sorted({n for r in board["items"] for n in r["params"]})
     header = ["rank", "trial", board["metric"], "std", "rounds", *names]
     rows = [[r["rank"], r["number"], r["score"], r["score_std"], r["boosting_rounds"],
-             *(r["params"].get(n) for n in names)] for r in board["data"]]
+             *(r["params"].get(n) for n in names)] for r in board["items"]]
     sys.stdout.write(table(header, rows))
-    _note(f"{board['count']} finished trials, {board['direction']} {board['metric']}")
+    _note(f"{board['total']} finished trials, {board['direction']} {board['metric']}")
     return client.OK
 
 

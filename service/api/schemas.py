@@ -3,9 +3,11 @@
 from __future__ import annotations
 
 from datetime import UTC, datetime
-from typing import TYPE_CHECKING, Any, Generic, Literal, TypeVar
+from typing import TYPE_CHECKING, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field
+
+from service.api.paging import Page
 
 # The job request's shapes live in service/jobrequest.py (the worker reads them too);
 # re-exported here beside the other request shapes.
@@ -61,12 +63,8 @@ class DatasetOut(BaseModel):
     warnings: list[str]
 
 
-T = TypeVar("T")
-
-
-class Page(BaseModel, Generic[T]):
-    data: list[T]
-    count: int
+class DatasetList(Page[DatasetOut]):
+    pass
 
 
 class Progress(BaseModel):
@@ -108,6 +106,10 @@ class JobOut(BaseModel):
     finished_at: datetime | None
 
 
+class JobList(Page[JobOut]):
+    pass
+
+
 class TrialOut(BaseModel):
     number: int
     state: str
@@ -125,6 +127,10 @@ class TrialOut(BaseModel):
     fidelity: float | None = None
 
 
+class TrialList(Page[TrialOut]):
+    pass
+
+
 class LeaderboardRow(BaseModel):
     rank: int
     number: int
@@ -135,12 +141,12 @@ class LeaderboardRow(BaseModel):
     boosting_rounds: int | None
 
 
-class Leaderboard(BaseModel):
+class Leaderboard(Page[LeaderboardRow]):
+    """A page of the ranked trials; `total` counts every ranked trial."""
+
     job_id: str
     metric: str
     direction: str
-    data: list[LeaderboardRow]
-    count: int
 
 
 class ModelOut(BaseModel):
@@ -153,7 +159,13 @@ class ModelOut(BaseModel):
     boosting_rounds: int
     trial_number: int
     cv: dict[str, Any]
-    holdout: dict[str, Any]
+    # Hold-out scores only, metric name -> number; see holdout_rows and holdout_intervals.
+    holdout: dict[str, float | None]
+    # Rows set aside before the search and scored once (0 when none were).
+    holdout_rows: int = 0
+    # Per metric of holdout: {"estimate", "low", "high", "std_error", "level",
+    # "resamples"}, percentile bootstrap on the hold-out rows (empty without a hold-out).
+    holdout_intervals: dict[str, dict[str, Any]] = {}
     feature_schema: dict[str, Any]
     classes: list[Any] | None
     feature_importance: list[dict[str, Any]]
@@ -177,16 +189,14 @@ class ModelSummary(BaseModel):
     boosting_rounds: int
     trial_number: int
     cv: dict[str, Any]
-    holdout: dict[str, Any]
+    holdout: dict[str, float | None]
+    holdout_rows: int = 0
     sha256: str
     created_at: datetime
 
 
-class ModelList(BaseModel):
-    items: list[ModelSummary]
-    total: int
-    # Pass as ?cursor= for the next page; null on the last page.
-    next: str | None = None
+class ModelList(Page[ModelSummary]):
+    pass
 
 
 class PredictRequest(Strict):
@@ -249,10 +259,8 @@ class ChannelSummary(BaseModel):
     updated_at: datetime
 
 
-class ChannelList(BaseModel):
-    items: list[ChannelSummary]
-    total: int
-    next: str | None = None
+class ChannelList(Page[ChannelSummary]):
+    pass
 
 
 class ScoringCreate(Strict):
@@ -326,7 +334,5 @@ class AuditOut(BaseModel):
     detail: dict[str, Any] | None = None
 
 
-class AuditPage(BaseModel):
-    items: list[AuditOut]
-    total: int
-    next: str | None
+class AuditPage(Page[AuditOut]):
+    pass

@@ -62,7 +62,10 @@ def build_bundle(model: Model, job: Job, dataset: Dataset | None, model_text: by
         "schema.json": _json({"task": model.task, "target": model.target,
                               "classes": model.classes, **model.feature_schema}),
         "metrics.json": _json({"metric": model.metric, "cv": model.cv,
-                               "holdout": model.holdout,
+                               # Scores only, the row count beside them (as in the API).
+                               "holdout": {k: v for k, v in (model.holdout or {}).items()
+                                           if k != "rows"},
+                               "holdout_rows": int((model.holdout or {}).get("rows") or 0),
                                "feature_importance": model.feature_importance}),
         "params.json": _json({"params": model.params, "boosting_rounds": model.boosting_rounds,
                               "trial_number": model.trial_number}),

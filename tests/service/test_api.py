@@ -48,7 +48,7 @@ def test_upload_raw_multipart_and_parquet(api: LiveApi) -> None:
         assert parquet.status_code == 201, parquet.text
         assert parquet.json()["source_format"] == "parquet"
         listed = client.get("/v1/datasets").json()
-    assert listed["count"] == 3
+    assert listed["total"] == 3
     assert raw.json()["sha256"] == multi.json()["sha256"]  # same bytes, same digest
     # The same table parsed from CSV and Parquet profiles the same way.
     kinds = lambda d: [(c["name"], c["kind"]) for c in d["columns"]]  # noqa: E731
@@ -78,7 +78,7 @@ def test_oversized_upload_is_413_and_leaves_nothing(api: LiveApi) -> None:
         chunked = client.post("/v1/datasets", content=chunks(),
                               headers={"Content-Type": "text/csv"})
         assert_problem(chunked, 413)
-        assert client.get("/v1/datasets").json()["count"] == 0
+        assert client.get("/v1/datasets").json()["total"] == 0
     assert api.files() == []
 
 
@@ -95,7 +95,7 @@ def test_oversized_upload_is_413_and_leaves_nothing(api: LiveApi) -> None:
 def test_unreadable_uploads(api: LiveApi, body: bytes, ctype: str, status: int) -> None:
     with api.client() as client:
         assert_problem(upload(client, body, ctype), status)
-        assert client.get("/v1/datasets").json()["count"] == 0
+        assert client.get("/v1/datasets").json()["total"] == 0
     assert api.files() == []
 
 
@@ -118,7 +118,7 @@ def test_job_validation_names_the_field(api: LiveApi) -> None:
             "dataset_id": ds, "target": "defect",
             "search_space": {"num_leaves": {"low": 64, "high": 8}}})
         assert_problem(bad_space, 422, "search_space.num_leaves")
-        assert client.get("/v1/jobs").json()["count"] == 0  # nothing was queued
+        assert client.get("/v1/jobs").json()["total"] == 0  # nothing was queued
 
 
 def test_job_is_queued_with_effective_spec_and_can_be_cancelled(api: LiveApi) -> None:
@@ -132,7 +132,7 @@ def test_job_is_queued_with_effective_spec_and_can_be_cancelled(api: LiveApi) ->
         assert body["progress"]["trials_budget"] == 40
         assert "num_leaves" in body["spec"]["search_space"]
         assert "firing_id" not in body["spec"]["features"]  # an identifier, not a feature
-        assert client.get("/v1/jobs", params={"status": "queued"}).json()["count"] == 1
+        assert client.get("/v1/jobs", params={"status": "queued"}).json()["total"] == 1
         assert_problem(client.delete(f"/v1/datasets/{ds}"), 409)  # a queued job uses it
         cancelled = client.post(f"/v1/jobs/{body['id']}/cancel").json()
         assert cancelled["status"] == "cancelled"

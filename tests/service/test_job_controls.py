@@ -40,7 +40,7 @@ def test_bad_controls_are_422s_naming_the_field(api: LiveApi, extra, field) -> N
         response = client.post("/v1/jobs", json={"dataset_id": ds, "target": "defect",
                                                  "exclude": ["firing_id"], **extra})
         assert_problem(response, 422, field)
-        assert client.get("/v1/jobs").json()["count"] == 0
+        assert client.get("/v1/jobs").json()["total"] == 0
 
 
 def test_controls_are_recorded_in_the_effective_spec(api: LiveApi) -> None:

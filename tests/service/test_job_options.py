@@ -38,7 +38,7 @@ def test_bad_search_space_is_a_422_naming_the_parameter(api: LiveApi, space, fie
         response = client.post("/v1/jobs", json={"dataset_id": ds, "target": "defect",
                                                  "search_space": space})
         assert_problem(response, 422, field)
-        assert client.get("/v1/jobs").json()["count"] == 0
+        assert client.get("/v1/jobs").json()["total"] == 0
 
 
 def _greenhouse_csv() -> bytes:
@@ -79,7 +79,7 @@ def test_objective_and_metric_mismatches_name_the_fields(api: LiveApi) -> None:
         assert [e["field"] for e in both["errors"]] == ["max_parallel_trials", "max_workers"]
         assert_problem(client.post("/v1/jobs", json={**job, "reproducible": True,
                                                      "max_workers": 2}), 422, "max_workers")
-        assert client.get("/v1/jobs").json()["count"] == 0
+        assert client.get("/v1/jobs").json()["total"] == 0
 
 
 def test_effective_spec_has_objective_space_and_manifest(api: LiveApi) -> None:
