@@ -20,11 +20,10 @@ from typing import Any
 
 from service.errors import Unprocessable
 from service.jobrequest import JobRequest
-from tuner.config import space_problems
 from tuner.controls import check_fixed, split_fixed
 from tuner.errors import ConfigError, SearchSpaceError
 from tuner.profiled import judge
-from tuner.space import DEFAULT_SPACE, merge_overrides
+from tuner.space import DEFAULT_SPACE, merge_overrides, space_problems
 
 #: How many of an earlier job's best trials a warm start enqueues.
 WARM_START_TRIALS = 3

@@ -22,6 +22,7 @@ import pandas as pd
 import tuner
 from service.admission import check_reproducible, prefixed
 from service.jobrequest import JobRequest
+from tuner import fidelity
 from tuner.columns import date_part_name
 from tuner.config import check_config
 from tuner.controls import check_fixed, constraint_params, split_fixed, try_params
@@ -135,6 +136,9 @@ def build_run(stored: JobRequest | Mapping[str, Any], frame: pd.DataFrame, *,
         max_rounds=request.max_rounds,
         early_stopping_rounds=request.early_stopping_rounds,
         fixed_params=fixed,
+        # Looked up here, not frozen into SearchConfig's default, so one rule holds for
+        # the API's check and the worker's run (tests lower it to use small tables).
+        fidelity_from_rows=fidelity.FIDELITY_FROM_ROWS,
     )
     check_config(data, config)  # the checks run_search repeats, here so they are 422s
     if fixed or len(space) != len(DEFAULT_SPACE):
@@ -175,6 +179,10 @@ def build_run(stored: JobRequest | Mapping[str, Any], frame: pd.DataFrame, *,
         "seed": seed,
         "search_space": sampled,
         "pruner": config.pruner,
+        # Row subsamples sampled configurations climb (tuner/fidelity.py); [1.0]: none.
+        "fidelity": {"rungs": [round(r, 4) for r in tuner.fidelity_rungs(
+            len(plan.train_idx), config.fidelity_from_rows)],
+            "from_rows": config.fidelity_from_rows, "keep": f"1/{tuner.REDUCTION}"},
         "max_parallel_trials": config.max_parallel_trials,
         "num_threads": config.num_threads,
         "reproducible": reproducible,

@@ -25,6 +25,7 @@ from service.tables import (
     Trial,
     utcnow,
 )
+from tuner.fidelity import rung_key
 
 ACTIVE = (JobStatus.QUEUED.value, JobStatus.RUNNING.value)
 
@@ -199,6 +200,20 @@ def leaderboard(
         query = query.limit(limit)
     count = session.scalar(sa.select(sa.func.count()).select_from(Trial).where(*where)) or 0
     return session.scalars(query).all(), count
+
+
+def trials_by_fidelity(session: Session, *, job_id: str) -> dict[str, int]:
+    """Finished (complete or pruned) trials per fidelity reached, keyed by share."""
+    rows = session.execute(
+        sa.select(Trial.fidelity, sa.func.count())
+        .where(Trial.job_id == job_id, Trial.state.in_(("complete", "pruned")))
+        .group_by(Trial.fidelity)
+    ).all()
+    out: dict[str, int] = {}
+    for fidelity, n in sorted(rows, key=lambda r: (r[0] is None, r[0] or 0.0)):
+        key = rung_key(1.0 if fidelity is None else fidelity)
+        out[key] = out.get(key, 0) + int(n)
+    return out
 
 
 def trial_counts(session: Session, *, job_id: str) -> dict[str, int]:

@@ -62,6 +62,9 @@ class Job(Base):
     trials_completed: Mapped[int] = mapped_column(default=0)
     trials_pruned: Mapped[int] = mapped_column(default=0)
     trials_failed: Mapped[int] = mapped_column(default=0)
+    # Finished (complete or pruned) trials by the share of the search rows they reached,
+    # keyed like tuner.fidelity.rung_key ("0.1111", "0.3333", "1").
+    trials_by_fidelity: Mapped[dict[str, Any] | None] = mapped_column(sa.JSON)
     best_score: Mapped[float | None]
     best_trial_number: Mapped[int | None]
     cancel_requested: Mapped[bool] = mapped_column(default=False)

@@ -6,7 +6,8 @@ from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
 from tuner.errors import ConfigError
-from tuner.space import DEFAULT_SPACE, Choice, ParamRange, SearchSpace
+from tuner.fidelity import FIDELITY_FROM_ROWS
+from tuner.space import DEFAULT_SPACE, SearchSpace, space_problems
 from vocabulary import FINAL_REFITS, PRUNERS, SELECTION_RULES
 from vocabulary.job_fields import DEFAULT_TRIALS
 from vocabulary.job_fields import field as job_field
@@ -63,6 +64,9 @@ class SearchConfig:
     #: Enqueue the portfolio of strong configurations (tuner.portfolio) after trial 0
     #: and the warm-start configurations.
     portfolio: bool = _default("portfolio")
+    #: Search rows from which sampled configurations climb rungs of row subsamples
+    #: (successive halving, :mod:`tuner.fidelity`); ``None``: always all the rows.
+    fidelity_from_rows: int | None = FIDELITY_FROM_ROWS
 
 
 #: ``median``: prune a trial whose score so far (inside a fold at the boosting
@@ -96,31 +100,6 @@ def make_pruner(name: str, *, n_warmup_steps: int = 0,
 
 
 
-def space_problems(task: str, objective: str | None, space: SearchSpace
-                   ) -> list[dict[str, str]]:
-    """What the search space asks that the task or objective cannot take (no data needed:
-    the API checks these at submission, ``check_config`` again in the worker)."""
-    errors = []
-    if "scale_pos_weight" in space and "is_unbalance" in space:
-        errors.append({"field": "search_space.scale_pos_weight",
-                       "message": "use is_unbalance or scale_pos_weight, not both (LightGBM "
-                                  "refuses the pair)"})
-    for name in ("scale_pos_weight", "is_unbalance"):
-        if name in space and task != "binary":
-            errors.append({"field": f"search_space.{name}",
-                           "message": "weighs the positive class of a binary task only"})
-    alpha = space.get("alpha")
-    if objective == "quantile" and alpha is not None:
-        if isinstance(alpha, ParamRange):
-            bounds: tuple[Any, ...] = (alpha.low, alpha.high)
-        else:
-            bounds = alpha.values if isinstance(alpha, Choice) else (alpha.value,)
-        if not all(0 < float(a) < 1 for a in bounds):
-            errors.append({"field": "search_space.alpha",
-                           "message": "a quantile objective needs alpha within (0, 1)"})
-    return errors
-
-
 def check_config(data: PreparedData, config: SearchConfig) -> None:
     """Reject settings that do not fit the data; every problem names its field.
 
@@ -149,6 +128,8 @@ def check_config(data: PreparedData, config: SearchConfig) -> None:
         errors.append({"field": "max_rounds", "message": "must be at least 1"})
     if config.early_stopping_rounds < 1:
         errors.append({"field": "early_stopping_rounds", "message": "must be at least 1"})
+    if config.fidelity_from_rows is not None and config.fidelity_from_rows < 1:
+        errors.append({"field": "fidelity_from_rows", "message": "must be at least 1"})
     if config.pruner not in PRUNERS:
         errors.append({"field": "pruner", "message": f"use one of {', '.join(PRUNERS)}"})
     if config.selection not in SELECTION_RULES:

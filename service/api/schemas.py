@@ -79,6 +79,9 @@ class Progress(BaseModel):
     elapsed_seconds: float
     # Seconds left, from the pace of the trials so far (None until one has finished).
     eta_seconds: float | None = None
+    # Finished trials by the share of the search rows they reached ("1" = all; lower
+    # shares only on large tables, where configurations climb row subsamples).
+    trials_by_fidelity: dict[str, int] = Field(default_factory=dict)
 
 
 class JobOut(BaseModel):

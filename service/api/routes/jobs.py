@@ -59,6 +59,7 @@ def to_out(job: Job) -> JobOut:
             trials_budget=effective["budget"]["trials"],
             best_score=job.best_score,
             best_trial_number=job.best_trial_number,
+            trials_by_fidelity=job.trials_by_fidelity or {},
             elapsed_seconds=round(max(elapsed, 0.0), 3),
             eta_seconds=eta_seconds(
                 status=job.status, elapsed=max(elapsed, 0.0),
