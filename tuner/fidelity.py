@@ -29,8 +29,10 @@ from __future__ import annotations
 
 import math
 from collections.abc import Iterable
+from typing import TYPE_CHECKING
 
-import numpy as np
+if TYPE_CHECKING:  # the rung names are read by the API, which loads no NumPy
+    import numpy as np
 
 __all__ = [
     "FIDELITY_FROM_ROWS", "REDUCTION", "RUNG_SHARES", "fidelity_rungs", "promoted",
@@ -70,6 +72,8 @@ def subsample_rank(n_rows: int, seed: int) -> np.ndarray:
     The rows of the rung with share ``f`` are those ranked below ``round(f * n_rows)``, so
     the subsamples are nested and the same for every trial of the search.
     """
+    import numpy as np
+
     # A stream of its own, so the subsample never shares draws with the folds' shuffles.
     order = np.random.default_rng([int(seed) % (2**32), 0x5A4D]).permutation(n_rows)
     rank = np.empty(n_rows, dtype="int64")
