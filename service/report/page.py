@@ -74,7 +74,8 @@ a{color:var(--accent)}
 @media print{
 @page{margin:14mm}
 body{background:#fff;font-size:11pt}main{max-width:none;padding:0}
-.card{border:none;border-radius:0;padding:0 0 8px;margin-bottom:10px;break-inside:avoid}
+.card{border:none;border-radius:0;padding:0 0 8px;margin-bottom:10px}
+#settings,.warnings,#state{break-inside:avoid}
 .live,.bar,#links{display:none}
 h2{break-after:avoid}.plots{display:block}
 figure{break-inside:avoid;margin-bottom:12px}figure img{max-width:16cm}
@@ -131,7 +132,7 @@ def _winner(model: dict[str, Any]) -> str:
         rows.append(f"<tr><td>{escape(name)}{mark}</td><td class='num'>{_num(iv['estimate'])}"
                     f"</td><td class='num'>{_num(iv['low'])} – {_num(iv['high'])}</td>"
                     f"<td class='num'>{_num(iv['std_error'], 2)}</td></tr>")
-    held = model["holdout"].get("rows")
+    held = model.get("holdout_rows")
     table = (
         "<table><thead><tr><th>hold-out metric</th><th class='num'>score</th>"
         "<th class='num'>95% interval</th><th class='num'>std. error</th></tr></thead>"

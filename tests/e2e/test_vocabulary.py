@@ -112,7 +112,9 @@ def multiclass(server: Server) -> dict:
         assert job["status"] == "succeeded", server.log()
         model = client.get(f"/v1/models/{job['model_id']}").json()
         html = client.get(f"/v1/jobs/{job['id']}/report").text
-    return {"job": job, "model": model, "html": html}
+        svgs = {name: client.get(f"/v1/jobs/{job['id']}/plots/{name}.svg").text
+                for name in re.findall(r'src="plots/(\w+)\.svg"', html)}
+    return {"job": job, "model": model, "html": html, "svgs": svgs}
 
 
 def test_report_page_says_rounds_and_counts_trees_per_class(multiclass: dict) -> None:
@@ -128,3 +130,13 @@ def test_report_page_says_rounds_and_counts_trees_per_class(multiclass: dict) ->
     plural = "s" if rounds != 1 else ""
     assert f"{rounds} boosting round{plural} ({rounds * 3} trees: one per class" in " ".join(
         text.split()), text
+
+
+def test_plots_say_rounds(multiclass: dict) -> None:
+    svgs = multiclass["svgs"]
+    assert {"history", "learning"} <= set(svgs)
+    for name, svg in svgs.items():
+        texts = " ".join(unescape(t) for t in re.findall(r"<text[^>]*>(.*?)</text>", svg, re.S))
+        labels = texts + " " + " ".join(re.findall(r"<!-- (.*?) -->", svg))
+        assert not re.search(r"\btrees\b", labels), (name, labels[:500])
+    assert "boosting round" in svgs["learning"]
