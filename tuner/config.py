@@ -10,9 +10,8 @@ import optuna
 from tuner.dataset import PreparedData
 from tuner.errors import ConfigError
 from tuner.losses import check_objective
-from tuner.selection import SELECTION_RULES
 from tuner.space import DEFAULT_SPACE, Choice, ParamRange, SearchSpace
-from vocabulary import FINAL_REFITS, PRUNERS
+from vocabulary import FINAL_REFITS, PRUNERS, SELECTION_RULES
 from vocabulary.job_fields import DEFAULT_TRIALS
 from vocabulary.job_fields import field as job_field
 

@@ -124,7 +124,8 @@ def open_study(
     if not create:
         return optuna.load_study(study_name=study_name, storage=storage, sampler=sampler,
                                  pruner=chosen_pruner)
-    study = optuna.create_study(storage=storage, study_name=study_name, direction=direction,
+    study = optuna.create_study(storage=storage, study_name=study_name,
+                                direction="maximize" if direction == "maximize" else "minimize",
                                 sampler=sampler, pruner=chosen_pruner, load_if_exists=True)
     if not study.get_trials(deepcopy=False):
         first = dict(LIGHTGBM_DEFAULTS if initial_params is None else initial_params)
