@@ -180,3 +180,17 @@ def upload_and_tune(client: httpx.Client, csv_bytes: bytes, target: str, trials:
                 raise RuntimeError(f"benchmark job {current['status']}: {current['error']}")
             return current
         time.sleep(0.2)
+
+
+def all_items(client: httpx.Client, path: str, **params: object) -> list[dict]:
+    """Every item of a list, walking its pages by their ``next`` cursor."""
+    items: list[dict] = []
+    query: dict[str, object] = {**params, "limit": 1000}
+    while True:
+        page = client.get(path, params=query)
+        page.raise_for_status()
+        body = page.json()
+        items.extend(body["items"])
+        if body["next"] is None:
+            return items
+        query["cursor"] = body["next"]

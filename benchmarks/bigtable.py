@@ -188,8 +188,10 @@ def run_size(n_rows: int, seed: int = 0) -> list[Row]:
     spec = current["spec"]
     gap_default, gap_tuned = default_loss - bayes, tuned_loss - bayes
     closed = 1 - gap_tuned / gap_default if gap_default > 0 else float("nan")
+    by_fidelity = current["progress"].get("trials_by_fidelity") or {}
     note = (f"{current['progress']['trials_completed']} complete, "
-            f"{current['progress']['trials_pruned']} pruned trials; folds scored "
+            f"{current['progress']['trials_pruned']} pruned trials (by fidelity reached: "
+            f"{', '.join(f'{k}: {v}' for k, v in by_fidelity.items()) or 'n/a'}); folds scored "
             f"{spec['cv']['folds']}; parallel trials {spec['max_parallel_trials']}, threads "
             f"{spec['num_threads']}")
     mib = 1024 ** 2

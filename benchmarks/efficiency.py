@@ -36,7 +36,15 @@ import optuna
 import pandas as pd
 
 import tuner
-from benchmarks._common import ROOT, Row, live_server, part_main, upload_and_tune, worker_process
+from benchmarks._common import (
+    ROOT,
+    Row,
+    all_items,
+    live_server,
+    part_main,
+    upload_and_tune,
+    worker_process,
+)
 from examples.demo_data import kilns
 from service.api.schemas import JobCreate
 from service.jobspec import RunPlan, build_run
@@ -131,8 +139,8 @@ def _service_job(client: httpx.Client, csv: bytes, trials: int, seed: int) -> di
     seconds = (datetime.fromisoformat(job["finished_at"])
                - datetime.fromisoformat(job["started_at"])).total_seconds()
     board = client.get(f"/v1/jobs/{job['id']}/leaderboard", params={"limit": 1}).json()
-    best = board["data"][0]
-    trials_rows = client.get(f"/v1/jobs/{job['id']}/trials").json()["data"]
+    best = board["items"][0]
+    trials_rows = all_items(client, f"/v1/jobs/{job['id']}/trials")
     pruned = sum(r["state"] == "pruned" for r in trials_rows)
     return {"seconds": seconds, "params": best["params"], "value": best["score"],
             "pruned": pruned}

@@ -17,7 +17,14 @@ import httpx
 import optuna
 
 import tuner
-from benchmarks._common import Row, live_server, part_main, upload_and_tune, worker_process
+from benchmarks._common import (
+    Row,
+    all_items,
+    live_server,
+    part_main,
+    upload_and_tune,
+    worker_process,
+)
 from benchmarks.data import wide_table
 from tuner.space import DEFAULT_SPACE, suggest
 
@@ -33,7 +40,7 @@ def _job_overhead(trials: int, n_rows: int) -> Row:
             with worker_process(home):
                 job = upload_and_tune(client, frame.to_csv(index=False).encode(), "target",
                                       trials=trials)
-            rows = client.get(f"/v1/jobs/{job['id']}/trials").json()["data"]
+            rows = all_items(client, f"/v1/jobs/{job['id']}/trials")
     train = sum(r.get("train_seconds") or 0.0 for r in rows)
     in_trials = sum(r.get("duration_seconds") or 0.0 for r in rows)
     wall = (datetime.fromisoformat(job["finished_at"])

@@ -10,7 +10,6 @@ Every failure leaves with a documented exit code and one line on stderr.
 from __future__ import annotations
 
 import argparse
-import json
 import sys
 from collections.abc import Callable
 from pathlib import Path
@@ -20,8 +19,9 @@ from urllib.parse import unquote
 from client import commands as jobs
 from client import http as client
 from client.http import Api, ClientError, fmt, table
+from client.job_options import add_job_options, read_columns, read_kind
 from client.settings import ClientSettings
-from vocabulary import DECLARED_KINDS
+from vocabulary import DECLARED_KINDS, JOB_STATUSES, UNSEEN_POLICIES
 
 Command = Callable[[argparse.Namespace], int]
 
@@ -43,7 +43,7 @@ def cmd_model(args: argparse.Namespace) -> int:
         f"task       {model['task']} on {model['target']!r}, metric {model['metric']}",
         f"rounds     {model['boosting_rounds']}",
         "cv         " + _scores(model["cv"]),
-        "hold-out   " + _scores(model["holdout"]),
+        "hold-out   " + _scores(model["holdout"]) + f"  ({model['holdout_rows']} rows)",
         "params     " + "  ".join(f"{k}={fmt(v)}" for k, v in sorted(model["params"].items())
                                   if k not in _PLUMBING),
         f"sha256     {model['sha256']}",
@@ -144,43 +144,6 @@ def _run(func: Command) -> Command:
     return run
 
 
-def _pair(text: str, *, last: bool = False) -> tuple[str, str]:
-    key, sep, value = text.rpartition("=") if last else text.partition("=")
-    if not sep or not key or not value:
-        raise argparse.ArgumentTypeError(f"expected NAME=VALUE, got {text!r}")
-    return key, value
-
-
-def _kind(text: str) -> tuple[str, str]:
-    column, kind = _pair(text, last=True)
-    if kind not in DECLARED_KINDS:
-        raise argparse.ArgumentTypeError(f"kind must be one of {', '.join(DECLARED_KINDS)}, "
-                                         f"got {kind!r}")
-    return column, kind
-
-
-def _direction(text: str) -> tuple[str, int]:
-    column, value = _pair(text, last=True)
-    if value not in ("1", "-1", "+1"):
-        raise argparse.ArgumentTypeError(f"direction must be 1 or -1, got {value!r}")
-    return column, int(value)
-
-
-def _fixed(text: str) -> tuple[str, Any]:
-    name, value = _pair(text)
-    try:
-        return name, json.loads(value)  # numbers, true/false, lists
-    except ValueError:
-        return name, value  # a bare word such as gbdt
-
-
-def _group(text: str) -> list[str]:
-    columns = [c.strip() for c in text.split(",") if c.strip()]
-    if not columns:
-        raise argparse.ArgumentTypeError("expected columns separated by commas")
-    return columns
-
-
 def _positive(kind: type) -> Callable[[str], Any]:
     def parse(text: str) -> Any:
         try:
@@ -217,7 +180,7 @@ def register(sub: Any) -> None:
             ("id", "json"))
     p.add_argument("file", help="the table (.csv, or .parquet)")
     p.add_argument("--name", help="dataset name (default: the file name without extension)")
-    p.add_argument("--kind", action="append", type=_kind, metavar="COLUMN=KIND",
+    p.add_argument("--kind", action="append", type=read_kind, metavar="COLUMN=KIND",
                    help=f"declare a column's kind ({', '.join(DECLARED_KINDS)}); categorical "
                         "and text keep their text exactly, e.g. store_id=categorical "
                         "(repeatable)")
@@ -229,37 +192,7 @@ def register(sub: Any) -> None:
     p = add("tune", jobs.cmd_tune, "queue a tuning job on a dataset; prints its job id",
             ("id", "json"))
     p.add_argument("dataset_id", help="the dataset to tune on (from 'grovekeeper upload')")
-    p.add_argument("--target", required=True, help="the column to predict")
-    p.add_argument("--trials", type=_positive(int), help="trial budget (server default 40)")
-    p.add_argument("--seconds", type=_positive(float), help="wall-clock budget in seconds")
-    p.add_argument("--task", choices=["binary", "multiclass", "regression"],
-                   help="default: inferred from the target")
-    p.add_argument("--metric", help="e.g. roc_auc, log_loss, rmse (default by task)")
-    p.add_argument("--folds", type=_positive(int), help="cross-validation folds (default 5)")
-    p.add_argument("--holdout", type=float, help="share of rows held out (default 0.2)")
-    p.add_argument("--exclude", action="append", metavar="COLUMN",
-                   help="leave this column out of the features (repeatable)")
-    p.add_argument("--seed", type=int, help="random seed (default 0)")
-    p.add_argument("--priority", type=int, help="higher runs first (default 0)")
-    p.add_argument("--kind", action="append", type=_kind, metavar="COLUMN=KIND",
-                   help="use a column as this kind (numeric, categorical, datetime, text, "
-                        "ignore), over the upload's and the inferred one (repeatable)")
-    p.add_argument("--monotone", action="append", type=_direction, metavar="COLUMN=1|-1",
-                   help="predictions never fall (1) or never rise (-1) as the column grows "
-                        "(repeatable)")
-    p.add_argument("--interaction", action="append", type=_group, metavar="COL,COL,...",
-                   help="a group of columns one tree may split on together; every tree "
-                        "stays within one group (repeatable)")
-    p.add_argument("--fixed", action="append", type=_fixed, metavar="PARAMETER=VALUE",
-                   help="hold a LightGBM parameter for every trial, e.g. max_bin=63 or "
-                        "is_unbalance=true (repeatable; README lists what is refused)")
-    p.add_argument("--max-rounds", type=_positive(int),
-                   help="boosting rounds at most per fit (default 1000)")
-    p.add_argument("--early-stopping-rounds", type=_positive(int),
-                   help="rounds without improvement before a fold stops (default 50)")
-    p.add_argument("--segment", action="append", metavar="COLUMN",
-                   help="report hold-out metrics by this column's values; it need not be a "
-                        "feature (repeatable)")
+    add_job_options(p)
     p.add_argument("--wait", action="store_true",
                    help="follow the job with a live progress line on stderr until it ends; "
                         "exit 1 unless it succeeded")
@@ -274,7 +207,7 @@ def register(sub: Any) -> None:
             "final status", ("status", "json"))
     p.add_argument("job_id")
     p.add_argument("--interval", type=_positive(float), default=0.5,
-                   help="seconds between progress checks (default 0.5)")
+                   help="seconds before looking again when the stream drops (default 0.5)")
 
     p = add("status", jobs.cmd_status, "show one job as 'key value' lines", ("text", "json"))
     p.add_argument("job_id")
@@ -283,8 +216,7 @@ def register(sub: Any) -> None:
     p.add_argument("job_id")
 
     p = add("jobs", jobs.cmd_jobs, "list jobs, newest first", ("table", "csv", "json"))
-    p.add_argument("--status", choices=["queued", "running", "succeeded", "failed",
-                                        "cancelled"], help="only jobs in this status")
+    p.add_argument("--status", choices=JOB_STATUSES, help="only jobs in this status")
     p.add_argument("--limit", type=_positive(int), default=50, help="at most this many")
 
     p = add("board", jobs.cmd_board, "show a job's leaderboard, best trial first",
@@ -313,13 +245,13 @@ def register(sub: Any) -> None:
     p.add_argument("model_id")
     p.add_argument("file", help="CSV with the feature columns ('-' reads stdin)")
     p.add_argument("-o", "--output", metavar="PATH", help="write the predictions here instead")
-    p.add_argument("--unseen", choices=["error", "missing"], default="error",
+    p.add_argument("--unseen", choices=UNSEEN_POLICIES, default="error",
                    help="categories not seen in training: refuse (default) or treat as "
                         "missing")
     p.add_argument("--explain", action="store_true",
                    help="add each row's TreeSHAP contributions (a bias column, then one "
                         "column per model input)")
-    p.add_argument("--keep", type=_group, metavar="COL,COL,...",
+    p.add_argument("--keep", type=read_columns, metavar="COL,COL,...",
                    help="columns of the input to repeat, exactly as sent, before the "
                         "predictions (e.g. your row ids)")
 

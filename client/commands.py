@@ -7,6 +7,7 @@ and notes go to stderr; failures raise ClientError with their exit code.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import sys
 import time
@@ -15,6 +16,7 @@ from typing import Any
 
 from client import http as client
 from client.http import Api, ClientError, fmt, table
+from client.job_options import job_request
 from client.progress import ProgressView
 from vocabulary import FINISHED_STATUSES as FINISHED
 
@@ -73,52 +75,20 @@ def cmd_upload(args: argparse.Namespace) -> int:
 
 def cmd_datasets(args: argparse.Namespace) -> int:
     with _api(args) as api:
-        page = api.get("/v1/datasets", params={"limit": args.limit})
         if args.format == "csv":
             sys.stdout.write(api.request("GET", "/v1/datasets", params={
-                "limit": args.limit, "format": "csv"}).text)
+                "limit": min(args.limit, 1000), "format": "csv"}).text)
             return client.OK
+        page = api.items("/v1/datasets", most=args.limit)
     if args.format == "json":
         _emit(page)
         return client.OK
     header = ["id", "name", "rows", "n_columns", "created_at"]
-    sys.stdout.write(table(header, [[d[h] for h in header] for d in page["data"]]))
+    sys.stdout.write(table(header, [[d[h] for h in header] for d in page["items"]]))
     return client.OK
 
 
 # -- jobs ------------------------------------------------------------------------
-
-
-def _job_request(args: argparse.Namespace) -> dict[str, Any]:
-    body: dict[str, Any] = {"dataset_id": args.dataset_id, "target": args.target}
-    budget = {k: v for k, v in (("trials", args.trials), ("seconds", args.seconds))
-              if v is not None}
-    if budget:
-        body["budget"] = budget
-    for key in ("task", "metric", "seed", "priority"):
-        if getattr(args, key) is not None:
-            body[key] = getattr(args, key)
-    if args.holdout is not None:
-        body["holdout_fraction"] = args.holdout
-    if args.folds is not None:
-        body["cv"] = {"folds": args.folds}
-    if args.exclude:
-        body["exclude"] = args.exclude
-    if args.kind:
-        body["column_kinds"] = dict(args.kind)
-    if args.monotone:
-        body["monotone"] = dict(args.monotone)
-    if args.interaction:
-        body["interaction_constraints"] = args.interaction
-    if args.fixed:
-        body["fixed"] = dict(args.fixed)
-    if args.max_rounds is not None:
-        body["max_rounds"] = args.max_rounds
-    if args.early_stopping_rounds is not None:
-        body["early_stopping_rounds"] = args.early_stopping_rounds
-    if args.segment:
-        body["segments"] = args.segment
-    return body
 
 
 def cmd_tune(args: argparse.Namespace) -> int:
@@ -127,7 +97,7 @@ def cmd_tune(args: argparse.Namespace) -> int:
         raise ClientError(client.USAGE, "--print model needs --wait: the model exists only "
                                         "once the job has succeeded")
     with _api(args) as api:
-        job = api.post("/v1/jobs", json=_job_request(args))
+        job = api.post("/v1/jobs", json=job_request(args))
         _note(f"queued {job['id']}: {job['task']} on {job['target']!r}, "
               f"metric {job['metric']}")
         warn(data=job.get("warnings"))
@@ -135,6 +105,8 @@ def cmd_tune(args: argparse.Namespace) -> int:
             _emit(job) if args.format == "json" else print(job["id"])
             return client.OK
         job = _follow(api, job["id"], args.interval)
+        # The worker reads the rows, so the data warnings are there once it has the job.
+        warn(data=job.get("warnings"))
         model = api.get(f"/v1/models/{job['model_id']}") if job.get("model_id") else None
     if model is not None:
         warn(winner=winner_warnings(model))
@@ -154,6 +126,8 @@ def cmd_watch(args: argparse.Namespace) -> int:
 
 
 def _follow(api: Api, job_id: str, interval: float) -> dict[str, Any]:
+    """Follow the job's stream (GET /v1/jobs/{id}/watch) until its final event; a
+    dropped stream is reopened after ``interval`` seconds."""
     view = ProgressView(sys.stderr)
     try:
         while True:
@@ -161,7 +135,18 @@ def _follow(api: Api, job_id: str, interval: float) -> dict[str, Any]:
             view.update(job)
             if job["status"] in FINISHED:
                 return job
-            time.sleep(interval)
+            # A refused (429) or dropped stream is no failure: look again after a pause.
+            with contextlib.suppress(ClientError):
+                for event, data in api.events(f"/v1/jobs/{job_id}/watch"):
+                    if event == "status":
+                        job = {**job, "status": data["status"], "progress": data["progress"]}
+                    elif event == "trial":
+                        job = api.get(f"/v1/jobs/{job_id}")  # the best score so far too
+                    view.update(job)
+                    if data.get("final"):
+                        break
+            if job["status"] not in FINISHED:
+                time.sleep(interval)
     except KeyboardInterrupt:
         view.close()
         raise ClientError(client.INTERRUPTED, f"stopped watching; {job_id} goes on "
@@ -194,6 +179,9 @@ def cmd_status(args: argparse.Namespace) -> int:
                                   "trials_budget", "best_score", "best_trial_number",
                                   "elapsed_seconds", "eta_seconds")),
             ("model_id", job["model_id"]), ("error", job["error"])]
+    # A job the worker found bad input in names the fields, as a refused request does.
+    rows += [(f"field {e['field']}", e["message"])
+             for e in (job.get("problem") or {}).get("errors", [])]
     width = max(len(k) for k, _ in rows)
     for key, value in rows:
         print(f"{key.ljust(width)}  {fmt(value) or '-'}")
@@ -213,10 +201,11 @@ def cmd_jobs(args: argparse.Namespace) -> int:
         params["status"] = args.status
     with _api(args) as api:
         if args.format == "csv":
-            sys.stdout.write(api.request("GET", "/v1/jobs",
-                                         params={**params, "format": "csv"}).text)
+            sys.stdout.write(api.request("GET", "/v1/jobs", params={
+                **params, "limit": min(args.limit, 1000), "format": "csv"}).text)
             return client.OK
-        page = api.get("/v1/jobs", params=params)
+        page = api.items("/v1/jobs", params={"status": args.status} if args.status else {},
+                         most=args.limit)
     if args.format == "json":
         _emit(page)
         return client.OK
@@ -224,7 +213,7 @@ def cmd_jobs(args: argparse.Namespace) -> int:
     rows = [[j["id"], j["status"], j["target"], j["metric"],
              j["progress"]["trials_completed"] + j["progress"]["trials_pruned"],
              j["progress"]["trials_budget"], j["progress"]["best_score"], j["model_id"]]
-            for j in page["data"]]
+            for j in page["items"]]
     sys.stdout.write(table(header, rows))
     return client.OK
 
@@ -236,16 +225,16 @@ def cmd_board(args: argparse.Namespace) -> int:
             sys.stdout.write(api.request("GET", f"/v1/jobs/{args.job_id}/leaderboard",
                                          params={**params, "format": "csv"}).text)
             return client.OK
-        board = api.get(f"/v1/jobs/{args.job_id}/leaderboard", params=params)
+        board = api.items(f"/v1/jobs/{args.job_id}/leaderboard", most=args.limit)
     if args.format == "json":
         _emit(board)
         return client.OK
-    names = sorted({n for r in board["data"] for n in r["params"]})
+    names = sorted({n for r in board["items"] for n in r["params"]})
     header = ["rank", "trial", board["metric"], "std", "rounds", *names]
     rows = [[r["rank"], r["number"], r["score"], r["score_std"], r["boosting_rounds"],
-             *(r["params"].get(n) for n in names)] for r in board["data"]]
+             *(r["params"].get(n) for n in names)] for r in board["items"]]
     sys.stdout.write(table(header, rows))
-    _note(f"{board['count']} finished trials, {board['direction']} {board['metric']}")
+    _note(f"{board['total']} finished trials, {board['direction']} {board['metric']}")
     return client.OK
 
 

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import json
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from typing import Any
 
 import httpx
@@ -80,6 +80,51 @@ class Api:
 
     def get(self, path: str, **kwargs: Any) -> Any:
         return self.request("GET", path, **kwargs).json()
+
+    def items(self, path: str, params: dict[str, Any] | None = None,
+              most: int | None = None) -> dict[str, Any]:
+        """Up to ``most`` items of a list (all without it), walking its pages with
+        ``next``: ``{"items", "total", "next"}`` as one page would be, plus any other
+        fields of the first page (a leaderboard's metric and direction)."""
+        params = dict(params or {})
+        first: dict[str, Any] | None = None
+        items: list[Any] = []
+        while True:
+            if most is not None:
+                params["limit"] = min(most - len(items), 1000)
+            page = self.get(path, params=params)
+            first = first or page
+            items.extend(page["items"])
+            if page["next"] is None or (most is not None and len(items) >= most):
+                return {**first, "items": items, "total": page["total"],
+                        "next": page["next"]}
+            params["cursor"] = page["next"]
+
+    def events(self, path: str, **kwargs: Any) -> Iterator[tuple[str, dict[str, Any]]]:
+        """A Server-Sent Events stream as (event, data) pairs, data parsed as JSON; ends
+        when the server ends the stream. Keep-alive comments are passed on as
+        ``("ping", {})`` so a caller can redraw between events."""
+        try:
+            with self.http.stream("GET", path, **kwargs) as response:
+                if response.status_code >= 400:
+                    response.read()
+                    code = SERVER_ERROR if response.status_code >= 500 else REFUSED
+                    raise ClientError(code, _reason(response))
+                event, data = "message", []
+                for line in response.iter_lines():
+                    if line.startswith(":"):
+                        yield "ping", {}
+                    elif line.startswith("event:"):
+                        event = line[6:].strip()
+                    elif line.startswith("data:"):
+                        data.append(line[5:].lstrip())
+                    elif not line and data:
+                        yield event, json.loads("\n".join(data))
+                        event, data = "message", []
+        except httpx.TimeoutException as exc:
+            raise ClientError(UNREACHABLE, f"{self.url} did not answer in time ({exc})") from exc
+        except httpx.TransportError as exc:
+            raise ClientError(UNREACHABLE, f"cannot reach {self.url}: {exc}") from exc
 
     def post(self, path: str, **kwargs: Any) -> Any:
         return self.request("POST", path, **kwargs).json()

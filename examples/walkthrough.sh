@@ -48,7 +48,7 @@ head -n 4 "$DIR/kilns.csv" | call --data-binary @- -H 'Content-Type: text/csv' \
   "$BASE/v1/models/$MODEL/predictions"
 
 echo "7. the job's story as Server-Sent Events (ends with the final status)"
-call -N "$BASE/v1/jobs/$JOB/events" | grep '^event:' | sort | uniq -c
+call -N "$BASE/v1/jobs/$JOB/watch" | grep '^event:' | sort | uniq -c
 
 echo "8. lists as CSV, and Prometheus metrics"
 call -H 'Accept: text/csv' "$BASE/v1/jobs?limit=3"

@@ -12,7 +12,7 @@ from sqlalchemy import event
 from sqlalchemy.engine import Engine
 from sqlalchemy.orm import Session, sessionmaker
 
-from tuner.journal import POSTGRES_CONNECT_ARGS, is_transient, with_reconnect
+from tuner.journal_db import POSTGRES_CONNECT_ARGS, is_transient, with_reconnect
 
 __all__ = ["is_transient", "with_reconnect", "describe_outage"]
 
@@ -82,7 +82,7 @@ def dispose_engines(*, close: bool = True) -> None:
             engine.dispose(close=close)
         _engines.clear()
         _makers.clear()
-    from tuner.journal import dispose_engines as dispose_journal
+    from tuner.journal_db import dispose_engines as dispose_journal
 
     dispose_journal(close=close)
 
@@ -108,13 +108,13 @@ def init_db(url: str, *, attempts: int = 5) -> None:
     (docs/measured-facts.md §2, start-up race); a retry after a short pause sees the tables
     the winner created.
     """
-    import tuner
     from service.migrations import migrate
+    from tuner.journal_db import create_tables  # the journal's tables, without Optuna
 
     for attempt in range(attempts):
         try:
             migrate(get_engine(url))
-            tuner.init_storage(url)
+            create_tables(url)
             return
         except Exception:
             if attempt == attempts - 1:

@@ -67,20 +67,20 @@ def _report(client: httpx.Client, job: dict[str, Any], sample: dict[str, Any]) -
     job_id = job["id"]
     board = client.get(f"/v1/jobs/{job_id}/leaderboard", params={"limit": 5}).json()
     print(f"\n  leaderboard ({board['metric']}, {board['direction']}), best "
-          f"{min(5, board['count'])} of "
-          f"{board['count']} finished trials:")
+          f"{min(5, board['total'])} of "
+          f"{board['total']} finished trials:")
     rows = [{"rank": r["rank"], "trial": r["number"], "score": r["score"],
              "std": r["score_std"], "rounds": r["boosting_rounds"],
              "leaves": r["params"].get("num_leaves"),
-             "learning_rate": r["params"].get("learning_rate")} for r in board["data"]]
+             "learning_rate": r["params"].get("learning_rate")} for r in board["items"]]
     print_table(rows, ["rank", "trial", "score", "std", "rounds", "leaves", "learning_rate"])
     model = client.get(f"/v1/models/{job['model_id']}").json()
     cv = model["cv"]
-    holdout = {k: v for k, v in model["holdout"].items() if isinstance(v, int | float)}
+    holdout = model["holdout"]  # metric name -> score; the row count sits beside it
     spread = f" ± {cv['std']:.4f}" if cv.get("std") is not None else ""
     print(f"  winner: model {model['id']}, trial {model['trial_number']}, "
           f"{model['boosting_rounds']} rounds, CV {cv['metric']} {cv['mean']:.4f}{spread}")
-    print("  hold-out (rows the search never saw): "
+    print(f"  hold-out ({model['holdout_rows']} rows the search never saw): "
           + ", ".join(f"{k} {v:.4g}" for k, v in holdout.items()))
     evaluation = (model.get("details") or {}).get("evaluation") or {}
     for warning in evaluation.get("warnings") or []:

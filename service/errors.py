@@ -78,6 +78,27 @@ class InsufficientStorage(ServiceError):
     title = "Insufficient storage"
 
 
+#: The problem documents' ``type`` is this plus their ``code``.
+TYPE_BASE = "https://grovekeeper.invalid/problems/"
+
+
+def problem_body(status: int, title: str, detail: str, *, code: str,
+                 errors: list[dict[str, Any]] | None = None) -> dict[str, Any]:
+    """An RFC 9457 problem document, as the API answers it and as a failed job keeps it."""
+    body: dict[str, Any] = {"type": TYPE_BASE + code, "title": title, "status": status,
+                            "detail": detail, "code": code}
+    if errors:
+        body["errors"] = errors
+    return body
+
+
+def input_problem(exc: BaseException) -> dict[str, Any]:
+    """The 422 problem document of a bad-input error of the tuner (a ValueError with
+    ``.errors``): the API answers it at submission, a job the worker finds bad keeps it."""
+    errors = list(getattr(exc, "errors", None) or [])
+    return problem_body(422, "Invalid input", str(exc), code="invalid_input", errors=errors)
+
+
 def describe_failure(exc: BaseException) -> str:
     """What went wrong, in words any reader of the job may see.
 

@@ -32,7 +32,7 @@ from service.db import get_engine, is_sqlite, session_scope
 from service.settings import Settings
 from service.storage import ArtifactStore
 from service.tables import Dataset, Job, JobStatus, Model, Trial, utcnow
-from tuner.journal import BEATS, JOURNAL
+from tuner.journal_db import BEATS, JOURNAL
 
 log = logging.getLogger("grovekeeper.housekeeping")
 _FINISHED = [s.value for s in JobStatus if s.is_finished()]

@@ -8,7 +8,7 @@ span fields. Pydantic only: the API imports it without the tuner's libraries.
 from __future__ import annotations
 
 from collections.abc import Mapping
-from typing import TYPE_CHECKING, Annotated, Any, Literal
+from typing import TYPE_CHECKING, Annotated, Any, Literal, TypeAlias
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
@@ -32,7 +32,13 @@ from vocabulary.job_fields import (
 from vocabulary.job_fields import field as job_field
 
 if TYPE_CHECKING:  # the checker sees strings; pydantic sees the vocabulary's choices
-    Task = Strategy = Pruner = Selection = FinalRefit = PromoteRule = DeclaredKind = str
+    Task: TypeAlias = str
+    Strategy: TypeAlias = str
+    Pruner: TypeAlias = str
+    Selection: TypeAlias = str
+    FinalRefit: TypeAlias = str
+    PromoteRule: TypeAlias = str
+    DeclaredKind: TypeAlias = str
 else:
     Task, Strategy = Literal[TASKS], Literal[CV_STRATEGIES]
     Pruner, Selection = Literal[PRUNERS], Literal[SELECTION_RULES]
@@ -145,7 +151,7 @@ class JobCreate(Strict):
     max_parallel_trials: int | None = spec("max_parallel_trials")
     # Divided among the running trials (at least one each, never more than the cores).
     num_threads: int | None = spec("num_threads")
-    # One trial at a time in one worker (service/jobspec.py check_reproducible).
+    # One trial at a time in one worker (service/admission.py check_reproducible).
     reproducible: bool = spec("reproducible")
     selection: Selection = spec("selection")
     final_refit: FinalRefit = spec("final_refit")

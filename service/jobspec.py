@@ -1,8 +1,9 @@
 """Turns a job request plus its dataset into the tuner's inputs.
 
-The API runs this once at submission so that every problem with the request is a
-422 before anything is queued; the worker runs it again, deterministically, to get
-the same data, split and search configuration.
+The worker runs this when it takes a job (the API only admits the request from the
+dataset's profile: service/admission.py); it is deterministic, so every worker on a job,
+and a resumed job, get the same data, split and search configuration. Its bad-input
+errors fail the job with the problem document the API would have answered.
 """
 
 from __future__ import annotations
@@ -19,19 +20,17 @@ import optuna
 import pandas as pd
 
 import tuner
+from service.admission import check_reproducible, prefixed
 from service.jobrequest import JobRequest
+from tuner import fidelity
 from tuner.columns import date_part_name
 from tuner.config import check_config
 from tuner.controls import check_fixed, constraint_params, split_fixed, try_params
 from tuner.datachecks import job_warnings
-from tuner.errors import ConfigError
 from tuner.losses import default_metric_for, resolve_objective
 from tuner.metrics import default_metric, get_metric
 from tuner.space import DEFAULT_SPACE, Fixed, effective_space, merge_overrides
 from tuner.validation import ValidationPlan, plan_validation
-
-#: How many of an earlier job's best trials a warm start enqueues.
-WARM_START_TRIALS = 3
 
 
 @dataclass(frozen=True)
@@ -44,35 +43,11 @@ class RunPlan:
     request: JobRequest
 
 
-def _prefixed(errors: list[dict[str, Any]], prefix: str) -> list[dict[str, Any]]:
-    return [{**e, "field": f"{prefix}{e['field']}"} for e in errors]
-
-
 def versions() -> dict[str, str]:
     """Library versions that decide what a search and its model come out as."""
     return {"lightgbm": lightgbm.__version__, "optuna": optuna.__version__,
             "numpy": numpy.__version__, "pandas": pd.__version__,
             "python": platform.python_version()}
-
-
-def check_reproducible(request: JobRequest) -> None:
-    """A reproducible job runs one trial at a time in one worker; anything else is a 422.
-
-    Parallel trials (threads or workers) finish in an order that depends on timing, and
-    the sampler proposes each new trial from the ones finished so far, so the trials
-    themselves would differ from run to run.
-    """
-    if not request.reproducible:
-        return
-    errors = []
-    if (request.max_parallel_trials or 1) > 1:
-        errors.append({"field": "max_parallel_trials", "message": "a reproducible job runs "
-                       "one trial at a time; leave max_parallel_trials at 1"})
-    if request.max_workers > 1:
-        errors.append({"field": "max_workers", "message": "a reproducible job runs in one "
-                       "worker; leave max_workers at 1"})
-    if errors:
-        raise ConfigError(f"reproducible: {errors[0]['message']}", errors)
 
 
 def build_run(stored: JobRequest | Mapping[str, Any], frame: pd.DataFrame, *,
@@ -100,6 +75,10 @@ def build_run(stored: JobRequest | Mapping[str, Any], frame: pd.DataFrame, *,
         column_kinds=request.column_kinds,
         segments=request.segments,
     )
+    if request.decision is not None and data.task != "binary":
+        # Judged at submission when the profile told the task; here for the rest.
+        message = f"decision costs apply to binary tasks; this job is {data.task}"
+        raise tuner.ConfigError(message, [{"field": "decision", "message": message}])
     objective = request.objective
     metric_name = (request.metric or default_metric_for(data.task, objective)
                    or default_metric(data.task))
@@ -107,7 +86,7 @@ def build_run(stored: JobRequest | Mapping[str, Any], frame: pd.DataFrame, *,
     try:
         space = merge_overrides(DEFAULT_SPACE, request.search_space or {})
     except tuner.SearchSpaceError as exc:
-        exc.errors = _prefixed(exc.errors, "search_space.")
+        exc.errors = prefixed(exc.errors, "search_space.")
         raise
     # Fixed parameters the search could tune become fixed points of the space (so trials
     # list them); the rest, with the constraints, go to every trial and the final fit.
@@ -157,6 +136,9 @@ def build_run(stored: JobRequest | Mapping[str, Any], frame: pd.DataFrame, *,
         max_rounds=request.max_rounds,
         early_stopping_rounds=request.early_stopping_rounds,
         fixed_params=fixed,
+        # Looked up here, not frozen into SearchConfig's default, so one rule holds for
+        # the API's check and the worker's run (tests lower it to use small tables).
+        fidelity_from_rows=fidelity.FIDELITY_FROM_ROWS,
     )
     check_config(data, config)  # the checks run_search repeats, here so they are 422s
     if fixed or len(space) != len(DEFAULT_SPACE):
@@ -176,6 +158,7 @@ def build_run(stored: JobRequest | Mapping[str, Any], frame: pd.DataFrame, *,
         "time_column": cv.time_column,
     }
     effective = {
+        "prepared": True,  # by a worker, from the rows (service/admission.py: before)
         "target": data.target,
         "task": data.task,
         "metric": metric.name,
@@ -196,6 +179,10 @@ def build_run(stored: JobRequest | Mapping[str, Any], frame: pd.DataFrame, *,
         "seed": seed,
         "search_space": sampled,
         "pruner": config.pruner,
+        # Row subsamples sampled configurations climb (tuner/fidelity.py); [1.0]: none.
+        "fidelity": {"rungs": [round(r, 4) for r in tuner.fidelity_rungs(
+            len(plan.train_idx), config.fidelity_from_rows)],
+            "from_rows": config.fidelity_from_rows, "keep": f"1/{tuner.REDUCTION}"},
         "max_parallel_trials": config.max_parallel_trials,
         "num_threads": config.num_threads,
         "reproducible": reproducible,

@@ -25,6 +25,7 @@ from service.tables import (
     Trial,
     utcnow,
 )
+from tuner.fidelity import rung_key
 
 ACTIVE = (JobStatus.QUEUED.value, JobStatus.RUNNING.value)
 
@@ -50,10 +51,21 @@ def get_dataset(session: Session, dataset_id: str) -> Dataset:
     return dataset
 
 
-def list_datasets(session: Session, *, limit: int, offset: int) -> tuple[Sequence[Dataset], int]:
-    rows = session.scalars(
-        sa.select(Dataset).order_by(Dataset.created_at.desc()).limit(limit).offset(offset)
-    ).all()
+def _newest_first(query: Any, column: Any, id_column: Any,
+                  after: tuple[datetime, str] | None) -> Any:
+    """Newest first with the id as tie-break; ``after`` is the (created_at, id) of the
+    last row of the previous page (keyset paging)."""
+    if after is not None:
+        stamp, last_id = after
+        query = query.where(sa.or_(column < stamp, sa.and_(column == stamp, id_column < last_id)))
+    return query.order_by(column.desc(), id_column.desc())
+
+
+def list_datasets(session: Session, *, limit: int,
+                  after: tuple[datetime, str] | None = None) -> tuple[Sequence[Dataset], int]:
+    """Datasets newest first (ties by id), and how many there are in all."""
+    query = _newest_first(sa.select(Dataset), Dataset.created_at, Dataset.id, after)
+    rows = session.scalars(query.limit(limit)).all()
     count = session.scalar(sa.select(sa.func.count()).select_from(Dataset)) or 0
     return rows, count
 
@@ -87,14 +99,17 @@ def get_job(session: Session, job_id: str) -> Job:
 
 
 def list_jobs(
-    session: Session, *, status: str | None, limit: int, offset: int
+    session: Session, *, status: str | None, limit: int,
+    after: tuple[datetime, str] | None = None,
 ) -> tuple[Sequence[Job], int]:
+    """Jobs newest first (ties by id), and how many match ``status`` in all."""
     query = sa.select(Job)
     counter = sa.select(sa.func.count()).select_from(Job)
     if status is not None:
         query = query.where(Job.status == status)
         counter = counter.where(Job.status == status)
-    rows = session.scalars(query.order_by(Job.created_at.desc()).limit(limit).offset(offset)).all()
+    query = _newest_first(query, Job.created_at, Job.id, after)
+    rows = session.scalars(query.limit(limit)).all()
     return rows, session.scalar(counter) or 0
 
 
@@ -146,24 +161,59 @@ def upsert_trial(session: Session, *, job_id: str, record: dict[str, Any]) -> No
     session.flush()
 
 
-def list_trials(session: Session, *, job_id: str) -> Sequence[Trial]:
-    return session.scalars(
-        sa.select(Trial).where(Trial.job_id == job_id).order_by(Trial.number)
-    ).all()
+def list_trials(session: Session, *, job_id: str, after: int | None = None,
+                limit: int | None = None) -> Sequence[Trial]:
+    """A job's trials by number; ``after`` is the last number of the previous page."""
+    query = sa.select(Trial).where(Trial.job_id == job_id)
+    if after is not None:
+        query = query.where(Trial.number > after)
+    query = query.order_by(Trial.number)
+    if limit is not None:
+        query = query.limit(limit)
+    return session.scalars(query).all()
+
+
+def count_trials(session: Session, *, job_id: str) -> int:
+    return session.scalar(sa.select(sa.func.count()).select_from(Trial)
+                          .where(Trial.job_id == job_id)) or 0
 
 
 def leaderboard(
-    session: Session, *, job_id: str, direction: str, limit: int | None
+    session: Session, *, job_id: str, direction: str, limit: int | None,
+    after: tuple[float, int] | None = None,
 ) -> tuple[Sequence[Trial], int]:
-    order = Trial.score.desc() if direction == "maximize" else Trial.score.asc()
+    """Ranked trials, best first (ties by number), and how many are ranked in all.
+
+    ``after`` is the (score, number) of the last row of the previous page."""
+    maximize = direction == "maximize"
+    order = Trial.score.desc() if maximize else Trial.score.asc()
     # Only trials scored on all the search rows compete (a lower fidelity is no rival).
     where = (Trial.job_id == job_id, Trial.state == "complete", Trial.score.is_not(None),
              sa.or_(Trial.fidelity.is_(None), Trial.fidelity >= 1.0))
-    query = sa.select(Trial).where(*where).order_by(order, Trial.number)
+    query = sa.select(Trial).where(*where)
+    if after is not None:
+        score, number = after
+        worse = Trial.score < score if maximize else Trial.score > score
+        query = query.where(sa.or_(worse, sa.and_(Trial.score == score, Trial.number > number)))
+    query = query.order_by(order, Trial.number)
     if limit is not None:
         query = query.limit(limit)
     count = session.scalar(sa.select(sa.func.count()).select_from(Trial).where(*where)) or 0
     return session.scalars(query).all(), count
+
+
+def trials_by_fidelity(session: Session, *, job_id: str) -> dict[str, int]:
+    """Finished (complete or pruned) trials per fidelity reached, keyed by share."""
+    rows = session.execute(
+        sa.select(Trial.fidelity, sa.func.count())
+        .where(Trial.job_id == job_id, Trial.state.in_(("complete", "pruned")))
+        .group_by(Trial.fidelity)
+    ).all()
+    out: dict[str, int] = {}
+    for fidelity, n in sorted(rows, key=lambda r: (r[0] is None, r[0] or 0.0)):
+        key = rung_key(1.0 if fidelity is None else fidelity)
+        out[key] = out.get(key, 0) + int(n)
+    return out
 
 
 def trial_counts(session: Session, *, job_id: str) -> dict[str, int]:
@@ -233,12 +283,8 @@ def list_models(
     total = session.scalar(
         sa.select(sa.func.count()).select_from(Model).join(Job, Job.id == Model.job_id)
         .where(*where)) or 0
-    if after is not None:
-        stamp, last_id = after
-        base = base.where(sa.or_(Model.created_at < stamp,
-                                 sa.and_(Model.created_at == stamp, Model.id < last_id)))
-    rows = session.execute(
-        base.order_by(Model.created_at.desc(), Model.id.desc()).limit(limit)).all()
+    base = _newest_first(base, Model.created_at, Model.id, after)
+    rows = session.execute(base.limit(limit)).all()
     return [(m, d) for m, d in rows], total
 
 

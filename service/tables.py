@@ -62,6 +62,9 @@ class Job(Base):
     trials_completed: Mapped[int] = mapped_column(default=0)
     trials_pruned: Mapped[int] = mapped_column(default=0)
     trials_failed: Mapped[int] = mapped_column(default=0)
+    # Finished (complete or pruned) trials by the share of the search rows they reached,
+    # keyed like tuner.fidelity.rung_key ("0.1111", "0.3333", "1").
+    trials_by_fidelity: Mapped[dict[str, Any] | None] = mapped_column(sa.JSON)
     best_score: Mapped[float | None]
     best_trial_number: Mapped[int | None]
     cancel_requested: Mapped[bool] = mapped_column(default=False)
@@ -81,6 +84,9 @@ class Job(Base):
     # carry the epoch of its claim and are refused once another claim has raised it.
     epoch: Mapped[int] = mapped_column(default=0, server_default="0")
     warnings: Mapped[list[Any]] = mapped_column(default=list)
+    # A job the worker found bad input in: the RFC 9457 problem document the API would
+    # have answered at submission (service/admission.py judges the profile only).
+    problem: Mapped[dict[str, Any] | None] = mapped_column(sa.JSON)
     created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), default=utcnow)
     started_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
     heartbeat_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))

@@ -47,6 +47,7 @@ _EXPORTS: dict[str, tuple[str, str]] = {
     "PredictionInputError": ("tuner.errors", "PredictionInputError"),
     "Predictor": ("tuner.artifacts", "Predictor"),
     "PreparedData": ("tuner.dataset", "PreparedData"),
+    "REDUCTION": ("tuner.fidelity", "REDUCTION"),
     "REGRESSION_OBJECTIVES": ("vocabulary", "REGRESSION_OBJECTIVES"),
     "SELECTION_RULES": ("vocabulary", "SELECTION_RULES"),
     "STRATEGIES": ("vocabulary", "CV_STRATEGIES"),
@@ -65,6 +66,7 @@ _EXPORTS: dict[str, tuple[str, str]] = {
     "default_metric": ("tuner.metrics", "default_metric"),
     "effective_space": ("tuner.space", "effective_space"),
     "fit_final": ("tuner.model", "fit_final"),
+    "fidelity_rungs": ("tuner.fidelity", "fidelity_rungs"),
     "fit_into_space": ("tuner.space", "fit_into_space"),
     "get_metric": ("tuner.metrics", "get_metric"),
     "infer_task": ("tuner.dataset", "infer_task"),
@@ -109,6 +111,7 @@ if TYPE_CHECKING:  # the same names, for type checkers
         TunerError,
     )
     from tuner.evaluation.gain import gain_over_defaults
+    from tuner.fidelity import REDUCTION, fidelity_rungs
     from tuner.io.read import read_table
     from tuner.journal import JournalFenced
     from tuner.metrics import (

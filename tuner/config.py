@@ -3,14 +3,11 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import optuna
-
-from tuner.dataset import PreparedData
 from tuner.errors import ConfigError
-from tuner.losses import check_objective
-from tuner.space import DEFAULT_SPACE, Choice, ParamRange, SearchSpace
+from tuner.fidelity import FIDELITY_FROM_ROWS
+from tuner.space import DEFAULT_SPACE, SearchSpace, space_problems
 from vocabulary import FINAL_REFITS, PRUNERS, SELECTION_RULES
 from vocabulary.job_fields import DEFAULT_TRIALS
 from vocabulary.job_fields import field as job_field
@@ -21,7 +18,13 @@ def _default(name: str) -> Any:
     # and a library caller that leaves the setting out get the same search.
     return job_field(name).default
 
-__all__ = ["FINAL_REFITS", "PRUNERS", "SearchConfig", "check_config", "make_pruner"]
+if TYPE_CHECKING:  # plain Python at import: the API checks settings without these
+    import optuna
+
+    from tuner.dataset import PreparedData
+
+__all__ = ["FINAL_REFITS", "PRUNERS", "SearchConfig", "check_config", "make_pruner",
+           "space_problems"]
 
 
 @dataclass(frozen=True)
@@ -61,6 +64,9 @@ class SearchConfig:
     #: Enqueue the portfolio of strong configurations (tuner.portfolio) after trial 0
     #: and the warm-start configurations.
     portfolio: bool = _default("portfolio")
+    #: Search rows from which sampled configurations climb rungs of row subsamples
+    #: (successive halving, :mod:`tuner.fidelity`); ``None``: always all the rows.
+    fidelity_from_rows: int | None = FIDELITY_FROM_ROWS
 
 
 #: ``median``: prune a trial whose score so far (inside a fold at the boosting
@@ -79,6 +85,8 @@ def make_pruner(name: str, *, n_warmup_steps: int = 0,
     Raises:
         ConfigError: Unknown name (field ``pruner``).
     """
+    import optuna
+
     if name == "median":
         return optuna.pruners.MedianPruner(n_startup_trials=5, n_warmup_steps=n_warmup_steps)
     if name == "halving":
@@ -98,6 +106,8 @@ def check_config(data: PreparedData, config: SearchConfig) -> None:
     Raises:
         ConfigError: Task, budget, metric, objective, pruner, selection or refit problems.
     """
+    from tuner.losses import check_objective
+
     check_objective(config.task, config.metric, config.objective, data.y)
     errors = []
     if config.task != data.task:
@@ -118,6 +128,8 @@ def check_config(data: PreparedData, config: SearchConfig) -> None:
         errors.append({"field": "max_rounds", "message": "must be at least 1"})
     if config.early_stopping_rounds < 1:
         errors.append({"field": "early_stopping_rounds", "message": "must be at least 1"})
+    if config.fidelity_from_rows is not None and config.fidelity_from_rows < 1:
+        errors.append({"field": "fidelity_from_rows", "message": "must be at least 1"})
     if config.pruner not in PRUNERS:
         errors.append({"field": "pruner", "message": f"use one of {', '.join(PRUNERS)}"})
     if config.selection not in SELECTION_RULES:
@@ -126,22 +138,6 @@ def check_config(data: PreparedData, config: SearchConfig) -> None:
     if config.final_refit not in FINAL_REFITS:
         errors.append({"field": "final_refit",
                        "message": f"use one of {', '.join(FINAL_REFITS)}"})
-    if "scale_pos_weight" in config.space and "is_unbalance" in config.space:
-        errors.append({"field": "search_space.scale_pos_weight",
-                       "message": "use is_unbalance or scale_pos_weight, not both (LightGBM "
-                                  "refuses the pair)"})
-    for name in ("scale_pos_weight", "is_unbalance"):
-        if name in config.space and config.task != "binary":
-            errors.append({"field": f"search_space.{name}",
-                           "message": "weighs the positive class of a binary task only"})
-    alpha = config.space.get("alpha")
-    if config.objective == "quantile" and alpha is not None:
-        if isinstance(alpha, ParamRange):
-            bounds: tuple[Any, ...] = (alpha.low, alpha.high)
-        else:
-            bounds = alpha.values if isinstance(alpha, Choice) else (alpha.value,)
-        if not all(0 < float(a) < 1 for a in bounds):
-            errors.append({"field": "search_space.alpha",
-                           "message": "a quantile objective needs alpha within (0, 1)"})
+    errors += space_problems(config.task, config.objective, config.space)
     if errors:
         raise ConfigError(f"invalid search settings: {errors[0]['message']}", errors)

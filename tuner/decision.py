@@ -18,14 +18,11 @@ import numpy as np
 from tuner._lgb import make_dataset, predict
 from tuner.dataset import PreparedData
 from tuner.validation import ValidationPlan
+from vocabulary import DEFAULT_DECISION
 
 __all__ = ["DEFAULT_DECISION", "cost_ratio_threshold", "decide", "expected_cost",
            "out_of_fold", "threshold_from_costs"]
 
-DEFAULT_DECISION = {
-    "threshold": 0.5, "method": "default",
-    "note": "no costs given: class 1 when its probability exceeds 0.5",
-}
 
 
 def cost_ratio_threshold(false_positive_cost: float, false_negative_cost: float) -> float:

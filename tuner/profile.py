@@ -16,10 +16,14 @@ from tuner.columns import (
     kind_of_levels,
     string_levels,
     to_bool_float,
+    to_float,
 )
 
 # Rows needed before "every value is distinct" suggests an identifier rather than chance.
 _ID_MIN_ROWS = 20
+#: Distinct values a numeric column may have for the profile to list them (a target with
+#: at most this many may be classes: ``tuner.dataset.infer_task``).
+FEW_VALUES = 10
 
 
 @dataclass(frozen=True)
@@ -33,6 +37,12 @@ class ColumnProfile:
     dtype: str
     #: The kind the user declared for the column (``kind`` then follows it), else None.
     declared: str | None = None
+    #: Numeric columns: how many values are infinite.
+    infinite: int = 0
+    #: Numeric columns with at most :data:`FEW_VALUES` distinct values: the finite ones,
+    #: sorted. With ``infinite`` they let a job's target be judged from the profile alone
+    #: (``tuner.profiled``), without reading the table again.
+    values: list[float] | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """Return the profile as a JSON-ready dict."""
@@ -60,8 +70,21 @@ def profile_column(s: pd.Series) -> ColumnProfile:
         distinct = _distinct_floats(s.to_numpy())
     else:
         distinct = int(s.nunique(dropna=True))
+    if kind != "numeric":
+        return ColumnProfile(name=str(s.name), kind=kind, missing=missing, distinct=distinct,
+                             dtype=str(s.dtype))
+    if ptypes.is_integer_dtype(s.dtype):
+        infinite = 0
+    else:  # a float column is read in place; anything else converted once
+        numbers = s.to_numpy() if s.dtype == np.float64 else to_float(s)[0]
+        infinite = int(np.isinf(numbers).sum())
+    values = None
+    if distinct <= FEW_VALUES:
+        numbers = to_float(s)[0]
+        # Finite ones only (``infinite`` counts the others): the profile is stored as JSON.
+        values = sorted({float(v) for v in np.unique(numbers[np.isfinite(numbers)])})
     return ColumnProfile(name=str(s.name), kind=kind, missing=missing, distinct=distinct,
-                         dtype=str(s.dtype))
+                         dtype=str(s.dtype), infinite=infinite, values=values)
 
 
 def _distinct_floats(values: np.ndarray) -> int:

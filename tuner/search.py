@@ -12,6 +12,7 @@ from tuner._lgb import base_params
 from tuner.config import SearchConfig, check_config
 from tuner.dataset import PreparedData
 from tuner.errors import TunerError
+from tuner.fidelity import fidelity_rungs
 from tuner.journal import Fence
 from tuner.metrics import get_metric
 from tuner.objective import CVObjective, checkpoints, fold_steps, pruner_step
@@ -57,6 +58,11 @@ def run_search(
     same study at once (``join=True``), and the budget then holds for all of them
     together: a process stops once ``n_trials`` trials of the study are finished, so at
     most the trials other processes have in flight overshoot it.
+
+    From ``config.fidelity_from_rows`` search rows each sampled configuration first
+    climbs rungs of seeded row subsamples (:mod:`tuner.fidelity`); one that is not
+    promoted ends ``pruned`` at its rung's fidelity, so the budget still counts
+    configurations. Enqueued configurations run on all the rows from the start.
 
     Trials left RUNNING by a crashed process: without a heartbeat they are marked failed
     at the start, which assumes this is the only process on the study. With
@@ -116,6 +122,10 @@ def run_search(
     )
     if heartbeat_seconds is None and not join:
         fail_running(study)
+    rungs = fidelity_rungs(len(plan.train_idx), config.fidelity_from_rows)
+    # Enqueued configurations (trial 0, warm start, portfolio) start on all the rows.
+    enqueued = frozenset(t.number for t in study.get_trials(deepcopy=False)
+                         if "fixed_params" in t.system_attrs)
     cv_objective = CVObjective(
         data, plan, metric,
         params_base=base_params(data.task, num_class=len(data.classes or ()),
@@ -125,6 +135,7 @@ def run_search(
                                 objective=config.objective, fixed=config.fixed_params),
         space=config.space, max_rounds=config.max_rounds,
         early_stopping_rounds=config.early_stopping_rounds, should_stop=should_stop,
+        rungs=rungs, full_fidelity=enqueued, subsample_seed=config.seed,
     )
     started = taken = False
 

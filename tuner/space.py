@@ -5,11 +5,12 @@ from __future__ import annotations
 import math
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass
-from typing import Any
-
-import optuna
+from typing import TYPE_CHECKING, Any
 
 from tuner.errors import SearchSpaceError, summarise
+
+if TYPE_CHECKING:  # the space itself is plain Python: the API checks one without Optuna
+    import optuna
 
 
 @dataclass(frozen=True)
@@ -350,3 +351,28 @@ def suggest(trial: optuna.Trial, space: SearchSpace, *, n_train_rows: int) -> di
         else:
             params[name] = spec.value
     return params
+
+
+def space_problems(task: str, objective: str | None, space: SearchSpace
+                   ) -> list[dict[str, str]]:
+    """What the search space asks that the task or objective cannot take (no data needed:
+    the API checks these at submission, ``check_config`` again in the worker)."""
+    errors = []
+    if "scale_pos_weight" in space and "is_unbalance" in space:
+        errors.append({"field": "search_space.scale_pos_weight",
+                       "message": "use is_unbalance or scale_pos_weight, not both (LightGBM "
+                                  "refuses the pair)"})
+    for name in ("scale_pos_weight", "is_unbalance"):
+        if name in space and task != "binary":
+            errors.append({"field": f"search_space.{name}",
+                           "message": "weighs the positive class of a binary task only"})
+    alpha = space.get("alpha")
+    if objective == "quantile" and alpha is not None:
+        if isinstance(alpha, ParamRange):
+            bounds: tuple[Any, ...] = (alpha.low, alpha.high)
+        else:
+            bounds = alpha.values if isinstance(alpha, Choice) else (alpha.value,)
+        if not all(0 < float(a) < 1 for a in bounds):
+            errors.append({"field": "search_space.alpha",
+                           "message": "a quantile objective needs alpha within (0, 1)"})
+    return errors

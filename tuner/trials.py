@@ -33,8 +33,10 @@ class TrialRecord:
     train_seconds: float | None = None
     #: Standard error of ``score``: over folds, or by batch means on a single split.
     score_se: float | None = None
-    #: Largest share of the search rows the trial was scored on (1.0 = all).
+    #: Largest share of the search rows the trial reached (1.0 = all); see tuner.fidelity.
     fidelity: float | None = None
+    #: Mean validation score at each lower rung it finished, keyed by share (``"0.1111"``).
+    rung_scores: dict[str, float] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
         """Return the record as a JSON-ready dict."""
@@ -78,6 +80,7 @@ def record_from_frozen(ft: FrozenTrial) -> TrialRecord:
         train_seconds=attrs.get("train_seconds"),
         score_se=attrs.get("score_se") if complete else None,
         fidelity=attrs.get("fidelity", 1.0 if "params" in attrs or complete else None),
+        rung_scores=dict(attrs.get("rung_scores") or attrs.get("rungs") or {}),
     )
 
 

@@ -17,11 +17,12 @@ from sklearn.model_selection import GroupKFold, KFold, StratifiedKFold
 from tuner.dataset import PreparedData
 from tuner.errors import ConfigError, DatasetError
 from vocabulary import CV_STRATEGIES as STRATEGIES
+from vocabulary.job_fields import AUTO_FOLDS
 
 Fold = tuple[np.ndarray, np.ndarray]
 
 #: Folds of the partition the search rows are cut into (each fit on 80%, validated on 20%).
-PARTITION_FOLDS = 5
+PARTITION_FOLDS = AUTO_FOLDS
 #: Bound on a validation score's standard error, in units of the per-row standard deviation
 #: of the metric's loss: a mean over ``m`` validation rows has standard error
 #: ``sd / sqrt(m)``, so the bound holds once ``(1 / SE_BOUND) ** 2 = 40,000`` rows are

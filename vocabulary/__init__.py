@@ -52,6 +52,11 @@ METRICS: dict[str, tuple[str, tuple[str, ...]]] = {
     "poisson_deviance": ("minimize", ("regression",)),
 }
 METRIC_NAMES = tuple(METRICS)
+#: A binary model's decision when its job gave no costs.
+DEFAULT_DECISION = {
+    "threshold": 0.5, "method": "default",
+    "note": "no costs given: class 1 when its probability exceeds 0.5",
+}
 #: The metric a job ranks by when it names none, per task.
 DEFAULT_METRICS = {"binary": "roc_auc", "multiclass": "log_loss", "regression": "rmse"}
 #: Regression objectives whose own metric suits them better than the task default.
@@ -59,8 +64,8 @@ OBJECTIVE_METRICS = {"poisson": "poisson_deviance", "tweedie": "poisson_deviance
                      "quantile": "mae"}
 
 __all__ = [
-    "COLUMN_KINDS", "CV_STRATEGIES", "DECLARED_KINDS", "DEFAULT_METRICS", "FEATURE_KINDS",
-    "FINAL_REFITS", "FINISHED_STATUSES", "JOB_STATUSES", "METRICS", "METRIC_NAMES",
-    "OBJECTIVE_METRICS", "PROMOTE_RULES", "PRUNERS", "REGRESSION_OBJECTIVES", "SCOPES",
-    "SELECTION_RULES", "TASKS", "TRIAL_STATES", "UNSEEN_POLICIES",
+    "COLUMN_KINDS", "CV_STRATEGIES", "DECLARED_KINDS", "DEFAULT_DECISION", "DEFAULT_METRICS",
+    "FEATURE_KINDS", "FINAL_REFITS", "FINISHED_STATUSES", "JOB_STATUSES", "METRICS",
+    "METRIC_NAMES", "OBJECTIVE_METRICS", "PROMOTE_RULES", "PRUNERS", "REGRESSION_OBJECTIVES",
+    "SCOPES", "SELECTION_RULES", "TASKS", "TRIAL_STATES", "UNSEEN_POLICIES",
 ]

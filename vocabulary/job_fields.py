@@ -36,6 +36,9 @@ MAX_ENTRIES = 200  # search-space overrides
 MAX_ID = 64  # a dataset or job id
 #: A budget in trials when the request names neither trials nor seconds.
 DEFAULT_TRIALS = 40
+#: Folds the search rows are cut into when ``cv.folds`` is left out (as many of them are
+#: scored as the rows need: ``tuner.validation.validation_splits``).
+AUTO_FOLDS = 5
 
 
 class _Required:
@@ -82,7 +85,8 @@ class JobField:
     def shown_default(self) -> str:
         """The default as README and ``tune --help`` write it."""
         if self.required:
-            return "required"
+            group, _, _ = self.name.rpartition(".")
+            return f"required in {group}" if group else "required"
         if self.default_text is not None:
             return self.default_text
         return show(self.default)
@@ -120,7 +124,7 @@ _FIELDS = (
              default_text="no limit"),
     JobField("cv.folds", "integer", None, "cross-validation folds, all of them scored", 5,
              ("--folds",), minimum=2, maximum=20,
-             default_text="5, scoring as many as the rows need"),
+             default_text=f"{AUTO_FOLDS}, scoring as many as the rows need"),
     JobField("cv.strategy", "string", None, "how rows are cut into folds", "group",
              ("--cv-strategy",), choices=CV_STRATEGIES,
              default_text="stratified (classes) or kfold"),
@@ -193,16 +197,16 @@ _FIELDS = (
              "rounds without improvement before a fold stops", 100,
              ("--early-stopping-rounds",), minimum=1, maximum=10_000),
     JobField("decision.false_positive_cost", "number", REQUIRED,
-             "binary: the cost of a false positive (with decision)", 1.0,
+             "binary: the cost of one false positive, in any unit", 1.0,
              ("--false-positive-cost",), minimum=0, maximum=1e12),
     JobField("decision.false_negative_cost", "number", REQUIRED,
-             "binary: the cost of a false negative (with decision)", 5.0,
+             "binary: the cost of one false negative, in the same unit", 5.0,
              ("--false-negative-cost",), minimum=0, maximum=1e12),
     JobField("promote.channel", "string", REQUIRED,
              "move this channel to the job's model when it succeeds", "production",
              ("--promote",), max_length=100),
     JobField("promote.rule", "string", "if_better",
-             "when to move the channel (with promote.channel)", "always",
+             "when to move the channel: past the current model only, or always", "always",
              ("--promote-rule",), choices=PROMOTE_RULES),
 )
 
@@ -226,5 +230,6 @@ def defaults() -> dict[str, Any]:
     return {n: f.default for n, f in JOB_FIELDS.items() if not f.required}
 
 
-__all__ = ["DEFAULT_TRIALS", "GROUPS", "JOB_FIELDS", "MAX_COLUMNS", "MAX_ENTRIES", "MAX_ID",
-           "MAX_NAME", "REQUIRED", "TOP_LEVEL", "JobField", "defaults", "field", "show"]
+__all__ = ["AUTO_FOLDS", "DEFAULT_TRIALS", "GROUPS", "JOB_FIELDS", "MAX_COLUMNS",
+           "MAX_ENTRIES", "MAX_ID", "MAX_NAME", "REQUIRED", "TOP_LEVEL", "JobField",
+           "defaults", "field", "show"]

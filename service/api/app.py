@@ -22,13 +22,13 @@ from service.api.routes import (
     comparisons,
     datasets,
     docs,
-    events,
     health,
     jobs,
     links,
     metrics,
     models,
     scorings,
+    watch,
 )
 from service.api.routes import report as report_routes
 from service.auth import KeyChecker
@@ -84,7 +84,7 @@ def create_app(settings: Settings, *, init: bool = True, loopback_only: bool = T
                    scorings.router, comparisons.router):
         app.include_router(router, dependencies=[AuthDep])
     # Practitioner-facing additions: live events, bundles, /metrics, documented examples.
-    for router in (events.router, bundle.router):
+    for router in (watch.router, bundle.router):
         app.include_router(router, dependencies=[AuthDep])
     # Like /readyz, no key: a scraper needs no secret, and it must still answer (with
     # grovekeeper_database_up 0) when the database, which holds the keys, is down.

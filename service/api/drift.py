@@ -7,14 +7,15 @@ from __future__ import annotations
 import logging
 import threading
 from datetime import UTC, datetime
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import numpy as np
 from sqlalchemy.exc import IntegrityError
 
 from service import repository
 from service.db import session_scope
-from tuner.drift import bin_counts
+
+if TYPE_CHECKING:
+    import numpy as np
 
 log = logging.getLogger("grovekeeper.api")
 
@@ -31,11 +32,14 @@ class DriftRecorder:
 
     def observer(self, model_id: str, reference: dict[str, Any]) -> Any:
         """The callback a model's Predictor calls with each batch in input form."""
+        # Imported here: the API process loads numerical libraries only when it predicts.
+        from tuner.drift import bin_counts
+
         def observe(matrix: np.ndarray) -> None:
             counts = bin_counts(matrix, reference)
             key = (model_id, datetime.now(UTC).date().isoformat())
             with self._lock:
-                rows, total = self._buffer.get(key, (0, [np.zeros_like(c) for c in counts]))
+                rows, total = self._buffer.get(key, (0, [c * 0 for c in counts]))
                 self._buffer[key] = (rows + matrix.shape[0],
                                      [t + c for t, c in zip(total, counts, strict=True)])
                 if self._thread is None:

@@ -22,8 +22,6 @@ import tuner
 from service.api.multipart import read_form
 from service.errors import PayloadTooLarge, Unprocessable, UnsupportedMediaType
 from service.storage import sha256_file
-from tuner.columns import as_declared, declared_problem
-from tuner.datachecks import table_warnings
 from vocabulary import DECLARED_KINDS
 
 # Not text/plain: a browser page may send that cross-site without asking (a "simple"
@@ -147,6 +145,8 @@ def parse_kinds(text: str | None) -> dict[str, str]:
 
 def check_kinds(frame: Any, kinds: dict[str, str]) -> None:
     """Every declared column exists and its values fit its kind (422 naming each)."""
+    from tuner.columns import declared_problem  # pandas loads with the first upload
+
     errors = []
     for column, kind in kinds.items():
         if column not in frame.columns:
@@ -253,6 +253,8 @@ def _safe(stem: str) -> str:
 def profile(frame: Any, kinds: dict[str, str] | None = None
             ) -> tuple[list[tuner.ColumnProfile], list[str]]:
     """Column profiles, and the column and table warnings, of a parsed table."""
+    from tuner.datachecks import table_warnings  # NumPy loads with the first upload
+
     profiles, warnings = tuner.profile_table(frame, kinds)
     return profiles, warnings + table_warnings(frame)
 
@@ -266,6 +268,8 @@ def parse_and_store(received: Received, dest: Path) -> tuple[
     profiles, warnings and the sha256 of the written file. Bad tables raise
     tuner.DatasetError (422) before anything is written.
     """
+    from tuner.columns import as_declared  # pandas loads with the first upload
+
     text = [c for c, k in received.kinds.items() if k in ("categorical", "text")]
     frame = tuner.read_table(received.path, received.fmt, text_columns=text)
     if received.kinds:

@@ -5,10 +5,9 @@ from __future__ import annotations
 
 import csv
 import io
-from typing import Annotated, Any
+from typing import TYPE_CHECKING, Annotated, Any
 from urllib.parse import quote
 
-import pandas as pd
 from fastapi import Query, Request
 from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import Response
@@ -20,6 +19,9 @@ from service.api.tabular import frame_csv
 from service.errors import PayloadTooLarge, Unprocessable, UnsupportedMediaType
 from service.settings import Settings
 from service.storage import LocalStore
+
+if TYPE_CHECKING:  # pandas loads with the first prediction, not with the API
+    import pandas as pd
 
 PREDICT_DESCRIPTION = (
     "Missing feature columns and wrong types are a 422 naming row and column. Unseen "
@@ -70,6 +72,8 @@ def _kept_json(rows: list[dict[str, Any]], keep: list[str]) -> list[dict[str, An
 def _kept_csv(body: bytes, keep: list[str], n_rows: int) -> pd.DataFrame:
     """The kept columns read as text straight from the body, so ``007`` stays ``007``
     (the table reader would make it the number 7)."""
+    import pandas as pd
+
     reader = csv.reader(io.StringIO(body.decode("utf-8-sig"), newline=""))
     header = next(reader)
     absent = [k for k in keep if k not in header]
@@ -100,6 +104,8 @@ def _read_csv_rows(store: LocalStore, body: bytes, text_columns: list[str]) -> p
 
 
 def _contribution_columns(predictor: tuner.Predictor, features: pd.DataFrame) -> pd.DataFrame:
+    import pandas as pd
+
     rows = predictor.explain_frame(features)["contributions"]
     names = [*predictor.schema.names, "bias"]
     per_row = [[*r["features"].values(), r["bias"]] for r in rows]
@@ -114,6 +120,8 @@ def _contribution_columns(predictor: tuner.Predictor, features: pd.DataFrame) ->
 def _predict_csv(predictor: tuner.Predictor, store: LocalStore, body: bytes, unseen: str,
                  limit: int, explain: bool, keep: list[str],
                  headers: dict[str, str], threshold: float | None) -> Response:
+    import pandas as pd
+
     if not body.strip():
         raise Unprocessable("the CSV body is empty; send a header row and at least one row",
                             errors=[{"field": "body", "message": "empty"}])

@@ -14,7 +14,7 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 import tuner
 from service.db import describe_outage, is_transient
-from service.errors import ServiceError
+from service.errors import TYPE_BASE, ServiceError, input_problem, problem_body
 from service.storage import is_disk_full
 
 log = logging.getLogger("grovekeeper.api")
@@ -22,7 +22,6 @@ PROBLEM = "application/problem+json"
 # Seconds a client is asked to wait while the database is unreachable; a restart of
 # PostgreSQL takes a few seconds.
 RETRY_AFTER_SECONDS = 5
-TYPE_BASE = "https://grovekeeper.invalid/problems/"
 
 
 class ProblemResponse(JSONResponse):
@@ -43,15 +42,7 @@ def problem(
     errors: list[dict[str, Any]] | None = None,
     headers: dict[str, str] | None = None,
 ) -> JSONResponse:
-    body: dict[str, Any] = {
-        "type": TYPE_BASE + code,
-        "title": title,
-        "status": status,
-        "detail": detail,
-        "code": code,
-    }
-    if errors:
-        body["errors"] = errors
+    body = problem_body(status, title, detail, code=code, errors=errors)
     return ProblemResponse(body, status_code=status, media_type=PROBLEM, headers=headers)
 
 
@@ -69,8 +60,8 @@ async def _service_error(_: Request, exc: Exception) -> JSONResponse:
 
 
 async def _tuner_input_error(_: Request, exc: Exception) -> JSONResponse:
-    errors = list(getattr(exc, "errors", None) or [])
-    return problem(422, "Invalid input", str(exc), code="invalid_input", errors=errors)
+    body = input_problem(exc)  # the same document a job the worker finds bad keeps
+    return ProblemResponse(body, status_code=422, media_type=PROBLEM)
 
 
 def _entry(e: dict[str, Any]) -> dict[str, Any]:

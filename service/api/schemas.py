@@ -3,9 +3,11 @@
 from __future__ import annotations
 
 from datetime import UTC, datetime
-from typing import TYPE_CHECKING, Any, Generic, Literal, TypeVar
+from typing import TYPE_CHECKING, Any, Literal, TypeAlias
 
 from pydantic import BaseModel, ConfigDict, Field
+
+from service.api.paging import Page
 
 # The job request's shapes live in service/jobrequest.py (the worker reads them too);
 # re-exported here beside the other request shapes.
@@ -23,12 +25,14 @@ from service.jobrequest import (  # noqa: F401
     PromoteSpec,
     Strict,
 )
-from vocabulary import UNSEEN_POLICIES
+from vocabulary import JOB_STATUSES, UNSEEN_POLICIES
 
+# The vocabulary's choices, as types of query parameters and fields.
 if TYPE_CHECKING:
-    Unseen = str
+    Unseen: TypeAlias = str
+    StatusName: TypeAlias = str
 else:
-    Unseen = Literal[UNSEEN_POLICIES]
+    Unseen, StatusName = Literal[UNSEEN_POLICIES], Literal[JOB_STATUSES]
 
 
 def as_utc(value: datetime | None) -> datetime | None:
@@ -61,12 +65,8 @@ class DatasetOut(BaseModel):
     warnings: list[str]
 
 
-T = TypeVar("T")
-
-
-class Page(BaseModel, Generic[T]):
-    data: list[T]
-    count: int
+class DatasetList(Page[DatasetOut]):
+    pass
 
 
 class Progress(BaseModel):
@@ -79,6 +79,9 @@ class Progress(BaseModel):
     elapsed_seconds: float
     # Seconds left, from the pace of the trials so far (None until one has finished).
     eta_seconds: float | None = None
+    # Finished trials by the share of the search rows they reached ("1" = all; lower
+    # shares only on large tables, where configurations climb row subsamples).
+    trials_by_fidelity: dict[str, int] = Field(default_factory=dict)
 
 
 class JobOut(BaseModel):
@@ -96,6 +99,9 @@ class JobOut(BaseModel):
     # With a promote request, once the job has succeeded: what happened to the channel.
     promotion: dict[str, Any] | None = None
     error: str | None
+    # A job failed for bad input that only its rows showed: the problem document (RFC
+    # 9457, with the fields named) that submission would have answered.
+    problem: dict[str, Any] | None = None
     warnings: list[str]
     cancel_requested: bool
     attempts: int
@@ -103,6 +109,10 @@ class JobOut(BaseModel):
     created_at: datetime
     started_at: datetime | None
     finished_at: datetime | None
+
+
+class JobList(Page[JobOut]):
+    pass
 
 
 class TrialOut(BaseModel):
@@ -122,6 +132,10 @@ class TrialOut(BaseModel):
     fidelity: float | None = None
 
 
+class TrialList(Page[TrialOut]):
+    pass
+
+
 class LeaderboardRow(BaseModel):
     rank: int
     number: int
@@ -132,12 +146,12 @@ class LeaderboardRow(BaseModel):
     boosting_rounds: int | None
 
 
-class Leaderboard(BaseModel):
+class Leaderboard(Page[LeaderboardRow]):
+    """A page of the ranked trials; `total` counts every ranked trial."""
+
     job_id: str
     metric: str
     direction: str
-    data: list[LeaderboardRow]
-    count: int
 
 
 class ModelOut(BaseModel):
@@ -150,7 +164,13 @@ class ModelOut(BaseModel):
     boosting_rounds: int
     trial_number: int
     cv: dict[str, Any]
-    holdout: dict[str, Any]
+    # Hold-out scores only, metric name -> number; see holdout_rows and holdout_intervals.
+    holdout: dict[str, float | None]
+    # Rows set aside before the search and scored once (0 when none were).
+    holdout_rows: int = 0
+    # Per metric of holdout: {"estimate", "low", "high", "std_error", "level",
+    # "resamples"}, percentile bootstrap on the hold-out rows (empty without a hold-out).
+    holdout_intervals: dict[str, dict[str, Any]] = {}
     feature_schema: dict[str, Any]
     classes: list[Any] | None
     feature_importance: list[dict[str, Any]]
@@ -174,16 +194,14 @@ class ModelSummary(BaseModel):
     boosting_rounds: int
     trial_number: int
     cv: dict[str, Any]
-    holdout: dict[str, Any]
+    holdout: dict[str, float | None]
+    holdout_rows: int = 0
     sha256: str
     created_at: datetime
 
 
-class ModelList(BaseModel):
-    items: list[ModelSummary]
-    total: int
-    # Pass as ?cursor= for the next page; null on the last page.
-    next: str | None = None
+class ModelList(Page[ModelSummary]):
+    pass
 
 
 class PredictRequest(Strict):
@@ -246,10 +264,8 @@ class ChannelSummary(BaseModel):
     updated_at: datetime
 
 
-class ChannelList(BaseModel):
-    items: list[ChannelSummary]
-    total: int
-    next: str | None = None
+class ChannelList(Page[ChannelSummary]):
+    pass
 
 
 class ScoringCreate(Strict):
@@ -323,7 +339,5 @@ class AuditOut(BaseModel):
     detail: dict[str, Any] | None = None
 
 
-class AuditPage(BaseModel):
-    items: list[AuditOut]
-    total: int
-    next: str | None
+class AuditPage(Page[AuditOut]):
+    pass

@@ -17,12 +17,13 @@ import json
 import re
 from collections.abc import Collection, Iterable, Sequence
 from datetime import datetime
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import numpy as np
-import pandas as pd
 from fastapi import Request
 from fastapi.responses import Response
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 CSV = "text/csv; charset=utf-8"
 
@@ -65,6 +66,9 @@ def csv_response(header: Sequence[str], rows: Iterable[Sequence[Any]]) -> Respon
 def neutralised_frame(frame: pd.DataFrame, exact: Collection[str] = ()) -> pd.DataFrame:
     """``frame`` with formula-like headers and text cells neutralised, except the
     ``exact`` columns (name and values as the caller sent them)."""
+    import numpy as np  # loaded with the first frame, not with the API
+    import pandas as pd
+
     out = frame.rename(columns=lambda c: c if c in exact else neutralise(str(c)))
     for i, name in enumerate(frame.columns):
         column = frame.iloc[:, i]
@@ -103,6 +107,9 @@ def frame_csv(frame: pd.DataFrame, exact: Collection[str] = ()) -> str:
 
 
 def _cells(s: pd.Series) -> list[str] | None:
+    import numpy as np  # loaded with the first frame, not with the API
+    import pandas as pd
+
     dtype = s.dtype
     if dtype == np.float64:
         values = s.to_numpy()

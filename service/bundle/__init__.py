@@ -6,10 +6,9 @@ import io
 import json
 import zipfile
 from datetime import datetime
+from importlib.metadata import version
 from pathlib import Path
 from typing import Any
-
-import lightgbm as lgb
 
 from service.api.schemas import as_utc
 from service.tables import Dataset, Job, Model
@@ -55,14 +54,17 @@ def build_bundle(model: Model, job: Job, dataset: Dataset | None, model_text: by
             "id": dataset.id, "name": dataset.name, "rows": dataset.rows,
             "sha256": dataset.sha256, "source_format": dataset.source_format,
         },
-        "versions": {"lightgbm": lgb.__version__},
+        "versions": {"lightgbm": version("lightgbm")},
     }
     files = {
         "model.txt": model_text,
         "schema.json": _json({"task": model.task, "target": model.target,
                               "classes": model.classes, **model.feature_schema}),
         "metrics.json": _json({"metric": model.metric, "cv": model.cv,
-                               "holdout": model.holdout,
+                               # Scores only, the row count beside them (as in the API).
+                               "holdout": {k: v for k, v in (model.holdout or {}).items()
+                                           if k != "rows"},
+                               "holdout_rows": int((model.holdout or {}).get("rows") or 0),
                                "feature_importance": model.feature_importance}),
         "params.json": _json({"params": model.params, "boosting_rounds": model.boosting_rounds,
                               "trial_number": model.trial_number}),

@@ -132,7 +132,7 @@ def _winner(model: dict[str, Any]) -> str:
         rows.append(f"<tr><td>{escape(name)}{mark}</td><td class='num'>{_num(iv['estimate'])}"
                     f"</td><td class='num'>{_num(iv['low'])} – {_num(iv['high'])}</td>"
                     f"<td class='num'>{_num(iv['std_error'], 2)}</td></tr>")
-    held = model["holdout"].get("rows")
+    held = model.get("holdout_rows")
     table = (
         "<table><thead><tr><th>hold-out metric</th><th class='num'>score</th>"
         "<th class='num'>95% interval</th><th class='num'>std. error</th></tr></thead>"

@@ -65,7 +65,11 @@ def history(trials: Sequence[dict[str, Any]], *, metric: str, direction: str) ->
         raise PlotUnavailable("no trial has completed yet")
     pick = max if direction == "maximize" else min
     fig, ax = _figure()
-    pruned = [t for t in trials if t["state"] == "pruned" and t["fold_scores"]]
+    # Scores on a row subsample (tuner/fidelity.py) are not comparable with these: such
+    # trials are counted in the title, never drawn beside the full-rows scores.
+    low = [t for t in trials if t["state"] == "pruned" and (t.get("fidelity") or 1.0) < 1.0]
+    pruned = [t for t in trials if t["state"] == "pruned" and t["fold_scores"]
+              and (t.get("fidelity") or 1.0) >= 1.0]
     if pruned:
         ax.scatter([t["number"] for t in pruned],
                    [sum(t["fold_scores"]) / len(t["fold_scores"]) for t in pruned],
@@ -85,8 +89,9 @@ def history(trials: Sequence[dict[str, Any]], *, metric: str, direction: str) ->
     ax.set_xlabel("trial number")
     ax.set_ylabel(f"{metric} (mean over CV folds)")
     arrow = "higher is better" if direction == "maximize" else "lower is better"
-    ax.set_title(f"Search history: {len(complete)} complete, {len(pruned)} pruned ({arrow})",
-                 loc="left")
+    stopped = f", {len(low)} stopped on row subsamples" if low else ""
+    ax.set_title(f"Search history: {len(complete)} complete, {len(pruned)} pruned{stopped} "
+                 f"({arrow})", loc="left")
     ax.legend(frameon=False, fontsize=8)
     return _svg(fig)
 

@@ -107,18 +107,27 @@ def decide_safely(fitted: tuner.FittedModel, run: RunPlan, best: tuner.TrialReco
 
 
 def drift_reference(fitted: tuner.FittedModel, run: RunPlan) -> dict[str, Any] | None:
-    """The training rows' bins per feature (tuner/drift.py), kept with the model."""
+    """The training rows' bins per feature (tuner/drift.py), kept with the model.
+
+    Counted on a seeded sample of at most ``SAMPLE_ROWS`` training rows: PSI compares
+    shares, and a float copy of every training row would cost a large table's worker
+    more memory than the table itself. ``rows`` is the rows counted, ``sampled_from``
+    the training rows they were drawn from.
+    """
     from tuner._lgb import frame_matrix
+    from tuner.evaluation.sampling import bounded
 
     try:
-        matrix = frame_matrix(fitted.booster, run.data.X.iloc[run.plan.train_idx])
+        rows = bounded(run.plan.train_idx, seed=run.config.seed)
+        matrix = frame_matrix(fitted.booster, run.data.X.iloc[rows])
         if not isinstance(matrix, np.ndarray):
             return None
         # One entry per model column: a date's calendar parts are numbers each.
         columns = [(name, "numeric" if f.parts else f.kind, len(f.levels or ()))
                    for f in fitted.schema.features for name in f.model_names]
-        return tuner.drift.reference_bins(
+        reference = tuner.drift.reference_bins(
             matrix, [c[0] for c in columns], [c[1] for c in columns], [c[2] for c in columns])
+        return {**reference, "sampled_from": int(len(run.plan.train_idx))}
     except Exception:  # noqa: BLE001 - drift summaries describe; they never cost the model
         log.error("drift reference failed:\n%s", traceback.format_exc())
         return None

@@ -13,17 +13,18 @@ import dataclasses
 import logging
 import traceback
 from collections.abc import Callable
+from typing import Any
 
 import pandas as pd
 
 import tuner
 from service import comparing, queue, repository
 from service.db import is_transient, session_scope, with_reconnect
-from service.errors import describe_failure
+from service.errors import describe_failure, input_problem
 from service.jobspec import RunPlan
 from service.tables import JobStatus
 from service.worker import heartbeat
-from service.worker.context import WorkerContext, load_job
+from service.worker.context import LoadedJob, WorkerContext, load_job
 from service.worker.finalise import Fenced, JobFailed, check_claim, fit_and_store
 from service.worker.trials import record_trial, resync_trials
 
@@ -35,6 +36,7 @@ Outcome = tuple[JobStatus | None, str | None, str | None]
 def run_job(ctx: WorkerContext, job_id: str, epoch: int | None = None) -> None:
     flags, beat = heartbeat.start(ctx.url, job_id, ctx.worker_id, lead=True,
                                   interval=ctx.settings.heartbeat_seconds, epoch=epoch)
+    problem: dict[str, Any] | None = None
     try:
         status, error, model_id = _execute(ctx, job_id, flags, epoch)
     except (Fenced, tuner.JournalFenced) as exc:
@@ -47,6 +49,9 @@ def run_job(ctx: WorkerContext, job_id: str, epoch: int | None = None) -> None:
         status, error, model_id = JobStatus.FAILED, str(exc), None
     except (tuner.TunerError, ValueError) as exc:
         status, error, model_id = JobStatus.FAILED, str(exc), None
+        # Bad input the rows showed (the API judged the profile only): the job keeps the
+        # problem document the API would have answered.
+        problem = input_problem(exc) if getattr(exc, "errors", None) else None
         log.warning("job %s failed: %s", job_id, exc)
     except Exception as exc:  # noqa: BLE001 - any crash must end as a failed job
         if is_transient(exc):
@@ -73,6 +78,8 @@ def run_job(ctx: WorkerContext, job_id: str, epoch: int | None = None) -> None:
                 log.info("job %s handed back to the queue", job_id)
             elif queue.finish(session, job_id=job_id, worker_id=ctx.worker_id, status=status,
                               error=error, model_id=model_id, epoch=epoch):
+                if problem is not None:
+                    repository.get_job(session, job_id).problem = problem
                 log.info("job %s %s", job_id, status.value)
             else:
                 log.warning("job %s: refused the late %s status from %s (claim epoch %s "
@@ -86,26 +93,40 @@ def run_job(ctx: WorkerContext, job_id: str, epoch: int | None = None) -> None:
         log.error("job %s: database unreachable; the stale sweep will hand it on", job_id)
 
 
-def _record_parallelism(ctx: WorkerContext, job_id: str, config: tuner.SearchConfig) -> None:
-    """Write what this worker chose for the job (trials at once, threads) into its spec."""
+def record_plan(ctx: WorkerContext, job_id: str, run: RunPlan,
+                config: tuner.SearchConfig) -> None:
+    """Write the effective spec built from the rows over the provisional one the API
+    wrote (service/admission.py), with what this worker chose for the job (trials at
+    once, threads), and the data warnings."""
+    effective = dict(run.effective)
+    if run.effective.get("parallelism") == "machine":
+        effective.update(max_parallel_trials=config.max_parallel_trials,
+                         num_threads=config.num_threads)
+
     def write() -> None:
         with session_scope(ctx.url) as session:
             row = repository.get_job(session, job_id)
-            effective = {**row.spec["effective"],
-                         "max_parallel_trials": config.max_parallel_trials,
-                         "num_threads": config.num_threads}
             row.spec = {**row.spec, "effective": effective}
+            row.warnings = list(run.data.warnings)
 
-    with_reconnect(write, f"job {job_id}: recording its parallelism")
+    with_reconnect(write, f"job {job_id}: recording its plan")
+
+
+def prepare_job(ctx: WorkerContext, job_id: str) -> LoadedJob:
+    """Build the job's run from its rows and record it on the job (``record_plan``).
+
+    Raises the tuner's bad-input errors when the rows show a problem the profile did not.
+    """
+    job = with_reconnect(lambda: load_job(ctx, job_id), f"job {job_id}: loading")
+    record_plan(ctx, job_id, job.run, job.config)
+    return job
 
 
 def _execute(ctx: WorkerContext, job_id: str, flags: heartbeat.JobFlags,
              epoch: int | None) -> Outcome:
-    job = with_reconnect(lambda: load_job(ctx, job_id), f"job {job_id}: loading")
+    job = prepare_job(ctx, job_id)
     run, config = job.run, job.config
     resync_trials(ctx.url, job_id, job.study_name)
-    if run.effective.get("parallelism") == "machine":
-        _record_parallelism(ctx, job_id, config)
 
     def should_stop() -> bool:
         return flags.cancel or flags.lost or ctx.shutdown.is_set()

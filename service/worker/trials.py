@@ -73,6 +73,7 @@ def refresh_progress(session: Any, job_id: str) -> None:
     job.trials_completed = counts.get("complete", 0)
     job.trials_pruned = counts.get("pruned", 0)
     job.trials_failed = counts.get("failed", 0)
+    job.trials_by_fidelity = repository.trials_by_fidelity(session, job_id=job_id)
     top, _ = repository.leaderboard(
         session, job_id=job_id, direction=job.spec["effective"]["direction"], limit=1
     )

@@ -49,7 +49,8 @@ ROUTES = [
     ("GET", "/v1/comparisons/{comparison}", "read", 200),
     ("GET", "/v1/models/{model}/file", "read", 200),
     ("GET", "/v1/models/{model}/bundle", "read", 200),
-    ("GET", "/v1/jobs/{job}/events", "read", 200),
+    ("GET", "/v1/jobs/{job}/watch", "read", 200),
+    ("GET", "/v1/jobs/{job}/events", "read", 308),  # the old stream path, for one release
     ("GET", "/v1/jobs/{job}/report", "read", 200),
     ("GET", "/v1/jobs/{job}/plots/history.svg", "read", 200),
     # A POST that stores nothing: any key may mint a signed report link.

@@ -61,7 +61,7 @@ def test_progress_and_trials(server: Server, kiln_job: dict) -> None:
     assert progress["trials_completed"] + progress["trials_pruned"] == 6
     assert progress["elapsed_seconds"] > 0
     with server.client() as client:
-        trials = client.get(f"/v1/jobs/{job['id']}/trials").json()["data"]
+        trials = client.get(f"/v1/jobs/{job['id']}/trials").json()["items"]
     assert [t["number"] for t in trials] == list(range(len(trials)))
     complete = [t for t in trials if t["state"] == "complete"]
     assert len(complete) == progress["trials_completed"]
@@ -81,17 +81,17 @@ def test_leaderboard_json_and_csv(server: Server, kiln_job: dict) -> None:
         board = client.get(f"/v1/jobs/{job_id}/leaderboard").json()
         as_csv = client.get(f"/v1/jobs/{job_id}/leaderboard", headers={"Accept": "text/csv"})
         limited = client.get(f"/v1/jobs/{job_id}/leaderboard", params={"limit": 2}).json()
-    scores = [r["score"] for r in board["data"]]
+    scores = [r["score"] for r in board["items"]]
     assert scores == sorted(scores, reverse=True)  # ROC AUC: larger is better
-    assert [r["rank"] for r in board["data"]] == list(range(1, len(scores) + 1))
-    assert len(limited["data"]) == 2 and limited["data"] == board["data"][:2]
+    assert [r["rank"] for r in board["items"]] == list(range(1, len(scores) + 1))
+    assert len(limited["items"]) == 2 and limited["items"] == board["items"][:2]
     assert as_csv.headers["content-type"].startswith("text/csv")
     rows = list(csv.DictReader(io.StringIO(as_csv.text)))
-    assert [int(r["number"]) for r in rows] == [r["number"] for r in board["data"]]
+    assert [int(r["number"]) for r in rows] == [r["number"] for r in board["items"]]
     assert float(rows[0]["score"]) == pytest.approx(scores[0])
     assert "num_leaves" in rows[0]
-    assert all(r["score_se"] > 0 for r in board["data"])
-    assert float(rows[0]["score_se"]) == pytest.approx(board["data"][0]["score_se"])
+    assert all(r["score_se"] > 0 for r in board["items"])
+    assert float(rows[0]["score_se"]) == pytest.approx(board["items"][0]["score_se"])
 
 
 def test_served_predictions_match_lightgbm(server: Server, kiln_job: dict, tmp_path) -> None:
@@ -150,7 +150,7 @@ def test_holdout_scores_match_sklearn(server: Server, kiln_job: dict) -> None:
     data = tuner.prepare(frame, target="defect")
     plan = tuner.plan_validation(data, strategy=job["spec"]["cv"]["strategy"], n_folds=5,
                                  holdout_fraction=0.2, seed=5)
-    assert model["holdout"]["rows"] == len(plan.holdout_idx) == job["spec"]["rows"]["holdout"]
+    assert model["holdout_rows"] == len(plan.holdout_idx) == job["spec"]["rows"]["holdout"]
     booster = lgb.Booster(model_str=text)
     proba = booster.predict(data.X.iloc[plan.holdout_idx])
     y = data.y[plan.holdout_idx]
@@ -172,7 +172,7 @@ def test_regression_job_and_rmse_matches_sklearn(server: Server) -> None:
         text = client.get(f"/v1/models/{job['model_id']}/file").text
         board = client.get(f"/v1/jobs/{job['id']}/leaderboard").json()
     assert job["task"] == "regression" and job["metric"] == "rmse"
-    scores = [r["score"] for r in board["data"]]
+    scores = [r["score"] for r in board["items"]]
     assert scores == sorted(scores)  # RMSE: smaller is better
     data = tuner.prepare(frame, target="yield_kg_per_m2")
     plan = tuner.plan_validation(data, strategy="kfold", n_folds=5, holdout_fraction=0.2,

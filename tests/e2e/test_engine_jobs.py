@@ -23,7 +23,7 @@ def _run(client, dataset_id: str, **extra) -> dict:
 
 
 def _trials(client, job: dict) -> list[dict]:
-    return client.get(f"/v1/jobs/{job['id']}/trials").json()["data"]
+    return client.get(f"/v1/jobs/{job['id']}/trials").json()["items"]
 
 
 @pytest.fixture(scope="module")
@@ -89,12 +89,12 @@ def test_warm_start_refit_all_and_parallel_trials(server: Server, jobs: dict) ->
         model = client.get(f"/v1/models/{job['model_id']}").json()
     warm = job["spec"]["warm_start"]
     assert warm["job_id"] == source["id"]
-    assert warm["trials"] == [r["number"] for r in board["data"]]
+    assert warm["trials"] == [r["number"] for r in board["items"]]
     enqueued = [t["params"] for t in trials if t["number"] in (1, 2, 3)]
-    for params in (r["params"] for r in board["data"]):
+    for params in (r["params"] for r in board["items"]):
         if params != trials[0]["params"]:  # an earlier winner equal to trial 0 is skipped
             assert params in enqueued
     assert job["progress"]["trials_completed"] + job["progress"]["trials_pruned"] == 5
     refit = model["details"]["final_refit"]
     assert refit["rows"] == "all" and refit["served_is_scored"] is False
-    assert refit["fit_rows"] == 300 and model["holdout"]["rows"] == 60
+    assert refit["fit_rows"] == 300 and model["holdout_rows"] == 60

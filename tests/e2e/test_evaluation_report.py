@@ -72,7 +72,7 @@ def test_model_reports_intervals_and_diagnostics(jobs: dict) -> None:
     model = jobs["kiln_model"]
     ev = model["details"]["evaluation"]
     intervals = ev["holdout_intervals"]
-    assert set(intervals) == set(model["holdout"]) - {"rows"}
+    assert set(intervals) == set(model["holdout"])
     for name, iv in intervals.items():
         assert iv["low"] <= model["holdout"][name] <= iv["high"]
         assert iv["estimate"] == pytest.approx(model["holdout"][name])
@@ -81,7 +81,7 @@ def test_model_reports_intervals_and_diagnostics(jobs: dict) -> None:
     assert gap["cv_mean"] == pytest.approx(model["cv"]["mean"])
     assert gap["worse_by"] == pytest.approx(model["cv"]["mean"] - model["holdout"]["roc_auc"])
     curve = ev["learning_curve"]
-    best_trial = next(t for t in jobs["kiln_trials"]["data"]
+    best_trial = next(t for t in jobs["kiln_trials"]["items"]
                       if t["number"] == model["trial_number"])
     # The curve refits fold 0 exactly as the search did, so it stops at the same round.
     assert curve["best_round"] == best_trial["best_iterations"][0]
@@ -193,7 +193,7 @@ def _bars(root: ET.Element) -> int:
 def test_plots_are_svg_with_one_mark_per_datum(server: Server, jobs: dict) -> None:
     job, model = jobs["kiln"], jobs["kiln_model"]
     ev = model["details"]["evaluation"]
-    trials = jobs["kiln_trials"]["data"]
+    trials = jobs["kiln_trials"]["items"]
     complete = [t for t in trials if t["state"] == "complete"]
 
     root = _plot(server, job["id"], "history")
@@ -244,7 +244,7 @@ def test_report_page_is_self_contained(server: Server, jobs: dict) -> None:
     assert "<script" not in html
     assert 'http-equiv="refresh"' not in html  # finished: nothing left to watch
     body = html.split("<table id='leaderboard'>")[1].split("</table>")[0]
-    assert body.count("<tr") - 1 == min(20, board["count"])
+    assert body.count("<tr") - 1 == min(20, board["total"])
     for name in ("history", "hyperparameters", "features", "learning"):
         assert f'src="plots/{name}.svg"' in html
     assert "calibration.svg" not in html  # regression

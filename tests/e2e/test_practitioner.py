@@ -62,7 +62,7 @@ def metric_values(text: str) -> dict[tuple[str, tuple[tuple[str, str], ...]], fl
 
 def sse_events(client: httpx.Client, job_id: str) -> list[tuple[str, dict]]:
     events, kind, data = [], None, []
-    with client.stream("GET", f"/v1/jobs/{job_id}/events", params={"poll": 0.2},
+    with client.stream("GET", f"/v1/jobs/{job_id}/watch", params={"poll": 0.2},
                        timeout=300) as response:
         assert response.status_code == 200
         assert response.headers["content-type"].startswith("text/event-stream")
@@ -113,13 +113,13 @@ def test_board_table_and_csv_parse(server: Server, cli_job: dict) -> None:
     assert shown.returncode == 0, shown.stderr
     rows = [ln.split() for ln in shown.stdout.splitlines()]
     assert rows[0][:5] == ["rank", "trial", "roc_auc", "std", "rounds"]
-    assert len(rows) - 1 == board["count"]
-    assert [int(r[1]) for r in rows[1:]] == [r["number"] for r in board["data"]]
+    assert len(rows) - 1 == board["total"]
+    assert [int(r[1]) for r in rows[1:]] == [r["number"] for r in board["items"]]
     widths = {len(ln) for ln in shown.stdout.splitlines()[1:]}
     assert len(widths) == 1  # aligned: every row has the same width
     as_csv = gk(server, "board", job_id, "--format", "csv", "--limit", "2")
     parsed = list(csv.DictReader(io.StringIO(as_csv.stdout)))
-    assert [int(r["number"]) for r in parsed] == [r["number"] for r in board["data"][:2]]
+    assert [int(r["number"]) for r in parsed] == [r["number"] for r in board["items"][:2]]
 
 
 def test_status_model_and_predict(server: Server, cli_job: dict, table: Path,
@@ -167,7 +167,7 @@ def test_sse_metrics_and_logs_follow_a_real_job(server: Server, table: Path) -> 
         job = client.post("/v1/jobs", json={"dataset_id": dataset["id"], "target": "defect",
                                             "budget": {"trials": TRIALS}, "seed": 9}).json()
         events = sse_events(client, job["id"])  # opened at once: it follows the live job
-        trials = client.get(f"/v1/jobs/{job['id']}/trials").json()["data"]
+        trials = client.get(f"/v1/jobs/{job['id']}/trials").json()["items"]
         final = client.get(f"/v1/jobs/{job['id']}").json()
         client.post(f"/v1/models/{final['model_id']}/predictions",
                     content=table.read_bytes(), headers={"Content-Type": "text/csv"})

@@ -40,7 +40,7 @@ def _upload(client, frame: pd.DataFrame, **params) -> dict:
 def test_bad_upload_kinds_are_422s_and_store_nothing(server: Server) -> None:
     body = _stores().to_csv(index=False).encode()
     with server.client() as client:
-        before = client.get("/v1/datasets").json()["count"]
+        before = client.get("/v1/datasets").json()["total"]
         for kinds, field in (("store_id:colour", "kinds.store_id"),
                              ("nope:numeric", "kinds.nope"),
                              ("note:numeric", "kinds.note"),
@@ -49,7 +49,7 @@ def test_bad_upload_kinds_are_422s_and_store_nothing(server: Server) -> None:
                                    headers={"Content-Type": "text/csv"})
             assert response.status_code == 422, response.text
             assert field in [e["field"] for e in response.json()["errors"]]
-        assert client.get("/v1/datasets").json()["count"] == before
+        assert client.get("/v1/datasets").json()["total"] == before
 
 
 def test_multipart_kinds_field_is_the_same_map(server: Server) -> None:
@@ -97,7 +97,7 @@ def test_declared_store_ids_train_and_predict_as_categories(server: Server) -> N
     assert plots["residuals"].status_code == 200
     assert plots["gains"].status_code == 404  # binary only
     regression = model["details"]["evaluation"]["outcomes"]["regression"]
-    assert len(regression["actual"]) == model["holdout"]["rows"]
+    assert len(regression["actual"]) == model["holdout_rows"]
     # LightGBM's own model file: the parameters section lists store_id as categorical, and
     # the job's fixed parameter is recorded there too.
     names = re.search(r"^feature_names=(.*)$", text, re.M).group(1).split(" ")
@@ -149,7 +149,7 @@ def test_binary_job_reports_gains_confusion_and_segments(server: Server, tmp_pat
     assert "By segment" in report and "plots/gains.svg" in report
     columns = {c["column"]: c for c in outcomes["segments"]["columns"]}
     assert set(columns) == {"kiln", "clay_body"}
-    assert sum(s["rows"] for s in columns["kiln"]["segments"]) == model["holdout"]["rows"]
+    assert sum(s["rows"] for s in columns["kiln"]["segments"]) == model["holdout_rows"]
     assert "kiln" not in [f["name"] for f in model["feature_schema"]["features"]]
     # Reference: the same hold-out rows (the job's own request, replayed), LightGBM's own
     # predict of the served model file, scikit-learn's confusion_matrix at the threshold

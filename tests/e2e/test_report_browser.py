@@ -91,9 +91,9 @@ def test_report_renders_in_chromium(keyed_server: tuple[Server, dict],
         driver.get(finished_job["link"])
         assert job["id"] in driver.title and "succeeded" in driver.title
         rows = driver.find_elements(By.CSS_SELECTOR, "#leaderboard tbody tr")
-        assert len(rows) == board["count"]
+        assert len(rows) == board["total"]
         first = rows[0].find_elements(By.TAG_NAME, "td")
-        assert int(first[1].text) == board["data"][0]["number"]
+        assert int(first[1].text) == board["items"][0]["number"]
         images = driver.find_elements(By.CSS_SELECTOR, ".plots img")
         assert [Path(i.get_attribute("src")).stem for i in images] == [
             "history", "hyperparameters", "features", "learning", "calibration", "gains",

@@ -79,8 +79,8 @@ def test_every_parameter_of_a_custom_space_is_shown(server: Server, jobs: dict) 
     # Every leaderboard row names every tuned parameter, not a fixed few.
     board = html.split("<table id='leaderboard'>")[1].split("</table>")[0]
     cells = re.findall(r"<td class='params'>(.*?)</td>", board)
-    assert len(cells) == len(jobs["board"]["data"])
-    for cell, row in zip(cells, jobs["board"]["data"], strict=True):
+    assert len(cells) == len(jobs["board"]["items"])
+    for cell, row in zip(cells, jobs["board"]["items"], strict=True):
         assert {p.split("=")[0] for p in unescape(cell).split(", ")} == set(row["params"])
     assert ">rounds</th>" in board and not re.search(r"\btrees\b", _text(board))
 

@@ -40,14 +40,14 @@ def test_api_restart_mid_job_loses_nothing(db_url: str, tmp_path: Path) -> None:
             wait_until(lambda: len(finished(db_url, job_id)) >= 2, 120, "2 finished trials",
                        pool.logs)
             with api.client() as client:
-                seen = client.get(f"/v1/jobs/{job_id}/trials").json()["data"]
+                seen = client.get(f"/v1/jobs/{job_id}/trials").json()["items"]
             api.stop()
             assert job_row(db_url, job_id).status == "running"  # the worker carries on
             api = Server(home=home, db_url=db_url, workers=0, extra_env=FAST).start()
             with api.client() as client:
                 job = wait_for_job(client, job_id, timeout=180)
                 after = {t["number"]: t for t in
-                         client.get(f"/v1/jobs/{job_id}/trials").json()["data"]}
+                         client.get(f"/v1/jobs/{job_id}/trials").json()["items"]}
     finally:
         api.stop()
     assert job["status"] == "succeeded" and job["attempts"] == 1, job

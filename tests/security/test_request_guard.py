@@ -135,7 +135,7 @@ def test_no_key_mode_refuses_cross_site_writes(open_server: Server,
         assert upload.json()["code"] == "cross_site_request"
         cancel = client.post("/v1/jobs/job_missing/cancel", headers=headers)
         assert cancel.status_code == 403
-        assert client.get("/v1/datasets").json()["count"] == 0  # nothing was stored
+        assert client.get("/v1/datasets").json()["total"] == 0  # nothing was stored
         # Reading is not changing anything: a GET with the same headers is answered.
         assert client.get("/v1/datasets", headers=headers).status_code == 200
 

@@ -21,7 +21,7 @@ def _open_stream(port: int, job_id: str, key: str | None = None) -> tuple[socket
     """A raw SSE connection, read up to its first event; (socket, status)."""
     sock = socket.create_connection(("127.0.0.1", port), timeout=60)
     auth = f"Authorization: Bearer {key}\r\n" if key else ""
-    sock.sendall(f"GET /v1/jobs/{job_id}/events HTTP/1.1\r\nHost: 127.0.0.1\r\n{auth}"
+    sock.sendall(f"GET /v1/jobs/{job_id}/watch HTTP/1.1\r\nHost: 127.0.0.1\r\n{auth}"
                  "Accept: text/event-stream\r\n\r\n".encode())
     seen = b""
     for _ in range(200):  # bounded: the headers and the first event are a few reads

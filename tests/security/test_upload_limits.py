@@ -54,7 +54,7 @@ def test_parquet_bomb_is_refused_from_its_footer(small_limits: Server) -> None:
         raw = client.post("/v1/datasets", params={"name": "bomb"}, content=bomb,
                           headers={"Content-Type": "application/vnd.apache.parquet"})
         form = client.post("/v1/datasets", files={"file": ("bomb.parquet", bomb)})
-        listed = client.get("/v1/datasets").json()["count"]
+        listed = client.get("/v1/datasets").json()["total"]
     after = vm_hwm_mb(small_limits.proc.pid)
     for got in (raw, form):
         assert got.status_code == 413, got.text
@@ -119,5 +119,5 @@ def test_file_part_just_over_the_limit_is_refused_by_the_running_count(
     with small_limits.client() as client:
         got = client.post("/v1/datasets", files={"file": ("big.csv", body, "text/csv")})
         assert got.status_code == 413, got.text
-        assert client.get("/v1/datasets").json()["count"] == 0
+        assert client.get("/v1/datasets").json()["total"] == 0
     assert bytes_under(spool, small_limits.home / "tmp") == 0

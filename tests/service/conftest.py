@@ -61,3 +61,14 @@ def live_api(settings: Settings) -> Iterator[LiveApi]:
 def api(tmp_path: Path) -> Iterator[LiveApi]:
     with live_api(Settings(home=tmp_path / "home", max_upload_mb=1)) as live:
         yield live
+
+
+def prepared(api: LiveApi, job_id: str) -> dict:
+    """The job as GET answers it once a worker has prepared its rows (what the lead does
+    first when it takes a job; the API wrote only the spec the profile allows)."""
+    from service.worker.context import WorkerContext
+    from service.worker.lead import prepare_job
+
+    prepare_job(WorkerContext(api.settings), job_id)
+    with api.client() as client:
+        return client.get(f"/v1/jobs/{job_id}").json()

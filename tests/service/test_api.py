@@ -9,7 +9,7 @@ import pandas as pd
 import pytest
 
 from examples.demo_data import kilns
-from tests.service.conftest import LiveApi
+from tests.service.conftest import LiveApi, prepared
 
 PROBLEM = "application/problem+json"
 
@@ -48,7 +48,7 @@ def test_upload_raw_multipart_and_parquet(api: LiveApi) -> None:
         assert parquet.status_code == 201, parquet.text
         assert parquet.json()["source_format"] == "parquet"
         listed = client.get("/v1/datasets").json()
-    assert listed["count"] == 3
+    assert listed["total"] == 3
     assert raw.json()["sha256"] == multi.json()["sha256"]  # same bytes, same digest
     # The same table parsed from CSV and Parquet profiles the same way.
     kinds = lambda d: [(c["name"], c["kind"]) for c in d["columns"]]  # noqa: E731
@@ -78,7 +78,7 @@ def test_oversized_upload_is_413_and_leaves_nothing(api: LiveApi) -> None:
         chunked = client.post("/v1/datasets", content=chunks(),
                               headers={"Content-Type": "text/csv"})
         assert_problem(chunked, 413)
-        assert client.get("/v1/datasets").json()["count"] == 0
+        assert client.get("/v1/datasets").json()["total"] == 0
     assert api.files() == []
 
 
@@ -95,7 +95,7 @@ def test_oversized_upload_is_413_and_leaves_nothing(api: LiveApi) -> None:
 def test_unreadable_uploads(api: LiveApi, body: bytes, ctype: str, status: int) -> None:
     with api.client() as client:
         assert_problem(upload(client, body, ctype), status)
-        assert client.get("/v1/datasets").json()["count"] == 0
+        assert client.get("/v1/datasets").json()["total"] == 0
     assert api.files() == []
 
 
@@ -118,7 +118,7 @@ def test_job_validation_names_the_field(api: LiveApi) -> None:
             "dataset_id": ds, "target": "defect",
             "search_space": {"num_leaves": {"low": 64, "high": 8}}})
         assert_problem(bad_space, 422, "search_space.num_leaves")
-        assert client.get("/v1/jobs").json()["count"] == 0  # nothing was queued
+        assert client.get("/v1/jobs").json()["total"] == 0  # nothing was queued
 
 
 def test_job_is_queued_with_effective_spec_and_can_be_cancelled(api: LiveApi) -> None:
@@ -130,9 +130,13 @@ def test_job_is_queued_with_effective_spec_and_can_be_cancelled(api: LiveApi) ->
         assert body["status"] == "queued" and body["task"] == "binary"
         assert body["spec"]["cv"]["strategy"] == "stratified"
         assert body["progress"]["trials_budget"] == 40
-        assert "num_leaves" in body["spec"]["search_space"]
-        assert "firing_id" not in body["spec"]["features"]  # an identifier, not a feature
-        assert client.get("/v1/jobs", params={"status": "queued"}).json()["count"] == 1
+        # Judged from the profile only; the worker writes the rest from the rows.
+        assert body["spec"]["prepared"] is False and "features" not in body["spec"]
+        spec = prepared(api, body["id"])["spec"]
+        assert spec["prepared"] is True and spec["cv"]["strategy"] == "stratified"
+        assert "num_leaves" in spec["search_space"]
+        assert "firing_id" not in spec["features"]  # an identifier, not a feature
+        assert client.get("/v1/jobs", params={"status": "queued"}).json()["total"] == 1
         assert_problem(client.delete(f"/v1/datasets/{ds}"), 409)  # a queued job uses it
         cancelled = client.post(f"/v1/jobs/{body['id']}/cancel").json()
         assert cancelled["status"] == "cancelled"
@@ -179,8 +183,10 @@ def test_upload_and_job_warnings_name_the_doubtful_data(api: LiveApi) -> None:
     doubled = pd.concat([frame, frame.head(10)], ignore_index=True)
     with api.client() as client:
         dataset = upload(client, doubled.to_csv(index=False).encode()).json()
-        job = client.post("/v1/jobs", json={"dataset_id": dataset["id"], "target": "defect",
-                                            "budget": {"trials": 1}}).json()
+        queued = client.post("/v1/jobs", json={"dataset_id": dataset["id"],
+                                               "target": "defect", "budget": {"trials": 1}})
+    assert queued.json()["warnings"] == []  # the rows are read by the worker, not the API
+    job = prepared(api, queued.json()["id"])
     assert any("10 row(s) are exact duplicates" in w for w in dataset["warnings"])
     leaks = [w for w in job["warnings"] if "leakage" in w]
     assert len(leaks) == 1 and "'inspected_defect'" in leaks[0]

@@ -38,7 +38,7 @@ def test_scopes_are_enforced(api: LiveApi) -> None:
     assert call("POST", "/v1/datasets", keys["write"], **upload) == 201
     with api.client() as client:
         ds = client.get("/v1/datasets", headers={"Authorization": f"Bearer {keys['read']}"})
-    dataset_id = ds.json()["data"][0]["id"]
+    dataset_id = ds.json()["items"][0]["id"]
     assert call("DELETE", f"/v1/datasets/{dataset_id}", keys["write"]) == 403
     assert call("DELETE", f"/v1/datasets/{dataset_id}", keys["admin"]) == 204
     assert call("GET", "/healthz", None) == 200  # health needs no key

@@ -10,7 +10,7 @@ import pandas as pd
 import pytest
 
 from examples.demo_data import greenhouse
-from tests.service.conftest import LiveApi
+from tests.service.conftest import LiveApi, prepared
 from tests.service.test_api import assert_problem, kiln_csv, upload
 
 # Each payload is wrong in exactly one parameter, which the problem document must name.
@@ -38,7 +38,7 @@ def test_bad_search_space_is_a_422_naming_the_parameter(api: LiveApi, space, fie
         response = client.post("/v1/jobs", json={"dataset_id": ds, "target": "defect",
                                                  "search_space": space})
         assert_problem(response, 422, field)
-        assert client.get("/v1/jobs").json()["count"] == 0
+        assert client.get("/v1/jobs").json()["total"] == 0
 
 
 def _greenhouse_csv() -> bytes:
@@ -79,7 +79,7 @@ def test_objective_and_metric_mismatches_name_the_fields(api: LiveApi) -> None:
         assert [e["field"] for e in both["errors"]] == ["max_parallel_trials", "max_workers"]
         assert_problem(client.post("/v1/jobs", json={**job, "reproducible": True,
                                                      "max_workers": 2}), 422, "max_workers")
-        assert client.get("/v1/jobs").json()["count"] == 0
+        assert client.get("/v1/jobs").json()["total"] == 0
 
 
 def test_effective_spec_has_objective_space_and_manifest(api: LiveApi) -> None:
@@ -91,7 +91,7 @@ def test_effective_spec_has_objective_space_and_manifest(api: LiveApi) -> None:
             "search_space": {"num_leaves": {"low": 8, "high": 64},
                              "tweedie_variance_power": {"low": 1.1, "high": 1.9}}})
         assert response.status_code == 202, response.text
-        job = client.get(f"/v1/jobs/{response.json()['id']}").json()
+    job = prepared(api, response.json()["id"])
     spec = job["spec"]
     assert spec["objective"] == "tweedie" and spec["metric"] == "poisson_deviance"
     assert spec["selection"] == "one_se" and spec["final_refit"] == "all"

@@ -141,8 +141,10 @@ def test_cancel_stops_at_the_trials_in_flight(db_url: str, tmp_path: Path) -> No
         seen = _logged_at(pool.logs(), f"job {job_id}: cancel requested")
     study = tuner.load_study(db_url, f"grovekeeper-{job_id}")
     threads = os.cpu_count() or 1  # parallel trials never exceed the cores
-    started_after = [t for t in study.trials if t.datetime_start > seen]
-    in_flight = [t for t in study.trials if t.datetime_start <= seen
+    # Enqueued configurations (the portfolio) that never started have no start time.
+    started = [t for t in study.trials if t.datetime_start is not None]
+    started_after = [t for t in started if t.datetime_start > seen]
+    in_flight = [t for t in started if t.datetime_start <= seen
                  and (t.datetime_complete is None or t.datetime_complete > seen)]
     # The worker sets the flag, then logs it: a trial started after that line saw the flag
     # before its first boosting round and was stopped, never scored; at most one per thread

@@ -11,6 +11,7 @@ import optuna
 from tuner._lgb import make_dataset
 from tuner.config import SearchConfig
 from tuner.dataset import PreparedData
+from tuner.evaluation import sampling
 from tuner.metrics import get_metric
 from tuner.study import load_study
 from tuner.validation import ValidationPlan
@@ -29,6 +30,13 @@ SMALL_LEAF_SHARE = 0.25
 #: third to a half (measured on both demo tables), so a milder ratio would fire always.
 DIVERGENCE_RATIO = 0.2
 DIVERGENCE_MIN_GAP = 0.02
+#: The learning curve refits one fold: on a large table, on a seeded sample of at most this
+#: many of its fitting rows (and SAMPLE_ROWS validation rows). Past a few hundred thousand
+#: rows a curve's shape barely moves, and the full fold would cost one more search trial.
+CURVE_FIT_ROWS = 200_000
+#: fANOVA's forest grows with the trials it is given; more than this many complete trials
+#: are sampled (seeded): the variance split it estimates is settled long before.
+IMPORTANCE_TRIALS = 1_000
 
 
 def _round(values: list[float]) -> list[float]:
@@ -44,13 +52,19 @@ def learning_curve(data: PreparedData, plan: ValidationPlan, params: dict[str, A
     stopping), recording both curves with ``lgb.record_evaluation``; the curve runs
     ``early_stopping_rounds`` past the chosen round, so the turn is visible.
 
+    On a large table the fold is refit on a seeded sample of at most
+    :data:`CURVE_FIT_ROWS` fitting and ``SAMPLE_ROWS`` validation rows (``rows`` says how
+    many of how many).
+
     Returns:
-        ``{"metric", "higher_is_better", "fold", "train", "valid", "best_round",
+        ``{"metric", "higher_is_better", "fold", "train", "valid", "best_round", "rows",
         "warnings"}``; ``train[i]`` is the score after round ``i + 1``.
     """
     lgb_metric = get_metric(config.metric, data.task).lgb_metric_for(data.task)
     full = {**params, "metric": lgb_metric}
-    fit, valid = plan.folds[fold]
+    all_fit, all_valid = plan.folds[fold]
+    fit = sampling.bounded(all_fit, CURVE_FIT_ROWS, seed=config.seed)
+    valid = sampling.bounded(all_valid, seed=config.seed)
     X = data.X.iloc[plan.train_idx].reset_index(drop=True)
     y = data.y[plan.train_idx]
     w = None if data.weight is None else data.weight[plan.train_idx]
@@ -69,7 +83,9 @@ def learning_curve(data: PreparedData, plan: ValidationPlan, params: dict[str, A
     train, val = record["train"][lgb_metric], record["valid"][lgb_metric]
     higher = lgb_metric in _HIGHER_IS_BETTER
     curve = {"metric": lgb_metric, "higher_is_better": higher, "fold": fold,
-             "train": _round(train), "valid": _round(val), "best_round": best}
+             "train": _round(train), "valid": _round(val), "best_round": best,
+             "rows": {"fit": int(len(fit)), "fit_of": int(len(all_fit)),
+                      "valid": int(len(valid)), "valid_of": int(len(all_valid))}}
     curve["warnings"] = _divergence(lgb_metric, higher, train[best - 1], val[best - 1], best)
     return curve
 
@@ -120,11 +136,13 @@ def hyperparameter_importance(storage_url: str, study_name: str, *,
     fANOVA fits a random forest from parameters to score and splits the score's variance
     by parameter (Hutter, Hoos & Leyton-Brown, 2014, via Optuna's evaluator). Parameters
     absent from some trials are left out by Optuna. With fewer than two complete trials,
-    or too little variety, ``importances`` is empty and ``note`` says why.
+    or too little variety, ``importances`` is empty and ``note`` says why. Only complete
+    trials count: all of them were scored on every search row (tuner/fidelity.py); past
+    :data:`IMPORTANCE_TRIALS` of them a seeded sample is used (``sampled_from`` says so).
 
     Returns:
-        ``{"method": "fanova", "trials", "importances": {param: share}, "note"?}``,
-        importances sorted descending and summing to about 1.
+        ``{"method": "fanova", "trials", "importances": {param: share}, "note"?,
+        "sampled_from"?}``, importances sorted descending and summing to about 1.
     """
     study = load_study(storage_url, study_name)
     complete = study.get_trials(deepcopy=False, states=(optuna.trial.TrialState.COMPLETE,))
@@ -132,6 +150,12 @@ def hyperparameter_importance(storage_url: str, study_name: str, *,
     if len(complete) < 2:
         out["note"] = "needs at least two complete trials"
         return out
+    if len(complete) > IMPORTANCE_TRIALS:
+        kept = sampling.bounded(np.arange(len(complete)), IMPORTANCE_TRIALS, seed=seed)
+        sample = optuna.create_study(directions=study.directions)
+        sample.add_trials([complete[int(i)] for i in kept])
+        out.update(trials=len(kept), sampled_from=len(complete))
+        study = sample
     try:
         found = optuna.importance.get_param_importances(
             study, evaluator=optuna.importance.FanovaImportanceEvaluator(seed=seed))

@@ -19,6 +19,7 @@ import numpy as np
 from tuner._lgb import predict
 from tuner.config import SearchConfig
 from tuner.dataset import PreparedData
+from tuner.evaluation.holdout import _CountedBinary
 from tuner.metrics import MetricUndefinedError, get_metric
 from tuner.model import FittedModel, fit_final
 from tuner.trials import TrialRecord
@@ -28,6 +29,9 @@ __all__ = ["gain_over_defaults", "paired_gain"]
 
 N_RESAMPLES = 1000
 LEVEL = 0.95
+#: Binary metrics _CountedBinary scores from draw counts, exactly as tuner.metrics does.
+_COUNTED_METRICS = frozenset({"log_loss", "accuracy", "roc_auc", "average_precision",
+                              "f1_macro"})
 
 
 def paired_gain(task: str, metric: str, y: np.ndarray, tuned: np.ndarray,
@@ -55,8 +59,20 @@ def paired_gain(task: str, metric: str, y: np.ndarray, tuned: np.ndarray,
     rng = np.random.default_rng(seed)
     n = len(y)
     draws = []
+    counted = None
+    if task == "binary" and tuned.ndim == 1 and metric in _COUNTED_METRICS:
+        # The same resamples scored from draw counts over rows sorted once per model
+        # (tuner.evaluation.holdout): no copy and no sort per resample, so 1,000 paired
+        # resamples of 200,000 rows take seconds instead of minutes.
+        counted = (_CountedBinary(y, tuned, w), _CountedBinary(y, baseline, w))
     for _ in range(n_resamples):
         idx = rng.integers(0, n, n)
+        if counted is not None:
+            counts = np.bincount(idx, minlength=n)
+            a_r, b_r = (c.scores(counts[c.order]).get(metric) for c in counted)
+            if a_r is not None and b_r is not None:
+                draws.append(sign * (a_r - b_r))
+            continue
         wi = None if w is None else w[idx]
         try:
             draws.append(sign * (m(y[idx], tuned[idx], wi) - m(y[idx], baseline[idx], wi)))

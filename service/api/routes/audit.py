@@ -7,9 +7,9 @@ from typing import Annotated
 from fastapi import APIRouter, Query
 
 from service import audit
+from service.api import paging
 from service.api.deps import SessionDep
 from service.api.schemas import AuditOut, AuditPage, as_utc
-from service.errors import Unprocessable
 
 router = APIRouter(prefix="/v1/audit", tags=["operations"])
 
@@ -18,20 +18,17 @@ router = APIRouter(prefix="/v1/audit", tags=["operations"])
 def list_audit(
     session: SessionDep,
     limit: Annotated[int, Query(ge=1, le=500)] = 100,
-    cursor: str | None = None,
+    cursor: paging.CursorQuery = None,
     action: str | None = None,
     key_id: str | None = None,
 ) -> AuditPage:
-    after: int | None = None
-    if cursor is not None:
-        if not cursor.isdigit():
-            raise Unprocessable("cursor must be the 'next' value of an earlier page",
-                                errors=[{"field": "cursor", "message": "not a cursor"}])
-        after = int(cursor)
+    """`?cursor=` continues from a page's `next`."""
+    after = paging.decode("audit", cursor, (int,))[0] if cursor else None
     rows, total, nxt = audit.page(session, limit=limit, cursor=after, action=action,
                                   key_id=key_id)
     items = [AuditOut(id=r.id, at=as_utc(r.at), key_id=r.key_id, action=r.action,
                       target=r.target, method=r.method, path=r.path, status=r.status,
                       detail=r.detail)
              for r in rows]
-    return AuditPage(items=items, total=total, next=None if nxt is None else str(nxt))
+    return AuditPage(items=items, total=total,
+                     next=None if nxt is None else paging.encode("audit", (nxt,)))

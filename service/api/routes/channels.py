@@ -2,14 +2,14 @@
 
 from __future__ import annotations
 
-from typing import Annotated, Literal
+from typing import Annotated
 
 from fastapi import APIRouter, Query, Request
 from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import Response
 
 from service import channels, repository
-from service.api import predicting
+from service.api import paging, predicting
 from service.api.deps import SessionDep, SettingsDep, StoreDep
 from service.api.predicting import PREDICT_DESCRIPTION
 from service.api.schemas import (
@@ -20,6 +20,7 @@ from service.api.schemas import (
     ChannelSummary,
     PredictRequest,
     PredictResponse,
+    Unseen,
     as_utc,
 )
 from service.auth import hash_key
@@ -27,7 +28,6 @@ from service.db import session_scope
 from service.settings import Settings
 
 router = APIRouter(prefix="/v1/channels", tags=["channels"])
-Unseen = Literal["error", "missing"]
 
 
 def key_id(request: Request, settings: Settings) -> str | None:
@@ -71,15 +71,16 @@ def get_channel(name: str, settings: SettingsDep) -> ChannelOut:
 @router.get("", response_model=ChannelList, summary="List channels by name")
 def list_channels(
     session: SessionDep,
-    limit: Annotated[int, Query(ge=1, le=1000)] = 100,
-    cursor: str | None = None,
+    limit: paging.LimitQuery = paging.DEFAULT_LIMIT,
+    cursor: paging.CursorQuery = None,
 ) -> ChannelList:
-    """`?cursor=` continues from a page's `next` (the last name of that page)."""
-    rows, total = repository.list_channels(session, limit=limit + 1, after=cursor)
+    """`?cursor=` continues from a page's `next`."""
+    after = paging.decode("channels", cursor, (str,))[0] if cursor else None
+    rows, total = repository.list_channels(session, limit=limit + 1, after=after)
+    rows, nxt = paging.cut(rows, limit, "channels", lambda c: (c.name,))
     items = [ChannelSummary(name=c.name, model_id=c.model_id,
-                            updated_at=as_utc(c.updated_at)) for c in rows[:limit]]
-    return ChannelList(items=items, total=total,
-                       next=items[-1].name if len(rows) > limit else None)
+                            updated_at=as_utc(c.updated_at)) for c in rows]
+    return ChannelList(items=items, total=total, next=nxt)
 
 
 @router.post("/{name}/rollback", response_model=ChannelOut,

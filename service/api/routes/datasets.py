@@ -2,15 +2,16 @@
 
 from __future__ import annotations
 
+from datetime import datetime
 from typing import Annotated
 
 from fastapi import APIRouter, Query, Request, Response
 from fastapi.concurrency import run_in_threadpool
 
 from service import repository
-from service.api import ingest
+from service.api import ingest, paging
 from service.api.deps import SessionDep, SettingsDep, StoreDep
-from service.api.schemas import DatasetOut, Page, as_utc
+from service.api.schemas import DatasetList, DatasetOut, as_utc
 from service.api.tabular import csv_response, wants_csv
 from service.db import session_scope
 from service.storage import LocalStore
@@ -112,22 +113,25 @@ async def upload_dataset(
     return out
 
 
-@router.get("", response_model=Page[DatasetOut],
+@router.get("", response_model=DatasetList,
             summary="List datasets, newest first; `Accept: text/csv` or `?format=csv` for CSV")
 def list_datasets(
     request: Request,
     session: SessionDep,
-    limit: Annotated[int, Query(ge=1, le=1000)] = 100,
-    offset: Annotated[int, Query(ge=0, le=1_000_000_000)] = 0,
+    limit: paging.LimitQuery = paging.DEFAULT_LIMIT,
+    cursor: paging.CursorQuery = None,
     format: Annotated[str | None, Query(pattern="^(json|csv)$")] = None,
-) -> Page[DatasetOut] | Response:
-    rows, count = repository.list_datasets(session, limit=limit, offset=offset)
+) -> DatasetList | Response:
+    """`?cursor=` continues from a page's `next`; the CSV form is the same page."""
+    after = paging.decode("datasets", cursor, (datetime, str)) if cursor else None
+    rows, total = repository.list_datasets(session, limit=limit + 1, after=after)
+    rows, nxt = paging.cut(rows, limit, "datasets", lambda d: (as_utc(d.created_at), d.id))
     out = [to_out(d) for d in rows]
     if wants_csv(request, format):
         header = ["id", "name", "rows", "n_columns", "size_bytes", "source_format", "sha256",
                   "created_at", "warnings"]
         return csv_response(header, ([getattr(d, h) for h in header] for d in out))
-    return Page[DatasetOut](data=out, count=count)
+    return DatasetList(items=out, total=total, next=nxt)
 
 
 @router.get("/{dataset_id}", response_model=DatasetOut)

@@ -2,35 +2,39 @@
 
 from __future__ import annotations
 
-from typing import Annotated, Literal
+from datetime import datetime
+from typing import Annotated
 
-import pandas as pd
 from fastapi import APIRouter, Query, Request, Response
 from sqlalchemy.orm import Session
 
 from service import repository
+from service.admission import WARM_START_TRIALS, admit
+from service.api import paging
 from service.api.deps import SessionDep, SettingsDep, StoreDep
 from service.api.schemas import (
     JobCreate,
+    JobList,
     JobOut,
     Leaderboard,
     LeaderboardRow,
-    Page,
     Progress,
+    StatusName,
+    TrialList,
     TrialOut,
     as_utc,
 )
 from service.api.tabular import csv_response, wants_csv
 from service.db import session_scope
 from service.errors import NotFound, Unprocessable
-from service.jobspec import WARM_START_TRIALS, build_run
+from service.jobrequest import JobRequest
 from service.progress import eta_seconds
 from service.settings import Settings
 from service.storage import LocalStore
 from service.tables import Job, JobStatus, utcnow
 
 router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
-StatusFilter = Literal["queued", "running", "succeeded", "failed", "cancelled"]
+StatusFilter = StatusName
 
 
 def to_out(job: Job) -> JobOut:
@@ -55,6 +59,7 @@ def to_out(job: Job) -> JobOut:
             trials_budget=effective["budget"]["trials"],
             best_score=job.best_score,
             best_trial_number=job.best_trial_number,
+            trials_by_fidelity=job.trials_by_fidelity or {},
             elapsed_seconds=round(max(elapsed, 0.0), 3),
             eta_seconds=eta_seconds(
                 status=job.status, elapsed=max(elapsed, 0.0),
@@ -65,6 +70,7 @@ def to_out(job: Job) -> JobOut:
         model_id=job.model_id,
         promotion=job.promotion,
         error=job.error,
+        problem=job.problem,
         warnings=job.warnings,
         cancel_requested=job.cancel_requested,
         attempts=job.attempts,
@@ -102,8 +108,7 @@ def _submit(settings: Settings, store: LocalStore, body: JobCreate) -> JobOut:
         except NotFound as exc:
             raise Unprocessable(str(exc), errors=[{"field": "dataset_id",
                                                    "message": "no such dataset"}]) from exc
-        key, sha = dataset.file_key, dataset.file_sha256
-        dataset_sha = dataset.sha256
+        columns, rows = list(dataset.columns or []), dataset.rows
         # Kinds declared at upload hold for every job on the dataset unless the job says
         # otherwise; stored in the request so the worker sees the same.
         named = set(body.features or ())
@@ -116,17 +121,10 @@ def _submit(settings: Settings, store: LocalStore, body: JobCreate) -> JobOut:
         if body.warm_start_job_id is not None:
             # Resolved now and stored in the request, so the worker enqueues exactly these.
             request["warm_start"], warm_task = _warm_start(session, body.warm_start_job_id)
-    frame = pd.read_parquet(store.local_path(key, sha))
-    # Every problem with the request surfaces here as a 422.
-    run = build_run(request, frame, dataset_sha256=dataset_sha)
-    if body.decision is not None and run.data.task != "binary":
-        message = f"decision costs apply to binary tasks; this job is {run.data.task}"
-        raise Unprocessable(message, errors=[{"field": "decision", "message": message}])
-    if warm_task is not None and warm_task != run.data.task:
-        message = (f"job '{body.warm_start_job_id}' tuned a {warm_task} task; this job is "
-                   f"{run.data.task}")
-        raise Unprocessable(message, errors=[{"field": "warm_start_job_id",
-                                              "message": message}])
+    stored = JobRequest.load(request)
+    # Every problem the dataset's profile shows is a 422 now; the worker prepares the rows
+    # and fails the job with the same problem document if they show one more.
+    effective = admit(stored, columns, rows, warm_task=warm_task)
     job_id = repository.new_id("job")
     with session_scope(settings.db_url) as session:
         job = repository.add_job(
@@ -135,9 +133,9 @@ def _submit(settings: Settings, store: LocalStore, body: JobCreate) -> JobOut:
             dataset_id=body.dataset_id,
             priority=body.priority,
             max_workers=body.max_workers,
-            spec={"request": request, "effective": run.effective},
+            spec={"request": stored.model_dump(mode="json"), "effective": effective},
             study_name=f"grovekeeper-{job_id}",
-            warnings=list(run.data.warnings),
+            warnings=[],
         )
         return to_out(job)
 
@@ -151,21 +149,25 @@ def submit_job(
     return out
 
 
-@router.get("", response_model=Page[JobOut],
+@router.get("", response_model=JobList,
             summary="List jobs, newest first; `Accept: text/csv` or `?format=csv` for CSV")
 def list_jobs(
     request: Request,
     session: SessionDep,
     status: StatusFilter | None = None,
-    limit: Annotated[int, Query(ge=1, le=1000)] = 100,
-    offset: Annotated[int, Query(ge=0, le=1_000_000_000)] = 0,
+    limit: paging.LimitQuery = paging.DEFAULT_LIMIT,
+    cursor: paging.CursorQuery = None,
     format: Annotated[str | None, Query(pattern="^(json|csv)$")] = None,
-) -> Page[JobOut] | Response:
-    rows, count = repository.list_jobs(session, status=status, limit=limit, offset=offset)
+) -> JobList | Response:
+    """`?cursor=` continues from a page's `next` (with the same `status`); the CSV form
+    is the same page."""
+    after = paging.decode("jobs", cursor, (datetime, str)) if cursor else None
+    rows, total = repository.list_jobs(session, status=status, limit=limit + 1, after=after)
+    rows, nxt = paging.cut(rows, limit, "jobs", lambda j: (as_utc(j.created_at), j.id))
     out = [to_out(j) for j in rows]
     if wants_csv(request, format):
         return csv_response(JOB_CSV_HEADER, (_job_csv_row(j) for j in out))
-    return Page[JobOut](data=out, count=count)
+    return JobList(items=out, total=total, next=nxt)
 
 
 JOB_CSV_HEADER = ["id", "dataset_id", "status", "target", "task", "metric", "trials_completed",
@@ -200,17 +202,35 @@ def _trial_out(t: object) -> TrialOut:
 _CSV_TOO = {200: {"content": {"text/csv": {"schema": {"type": "string"}}}}}
 
 
-@router.get("/{job_id}/trials", response_model=Page[TrialOut], responses=_CSV_TOO)
+@router.get("/{job_id}/trials", response_model=TrialList, responses=_CSV_TOO)
 def list_trials(
-    job_id: str, request: Request, session: SessionDep, format: str | None = None
-) -> Page[TrialOut] | Response:
+    job_id: str,
+    request: Request,
+    session: SessionDep,
+    limit: Annotated[int | None, Query(ge=1, le=paging.MAX_LIMIT, description=(
+        "most trials on one page (JSON: 100 when not given; CSV: every trial)"))] = None,
+    cursor: paging.CursorQuery = None,
+    format: Annotated[str | None, Query(pattern="^(json|csv)$")] = None,
+) -> TrialList | Response:
+    """Trials by number; `?cursor=` continues from a page's `next`. The CSV form is one
+    table: every trial, or the page that `limit` and `cursor` name."""
     repository.get_job(session, job_id)
-    trials = [_trial_out(t) for t in repository.list_trials(session, job_id=job_id)]
-    if wants_csv(request, format):
+    csv = wants_csv(request, format)
+    after = paging.decode("trials", cursor, (int,))[0] if cursor else None
+    page_size = limit if limit is not None or csv else paging.DEFAULT_LIMIT
+    rows = repository.list_trials(session, job_id=job_id, after=after,
+                                  limit=None if page_size is None else page_size + 1)
+    if page_size is None:
+        page, nxt = list(rows), None
+    else:
+        page, nxt = paging.cut(rows, page_size, "trials", lambda t: (t.number,))
+    trials = [_trial_out(t) for t in page]
+    if csv:
         header = ["number", "state", "score", "score_std", "score_se", "fidelity",
                   "boosting_rounds", "duration_seconds", "fold_scores", "params"]
         return csv_response(header, ([getattr(t, h) for h in header] for t in trials))
-    return Page[TrialOut](data=trials, count=len(trials))
+    total = repository.count_trials(session, job_id=job_id)
+    return TrialList(items=trials, total=total, next=nxt)
 
 
 @router.get("/{job_id}/leaderboard", response_model=Leaderboard, responses=_CSV_TOO)
@@ -218,20 +238,35 @@ def leaderboard(
     job_id: str,
     request: Request,
     session: SessionDep,
-    limit: Annotated[int | None, Query(ge=1, le=100_000)] = None,
+    limit: Annotated[int | None, Query(ge=1, le=100_000, description=(
+        "most rows on one page (JSON: 100 when not given; CSV: every ranked trial)"))] = None,
+    cursor: paging.CursorQuery = None,
     format: Annotated[str | None, Query(pattern="^(json|csv)$")] = None,
 ) -> Leaderboard | Response:
-    """Finished trials ranked best first; `Accept: text/csv` or `?format=csv` for CSV."""
+    """Finished trials ranked best first (ties by number); `?cursor=` continues from a
+    page's `next`. `Accept: text/csv` or `?format=csv` answers one table with a header
+    row: every ranked trial, or the page that `limit` and `cursor` name."""
     job = repository.get_job(session, job_id)
     direction = job.spec["effective"]["direction"]
-    trials, count = repository.leaderboard(session, job_id=job_id, direction=direction,
-                                           limit=limit)
+    csv = wants_csv(request, format)
+    after, rank = None, 0
+    if cursor:
+        score, number, rank = paging.decode("leaderboard", cursor, (float, int, int))
+        after = (score, number)
+    page_size = limit if limit is not None or csv else paging.DEFAULT_LIMIT
+    trials, total = repository.leaderboard(
+        session, job_id=job_id, direction=direction, after=after,
+        limit=None if page_size is None else page_size + 1)
     rows = [
         LeaderboardRow(rank=i, number=t.number, score=t.score, score_std=t.score_std,
                        score_se=t.score_se, params=t.params, boosting_rounds=t.boosting_rounds)
-        for i, t in enumerate(trials, start=1)
+        for i, t in enumerate(trials, start=rank + 1)
     ]
-    if wants_csv(request, format):
+    nxt = None
+    if page_size is not None:
+        rows, nxt = paging.cut(rows, page_size, "leaderboard",
+                               lambda r: (r.score, r.number, r.rank))
+    if csv:
         names = sorted({name for r in rows for name in r.params})
         header = ["rank", "number", "score", "score_std", "score_se", "boosting_rounds",
                   *names]
@@ -239,7 +274,7 @@ def leaderboard(
             [r.rank, r.number, r.score, r.score_std, r.score_se, r.boosting_rounds,
              *(r.params.get(n) for n in names)] for r in rows))
     return Leaderboard(job_id=job_id, metric=job.spec["effective"]["metric"],
-                       direction=direction, data=rows, count=count)
+                       direction=direction, items=rows, total=total, next=nxt)
 
 
 def job_status_values() -> list[str]:

@@ -2,17 +2,15 @@
 
 from __future__ import annotations
 
-import base64
-import json
 from datetime import datetime
-from typing import Annotated, Any, Literal
+from typing import Annotated, Any
 
 from fastapi import APIRouter, Query, Request
 from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import FileResponse, Response
 
 from service import repository
-from service.api import predicting
+from service.api import paging, predicting
 from service.api.deps import SessionDep, SettingsDep, StoreDep
 from service.api.predicting import PREDICT_DESCRIPTION
 from service.api.schemas import (
@@ -21,45 +19,40 @@ from service.api.schemas import (
     ModelSummary,
     PredictRequest,
     PredictResponse,
+    Unseen,
     as_utc,
 )
 from service.api.tabular import csv_response, wants_csv
 from service.db import session_scope
-from service.errors import Conflict, Unprocessable
+from service.errors import Conflict
 from service.tables import Model
-from tuner.decision import DEFAULT_DECISION
-from tuner.drift import psi, reading
+from vocabulary import DEFAULT_DECISION
 
 router = APIRouter(prefix="/v1/models", tags=["models"])
-Unseen = Literal["error", "missing"]
+
+
+def holdout_scores(stored: dict[str, Any] | None) -> dict[str, Any]:
+    """The stored hold-out without its row count: metric name -> score."""
+    return {k: v for k, v in (stored or {}).items() if k != "rows"}
+
+
+def holdout_rows(stored: dict[str, Any] | None) -> int:
+    return int((stored or {}).get("rows") or 0)
 
 
 def to_out(model: Model) -> ModelOut:
+    evaluation = (model.details or {}).get("evaluation") or {}
     return ModelOut(
         id=model.id, job_id=model.job_id, task=model.task, metric=model.metric,
         target=model.target, params=model.params, boosting_rounds=model.boosting_rounds,
-        trial_number=model.trial_number, cv=model.cv, holdout=model.holdout,
+        trial_number=model.trial_number, cv=model.cv, holdout=holdout_scores(model.holdout),
+        holdout_rows=holdout_rows(model.holdout),
+        holdout_intervals=evaluation.get("holdout_intervals") or {},
         feature_schema=model.feature_schema, classes=model.classes,
         feature_importance=model.feature_importance, details=model.details,
         decision=model.decision or (dict(DEFAULT_DECISION) if model.task == "binary" else None),
         sha256=model.sha256, size_bytes=model.size_bytes, created_at=as_utc(model.created_at),
     )
-
-
-def encode_cursor(created_at: datetime, model_id: str) -> str:
-    raw = json.dumps([as_utc(created_at).isoformat(), model_id]).encode()  # type: ignore[union-attr]
-    return base64.urlsafe_b64encode(raw).decode().rstrip("=")
-
-
-def decode_cursor(cursor: str) -> tuple[datetime, str]:
-    try:
-        raw = base64.urlsafe_b64decode(cursor + "=" * (-len(cursor) % 4))
-        stamp, model_id = json.loads(raw)
-        return datetime.fromisoformat(stamp), str(model_id)
-    except (ValueError, TypeError) as exc:
-        raise Unprocessable("the cursor is not one this list gave out",
-                            errors=[{"field": "cursor", "message": "not a valid cursor"}]
-                            ) from exc
 
 
 MODEL_CSV_HEADER = ["id", "job_id", "dataset_id", "task", "metric", "target",
@@ -75,28 +68,27 @@ def list_models(
     dataset_id: str | None = None,
     job_id: str | None = None,
     target: str | None = None,
-    limit: Annotated[int, Query(ge=1, le=1000)] = 100,
-    cursor: str | None = None,
+    limit: paging.LimitQuery = paging.DEFAULT_LIMIT,
+    cursor: paging.CursorQuery = None,
     format: Annotated[str | None, Query(pattern="^(json|csv)$")] = None,
 ) -> ModelList | Response:
     """`?cursor=` continues from a page's `next`. `Accept: text/csv` or `?format=csv`
     answers one CSV page."""
-    after = decode_cursor(cursor) if cursor else None
+    after = paging.decode("models", cursor, (datetime, str)) if cursor else None
     rows, total = repository.list_models(session, dataset_id=dataset_id, job_id=job_id,
                                          target=target, limit=limit + 1, after=after)
-    more = len(rows) > limit
-    rows = rows[:limit]
+    rows, nxt = paging.cut(rows, limit, "models",
+                           lambda row: (as_utc(row[0].created_at), row[0].id))
     items = [ModelSummary(
         id=m.id, job_id=m.job_id, dataset_id=ds, task=m.task, metric=m.metric,
         target=m.target, boosting_rounds=m.boosting_rounds, trial_number=m.trial_number,
-        cv=m.cv, holdout=m.holdout, sha256=m.sha256, created_at=as_utc(m.created_at),
+        cv=m.cv, holdout=holdout_scores(m.holdout), holdout_rows=holdout_rows(m.holdout),
+        sha256=m.sha256, created_at=as_utc(m.created_at),
     ) for m, ds in rows]
     if wants_csv(request, format):
         return csv_response(MODEL_CSV_HEADER,
                             ([getattr(m, h) for h in MODEL_CSV_HEADER] for m in items))
-    last = rows[-1][0] if rows and more else None
-    return ModelList(items=items, total=total,
-                     next=encode_cursor(last.created_at, last.id) if last else None)
+    return ModelList(items=items, total=total, next=nxt)
 
 
 @router.get("/{model_id}", response_model=ModelOut)
@@ -140,6 +132,8 @@ async def get_drift(
 
 def drift_report(model_id: str, reference: dict[str, Any],
                  days: list[tuple[str, int, list[list[int]]]]) -> dict[str, Any]:
+    from tuner.drift import psi, reading  # NumPy loads with the first drift report
+
     rows = sum(r for _, r, _ in days)
     features = []
     for j, entry in enumerate(reference["features"]):

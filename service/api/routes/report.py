@@ -15,7 +15,7 @@ from service.api.routes.models import to_out as model_out
 from service.api.schemas import TrialOut
 from service.db import session_scope
 from service.errors import NotFound
-from service.report import page, plots
+from service.report import page
 
 router = APIRouter(prefix="/v1/jobs", tags=["reports"])
 PlotName = Literal["history", "hyperparameters", "features", "learning", "calibration",
@@ -51,6 +51,8 @@ def _load(url: str, job_id: str, *, board: bool) -> dict[str, Any]:
 
 
 def _plot(url: str, job_id: str, name: str) -> bytes:
+    from service.report import plots  # matplotlib loads with the first plot, not the API
+
     loaded = _load(url, job_id, board=False)
     try:
         return plots.render(name, trials=loaded["trials"], job=loaded["job"],
@@ -73,6 +75,8 @@ async def get_plot(job_id: str, name: PlotName, settings: SettingsDep) -> Respon
 
 
 def _report(url: str, job_id: str) -> str:
+    from service.report import plots  # matplotlib loads with the first plot, not the API
+
     loaded = _load(url, job_id, board=True)
     return page.render(loaded["job"], loaded["board"], loaded["count"], loaded["model"],
                        plots.available(trials=loaded["trials"], model=loaded["model"]),

@@ -6,7 +6,6 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Annotated
 
-import pyarrow.parquet as pq
 from fastapi import APIRouter, Query, Request, Response
 from fastapi.responses import FileResponse, StreamingResponse
 
@@ -108,6 +107,8 @@ def _csv_chunks(path: Path, keep: list[str]) -> Iterator[bytes]:
     # Chunk by chunk, so a result of any size is sent without being held in memory.
     # Kept columns are echoed exactly; the rest is neutralised against spreadsheet
     # formulas (service/api/tabular.py).
+    import pyarrow.parquet as pq  # loaded with the first result, not with the API
+
     parquet = pq.ParquetFile(path)
     first = True
     for batch in parquet.iter_batches(batch_size=CSV_CHUNK_ROWS):

@@ -9,8 +9,9 @@ from __future__ import annotations
 
 from collections.abc import AsyncIterator
 from typing import Annotated, Any
+from urllib.parse import quote
 
-from fastapi import APIRouter, Depends, Query, Request
+from fastapi import APIRouter, Depends, Query, Request, Response
 from fastapi.sse import EventSourceResponse, ServerSentEvent
 
 from service import repository
@@ -78,7 +79,7 @@ async def _admitted(request: Request, job_id: Annotated[str, Depends(_existing_j
 
 
 @router.get(
-    "/{job_id}/events",
+    "/{job_id}/watch",
     response_class=EventSourceResponse,
     summary="Live progress as Server-Sent Events",
     description=(
@@ -90,7 +91,7 @@ async def _admitted(request: Request, job_id: Annotated[str, Depends(_existing_j
     ),
     responses={200: {"content": {"text/event-stream": {"example": EXAMPLE_STREAM}}}},
 )
-async def job_events(
+async def watch_job(
     request: Request,
     ticket: Annotated[Ticket, Depends(_admitted, scope="request")],
     poll: Annotated[float, Query(
@@ -99,3 +100,26 @@ async def job_events(
 ) -> AsyncIterator[ServerSentEvent]:
     async for event in _stream(request, ticket):
         yield event
+
+
+#: The stream's path until this release; it redirects for one release, then goes.
+OLD_STREAM_NOTE = (
+    "Deprecated: the stream moved to `GET /v1/jobs/{job_id}/watch`. This path answers "
+    "308 to it (query kept) with a `Deprecation` header, for this release only."
+)
+
+
+@router.get("/{job_id}/events", status_code=308, deprecated=True, response_class=Response,
+            summary="Old path of the live stream (308 to /watch)",
+            description=OLD_STREAM_NOTE,
+            responses={308: {"description": "Permanent redirect to `/v1/jobs/{job_id}/watch`",
+                             "headers": {"Location": {"schema": {"type": "string"}},
+                                         "Deprecation": {"schema": {"type": "string"}}}}})
+def old_job_events(job_id: str, request: Request) -> Response:
+    # Nothing is looked up: the redirect answers the same for every job, and the new
+    # path gives the 404 for an unknown one.
+    query = request.url.query
+    location = f"/v1/jobs/{quote(job_id, safe='')}/watch" + (f"?{query}" if query else "")
+    return Response(status_code=308, headers={
+        "Location": location, "Deprecation": "true",
+        "Link": f'<{location}>; rel="successor-version"'})
