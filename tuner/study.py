@@ -12,7 +12,8 @@ import optuna
 from optuna.trial import TrialState
 
 from tuner.config import make_pruner
-from tuner.journal import Fence, TrialJournal, create_tables, import_rdb_study, rdb_has_study
+from tuner.journal import Fence, TrialJournal, import_rdb_study, rdb_has_study
+from tuner.journal_db import create_tables
 from tuner.space import LIGHTGBM_DEFAULTS
 from tuner.trials import SearchResult, TrialRecord, record_from_frozen, summarise_study
 
