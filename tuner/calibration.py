@@ -30,6 +30,7 @@ from __future__ import annotations
 
 import math
 import re
+from collections.abc import Callable
 from dataclasses import asdict, dataclass
 from typing import Any
 
@@ -77,12 +78,12 @@ def apply_map(raw: np.ndarray, cmap: CalibrationMap) -> np.ndarray:
 def probabilities(raw: np.ndarray, sigmoid: float = 1.0) -> np.ndarray:
     """LightGBM's link: binary ``expit(sigmoid * raw)``, multiclass softmax per row."""
     raw = np.asarray(raw, dtype="float64")
-    return softmax(raw, axis=1) if raw.ndim == 2 else expit(sigmoid * raw)
+    return np.asarray(softmax(raw, axis=1) if raw.ndim == 2 else expit(sigmoid * raw))
 
 
 def _row_losses(raw: np.ndarray, y: np.ndarray, sigmoid: float) -> np.ndarray:
     if raw.ndim == 2:
-        return -log_softmax(raw, axis=1)[np.arange(len(y)), y]
+        return np.asarray(-log_softmax(raw, axis=1)[np.arange(len(y)), y])
     z = sigmoid * raw
     return np.logaddexp(0.0, z) - y * z
 
@@ -119,7 +120,9 @@ def expected_calibration_error(prob: np.ndarray, y: np.ndarray,
 
 # --- fitting -----------------------------------------------------------------------------
 
-def _objective(kind: str, raw: np.ndarray, y: np.ndarray, w: np.ndarray, sigmoid: float):
+def _objective(kind: str, raw: np.ndarray, y: np.ndarray, w: np.ndarray,
+               sigmoid: float) -> tuple[Callable[[np.ndarray], tuple[float, np.ndarray]], int,
+                                        Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]]]:
     """Weighted mean log loss of the map and its gradient, over ``(log scales, biases)``.
 
     Scales are fitted on a log scale (they stay positive: a map never reverses the order

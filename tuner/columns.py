@@ -233,12 +233,12 @@ def to_codes(s: pd.Series, levels: tuple[str, ...]) -> tuple[pd.Categorical, np.
     if isinstance(s.dtype, pd.StringDtype):
         # Text as read from a CSV: look up each distinct value once, not every row.
         found, uniques = pd.factorize(s, use_na_sentinel=True)
-        lookup = np.append(index.get_indexer(np.asarray(uniques, dtype=object)), -1)
+        lookup = np.append(index.get_indexer(pd.Index(np.asarray(uniques, dtype=object))), -1)
         codes = lookup[found]  # the missing sentinel -1 picks the appended -1
         unseen = (codes < 0) & (found >= 0)
         return pd.Categorical.from_codes(codes, categories=index), unseen
     strings = as_level_strings(s)
-    codes = index.get_indexer(strings.to_numpy())
+    codes = index.get_indexer(pd.Index(strings.to_numpy()))
     unseen = (codes < 0) & strings.notna().to_numpy()
     return pd.Categorical.from_codes(codes, categories=index), unseen
 

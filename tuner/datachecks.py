@@ -143,7 +143,7 @@ def _rank_power(x: np.ndarray, y: np.ndarray, task: str) -> float:
     if n1 == 0 or n0 == 0:
         return 0.0
     auc = (rx[pos].sum() - n1 * (n1 + 1) / 2) / (n1 * n0)  # Mann-Whitney U / (n1 n0)
-    return abs(2 * auc - 1)
+    return abs(2 * float(auc) - 1)
 
 
 def single_feature_power(data: PreparedData, *, seed: int = 0) -> dict[str, float]:

@@ -154,7 +154,8 @@ def _labels(y: pd.Series, kind: str) -> tuple[np.ndarray, list[Any]]:
     return np.array([index[v] for v in raw], dtype="int64"), classes
 
 
-def _target(y: pd.Series, target: str, task: str | None) -> tuple[str, np.ndarray, list | None]:
+def _target(y: pd.Series, target: str,
+            task: str | None) -> tuple[str, np.ndarray, list[Any] | None]:
     kind = infer_kind(y)
     if task is not None and task not in TASKS:
         _raise([_error("task", f"unknown task '{task}'; use one of {', '.join(TASKS)}")])
@@ -311,7 +312,8 @@ def prepare(
 
     taken = {target, *(n for n in roles.values() if n is not None)}
     explicit = features is not None
-    candidates = list(features) if explicit else [str(c) for c in frame.columns if c not in taken]
+    candidates = (list(features or ()) if explicit
+                  else [str(c) for c in frame.columns if c not in taken])
     candidates = [c for c in candidates if c not in set(exclude or ())]
     profiles = [declare(profile_column(frame[c]), declared.get(c)) for c in candidates]
     for p in profiles:

@@ -115,10 +115,12 @@ def decide(costs: dict[str, float] | None, *, calibrated: bool,
                        f"{len(y)} out-of-fold search rows (never the hold-out)")
     if holdout is not None and len(holdout[0]):
         y, prob, weight = holdout
-        kw = {"false_positive_cost": c_fp, "false_negative_cost": c_fn, "weight": weight}
+        def cost(threshold: float) -> float:
+            return expected_cost(y, prob, threshold, false_positive_cost=c_fp,
+                                 false_negative_cost=c_fn, weight=weight)
         out["holdout"] = {
             "rows": int(len(y)),
-            "expected_cost_per_row": expected_cost(y, prob, out["threshold"], **kw),
-            "expected_cost_per_row_at_0_5": expected_cost(y, prob, 0.5, **kw),
+            "expected_cost_per_row": cost(out["threshold"]),
+            "expected_cost_per_row_at_0_5": cost(0.5),
         }
     return out

@@ -160,12 +160,13 @@ class SQLJournalBackend(BaseJournalBackend):
             pause = min(2.0, pause * 2)
             # The connection may have broken after the commit landed: look before writing.
             try:
-                seqs = self._committed(bodies)
+                found = self._committed(bodies)
             except Exception as exc:
                 if not is_transient(exc):
                     raise
                 continue
-            if seqs is not None:
+            if found is not None:
+                seqs = found
                 break
         # Consecutive within one transaction, so the logs are rows seqs[0], +1, ...
         self._last = (seqs[0], bodies) if seqs else None
@@ -202,7 +203,7 @@ class SQLJournalBackend(BaseJournalBackend):
                 seqs = []
                 for body in bodies:
                     cursor.execute(self._append_sql, (self.study, body, self.study))
-                    seqs.append(cursor.fetchone()[0])
+                    seqs.append(_first(cursor.fetchone()))
                 if self._sqlite:
                     cursor.execute("COMMIT")
                 else:
@@ -237,7 +238,7 @@ class SQLJournalBackend(BaseJournalBackend):
                 seqs = []
                 for body in bodies:
                     cursor.execute(self._append_sql, (self.study, body, self.study))
-                    seqs.append(cursor.fetchone()[0])
+                    seqs.append(_first(cursor.fetchone()))
                 cursor.close()
                 trans.commit()
             except conflict:
@@ -265,7 +266,7 @@ def _op_names(logs: list[dict[str, Any]]) -> str:
     names = []
     for entry in logs:
         try:
-            names.append(JournalOperation(entry.get("op_code")).name.lower())
+            names.append(JournalOperation(int(entry.get("op_code", -1))).name.lower())
         except ValueError:
             names.append(str(entry.get("op_code")))
     return ", ".join(names)
@@ -278,6 +279,13 @@ def _discard_if_lost(conn: Any, exc: BaseException) -> bool:
         conn.invalidate()
         return True
     return False
+
+
+def _first(row: Any) -> int:
+    """The first column of a row the append statement returns (it always returns one)."""
+    if row is None:
+        raise RuntimeError("the journal append returned no row")
+    return int(row[0])
 
 
 class TrialJournal(JournalStorage, BaseHeartbeat):
@@ -318,7 +326,7 @@ class TrialJournal(JournalStorage, BaseHeartbeat):
             return []
         def read() -> dict[int, float]:
             with engine(self.url).connect() as conn:
-                return dict(conn.execute(  # type: ignore[arg-type]
+                return dict(conn.execute(
                     sa.select(BEATS.c.trial_id, BEATS.c.beat_at)
                     .where(BEATS.c.study == self.study,
                            BEATS.c.trial_id.in_([t._trial_id for t in running]))

@@ -59,7 +59,7 @@ def _labels(task_pred: np.ndarray) -> np.ndarray:
     if task_pred.ndim == 1:
         # Class 1 only when strictly more likely, as an argmax over (1 - p, p) would pick.
         return (task_pred > 0.5).astype("int64")
-    return np.argmax(task_pred, axis=1)
+    return np.asarray(np.argmax(task_pred, axis=1))
 
 
 def _binary_auc(positive: np.ndarray, score: np.ndarray, w: np.ndarray) -> float:

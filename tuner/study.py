@@ -12,7 +12,8 @@ import optuna
 from optuna.trial import TrialState
 
 from tuner.config import make_pruner
-from tuner.journal import Fence, TrialJournal, create_tables, import_rdb_study, rdb_has_study
+from tuner.journal import Fence, TrialJournal, import_rdb_study, rdb_has_study
+from tuner.journal_db import create_tables
 from tuner.space import LIGHTGBM_DEFAULTS
 from tuner.trials import SearchResult, TrialRecord, record_from_frozen, summarise_study
 
@@ -124,7 +125,8 @@ def open_study(
     if not create:
         return optuna.load_study(study_name=study_name, storage=storage, sampler=sampler,
                                  pruner=chosen_pruner)
-    study = optuna.create_study(storage=storage, study_name=study_name, direction=direction,
+    study = optuna.create_study(storage=storage, study_name=study_name,
+                                direction="maximize" if direction == "maximize" else "minimize",
                                 sampler=sampler, pruner=chosen_pruner, load_if_exists=True)
     if not study.get_trials(deepcopy=False):
         first = dict(LIGHTGBM_DEFAULTS if initial_params is None else initial_params)

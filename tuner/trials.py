@@ -90,7 +90,8 @@ def summarise_study(study: optuna.Study, direction: str, selection: str = "best"
     best = None
     if complete:
         sign = -1.0 if direction == "maximize" else 1.0
-        best = record_from_frozen(min(complete, key=lambda t: (sign * t.value, t.number)))
+        best = record_from_frozen(min(complete, key=lambda t: (sign * float(t.value or 0.0),
+                                                             t.number)))
     chosen, report = select([record_from_frozen(t) for t in complete], direction, selection)
     return SearchResult(
         best=best,

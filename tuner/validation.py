@@ -214,20 +214,23 @@ def plan_validation(
     if strategy == "kfold":
         splits = KFold(n_folds, shuffle=True, random_state=seed32).split(train)
     elif strategy == "stratified":
+        classes = data.classes or []
         y = data.y[train]
         labels, counts = np.unique(y, return_counts=True)
-        if len(labels) < len(data.classes or ()) or counts.min() < n_folds:
-            rare = data.classes[int(labels[np.argmin(counts)])] if len(labels) else None
+        if len(labels) < len(classes) or counts.min() < n_folds:
+            rare = classes[int(labels[np.argmin(counts)])] if len(labels) else None
             raise _error("cv.folds", f"class {rare!r} has only {counts.min()} training "
                          f"row(s), fewer than the {n_folds} stratified folds; lower cv.folds")
         splits = StratifiedKFold(n_folds, shuffle=True, random_state=seed32).split(train, y)
     elif strategy == "group":
+        assert data.groups is not None  # checked when the plan's columns were read
         groups = data.groups[train]
         if len(np.unique(groups)) < n_folds:
             raise _error("cv.folds", f"{len(np.unique(groups))} groups outside the hold-out "
                                      f"are too few for {n_folds} folds")
         splits = GroupKFold(n_folds, shuffle=True, random_state=seed32).split(train, groups=groups)
     else:
+        assert data.times is not None  # checked when the plan's columns were read
         splits = _time_folds(data.times[train], n_folds)
     folds = [(_sorted(fit), _sorted(valid)) for fit, valid in splits]
     if auto:

@@ -67,8 +67,9 @@ def read_csv(path: str | os.PathLike[str], header: list[str], *, skip_rows: int,
     del columns
     # One block per column and the Arrow buffers released as they are converted, so the
     # table is never held twice.
-    frame = table.to_pandas(split_blocks=True, self_destruct=True, use_threads=False,
-                            memory_pool=_pool(), types_mapper=_text_as_str)
+    frame: pd.DataFrame = table.to_pandas(split_blocks=True, self_destruct=True,
+                                          use_threads=False, memory_pool=_pool(),
+                                          types_mapper=_text_as_str)
     return frame
 
 

@@ -62,7 +62,7 @@ def scan_bytes(path: str | os.PathLike[str]) -> ByteScan:
             # memchr for the letter first: a two-byte search is slow in digit-heavy text.
             hex_prefix = hex_prefix or (b"x" in block and b"0x" in block) or (
                 b"X" in block and b"0X" in block) or (
-                last == b"0" and block[:1] in (b"x", b"X"))
+                last == b"0" and bytes(block[:1]) in (b"x", b"X"))
             last = bytes(block[-1:])
             nul = block.find(b"\x00")
             if nul >= 0:

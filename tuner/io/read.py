@@ -134,7 +134,7 @@ def _normalise_column(name: str, s: pd.Series) -> pd.Series:
             return s.astype("int64")
         if ptypes.is_numeric_dtype(dtype):
             return s.astype("float64")
-    if isinstance(dtype, pd.StringDtype) and dtype != "str":
+    if isinstance(dtype, pd.StringDtype) and str(dtype) != "str":
         return s.astype("str")
     if ptypes.is_object_dtype(dtype) and _all_ints(s):
         # pandas keeps integers beyond 64 bits as Python ints, which Parquet cannot store;
