@@ -5,7 +5,9 @@ from __future__ import annotations
 
 import os
 from pathlib import Path
+from typing import Any
 
+import httpx
 import pytest
 
 from examples.demo_data import kilns
@@ -28,6 +30,18 @@ def _submit(server: Server, budget: dict[str, float]) -> str:
         return response.json()["id"]
 
 
+def _all_trials(client: httpx.Client, job_id: str) -> list[dict[str, Any]]:
+    """Every trial, page by page (a page holds at most 100)."""
+    items: list[dict[str, Any]] = []
+    params: dict[str, str] = {}
+    while True:
+        page = client.get(f"/v1/jobs/{job_id}/trials", params=params).json()
+        items += page["items"]
+        if page["next"] is None:
+            return items
+        params = {"cursor": page["next"]}
+
+
 def test_api_restart_mid_job_loses_nothing(db_url: str, tmp_path: Path) -> None:
     home = tmp_path / "home"
     api = Server(home=home, db_url=db_url, workers=0, extra_env=FAST).start()
@@ -40,14 +54,13 @@ def test_api_restart_mid_job_loses_nothing(db_url: str, tmp_path: Path) -> None:
             wait_until(lambda: len(finished(db_url, job_id)) >= 2, 120, "2 finished trials",
                        pool.logs)
             with api.client() as client:
-                seen = client.get(f"/v1/jobs/{job_id}/trials").json()["items"]
+                seen = _all_trials(client, job_id)
             api.stop()
             assert job_row(db_url, job_id).status == "running"  # the worker carries on
             api = Server(home=home, db_url=db_url, workers=0, extra_env=FAST).start()
             with api.client() as client:
                 job = wait_for_job(client, job_id, timeout=180)
-                after = {t["number"]: t for t in
-                         client.get(f"/v1/jobs/{job_id}/trials").json()["items"]}
+                after = {t["number"]: t for t in _all_trials(client, job_id)}
     finally:
         api.stop()
     assert job["status"] == "succeeded" and job["attempts"] == 1, job
