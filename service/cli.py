@@ -127,7 +127,9 @@ def cmd_serve(args: argparse.Namespace) -> int:
     from service.api.app import create_app
     from service.auth import any_key_exists
     from service.db import init_db
+    from service.memory import limit_malloc_arenas
 
+    limit_malloc_arenas()  # before uvicorn's threads start (see service/memory.py)
     settings = _settings(args)
     _setup_logging(settings)
     settings.ensure_dirs()

@@ -7,6 +7,7 @@ from __future__ import annotations
 import subprocess
 import sys
 import time
+from collections import Counter
 from datetime import UTC, datetime
 from pathlib import Path
 
@@ -115,6 +116,10 @@ def test_every_kind_of_change_leaves_an_audit_row_readable_by_admin_keys_only(
                 page = client.get("/v1/audit", params={"limit": 2,
                                                        "cursor": page["next"]}).json()
         assert len(seen) == total
+        # One row per change: none twice (the row rides in the change's transaction; the
+        # answer's status is added to that same row afterwards).
+        counts = Counter(e["action"] for e in seen)
+        assert counts["key.create"] == 2 and set(counts.values()) == {1, 2}, counts
         by_action = {e["action"]: e for e in seen}
         assert set(by_action) == {"key.create", "key.revoke", "dataset.upload", "job.create",
                                   "job.cancel", "dataset.delete"}, seen
@@ -125,6 +130,9 @@ def test_every_kind_of_change_leaves_an_audit_row_readable_by_admin_keys_only(
         assert by_action["key.revoke"]["target"] == writer_id
         for action in ("dataset.upload", "job.create", "job.cancel", "dataset.delete"):
             assert by_action[action]["key_id"] == admin_id
+        assert [by_action[a]["status"] for a in ("dataset.upload", "job.create",
+                                                 "job.cancel", "dataset.delete")] == [
+            201, 202, 202, 204]
         assert [e["id"] for e in seen] == sorted((e["id"] for e in seen), reverse=True)
     finally:
         server.stop()
