@@ -28,14 +28,15 @@ DATASET = {
 }
 PROGRESS = {"trials_completed": 17, "trials_pruned": 4, "trials_failed": 0,
             "trials_budget": 40, "best_score": 0.8712, "best_trial_number": 11,
-            "elapsed_seconds": 42.5, "eta_seconds": 38.5}
+            "elapsed_seconds": 42.5, "eta_seconds": 38.5,
+            "trials_by_fidelity": {"0.1111": 9, "0.3333": 3, "1": 9}}
 JOB: dict[str, Any] = {
     "id": "job_89ab01cd23ef4567", "dataset_id": DATASET["id"], "status": "running",
     "priority": 0, "target": "defect", "task": "binary", "metric": "roc_auc",
     "direction": "maximize",
     "spec": {"target": "defect", "task": "binary", "metric": "roc_auc",
              "budget": {"trials": 40, "seconds": None}},
-    "progress": PROGRESS, "model_id": None, "promotion": None, "error": None,
+    "progress": PROGRESS, "model_id": None, "promotion": None, "error": None, "problem": None,
     "warnings": [], "cancel_requested": False, "attempts": 1, "max_workers": 1,
     "created_at": "2026-03-14T09:31:00Z",
     "started_at": "2026-03-14T09:31:01Z", "finished_at": None,
