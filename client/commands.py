@@ -131,7 +131,7 @@ def _follow(api: Api, job_id: str, interval: float) -> dict[str, Any]:
     view = ProgressView(sys.stderr)
     try:
         while True:
-            job = api.get(f"/v1/jobs/{job_id}")
+            job: dict[str, Any] = api.get(f"/v1/jobs/{job_id}")
             view.update(job)
             if job["status"] in FINISHED:
                 return job

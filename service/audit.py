@@ -70,15 +70,16 @@ def record(session: Session, *, action: str, target: str | None, key_id: str | N
     it is that request's row (its method, path and key unless given): the request gets
     no second row."""
     pending = _CURRENT.get()
-    ours = pending is not None and pending.entry_id is None and _ENTRY not in session.info
-    if ours:
-        method = method or pending.method
-        path = path or pending.path[:300]
-        key_id = key_id or pending.key_id
+    fresh = pending is not None and pending.entry_id is None and _ENTRY not in session.info
+    ours = pending if fresh else None
+    if ours is not None:
+        method = method or ours.method
+        path = path or ours.path[:300]
+        key_id = key_id or ours.key_id
     entry = AuditEntry(action=action, target=target, key_id=key_id, method=method,
                        path=path, status=status, detail=detail)
     session.add(entry)
-    if ours:
+    if ours is not None:
         session.info[_ENTRY] = entry
     return entry
 

@@ -17,7 +17,7 @@ from datetime import datetime, timedelta
 import sqlalchemy as sa
 
 from service import audit
-from service.db import session_scope
+from service.db import rows_changed, session_scope
 from service.errors import Forbidden, Unauthorized
 from service.repository import new_id
 from service.tables import ApiKey, AuditEntry, KeyGeneration, utcnow
@@ -59,9 +59,9 @@ def create_key(url: str, *, scope: str,
 def revoke_key(url: str, key_id: str) -> bool:
     """Revokes ``key_id``; False when no active key has that id."""
     with session_scope(url) as session:
-        done = session.execute(
+        done = rows_changed(session.execute(
             sa.update(ApiKey).where(ApiKey.id == key_id, ApiKey.revoked_at.is_(None))
-            .values(revoked_at=utcnow())).rowcount
+            .values(revoked_at=utcnow())))
         if done:
             _bump_generation(session)
             session.add(AuditEntry(action="key.revoke", target=key_id))
@@ -77,9 +77,9 @@ def list_keys(url: str) -> list[ApiKey]:
 
 def any_key_exists(url: str) -> bool:
     with session_scope(url) as session:
-        return session.scalar(
+        return (session.scalar(
             sa.select(sa.func.count()).select_from(ApiKey).where(_usable(utcnow()))
-        ) > 0
+        ) or 0) > 0
 
 
 def _usable(now: datetime) -> sa.ColumnElement[bool]:

@@ -51,7 +51,7 @@ def compare(store: LocalStore, first: Model, second: Model, frame: pd.DataFrame,
     if first.task != second.task or first.target != second.target:
         out["reasons"].append(f"the models predict different things ({first.task} "
                               f"'{first.target}' vs {second.task} '{second.target}')")
-    preds = []
+    preds: list[np.ndarray | None] = []
     for model in (first, second):
         if model.target not in frame.columns:
             out["reasons"].append(f"the rows lack the target '{model.target}'")
@@ -77,7 +77,7 @@ def compare(store: LocalStore, first: Model, second: Model, frame: pd.DataFrame,
                scores=dict(zip((first.id, second.id), result["scores"], strict=True)),
                difference=result["difference"], interval=result["interval"],
                resamples=result["resamples"])
-    out["better"] = {1: second.id, 0: first.id}.get(result["better"])  # type: ignore[arg-type]
+    out["better"] = {1: second.id, 0: first.id}.get(result["better"])
     out["comparable"] = not any(seen_by.get(m.id) for m in (first, second))
     out["difference_is"] = f"{second.id} minus {first.id}"
     return out

@@ -6,10 +6,11 @@ import contextlib
 import threading
 import time
 from collections.abc import Iterator
+from typing import Any
 
 import sqlalchemy as sa
 from sqlalchemy import event
-from sqlalchemy.engine import Engine
+from sqlalchemy.engine import CursorResult, Engine, Result
 from sqlalchemy.orm import Session, sessionmaker
 
 from tuner.journal_db import POSTGRES_CONNECT_ARGS, is_transient, with_reconnect
@@ -99,6 +100,14 @@ def session_scope(url: str) -> Iterator[Session]:
         raise
     finally:
         session.close()
+
+
+def rows_changed(result: Result[Any]) -> int:
+    """How many rows an UPDATE or DELETE touched. Session.execute is typed as returning a
+    Result; for those statements it is a CursorResult, the kind that counts rows."""
+    if not isinstance(result, CursorResult):
+        raise TypeError(f"{type(result).__name__} does not count the rows it changed")
+    return result.rowcount
 
 
 def init_db(url: str, *, attempts: int = 5) -> None:

@@ -16,7 +16,7 @@ import sys
 import tempfile
 import time
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 
 import httpx
 
@@ -120,7 +120,7 @@ def report_location(client: httpx.Client, job_id: str, *, keyed: bool) -> str:
         return f"{client.base_url}".rstrip("/") + f"/v1/jobs/{job_id}/report"
     answer = client.post(f"/v1/jobs/{job_id}/report-links", json={"expires_in": 3600})
     answer.raise_for_status()
-    return answer.json()["url"]
+    return cast(str, answer.json()["url"])  # httpx's json() is untyped
 
 
 def run_demo(*, trials: int = 30, keep: bool = False, log: Path | None = None,
@@ -157,11 +157,11 @@ def run_demo(*, trials: int = 30, keep: bool = False, log: Path | None = None,
                       f"{len(dataset['columns'])} columns")
                 for warning in dataset["warnings"]:
                     print(f"  warning: {warning}")
-                job = client.post("/v1/jobs", json={"dataset_id": dataset["id"],
-                                                    "target": target, "seed": 7,
-                                                    "budget": {"trials": trials}})
-                job.raise_for_status()
-                jobs.append((name, question, job.json()))
+                created = client.post("/v1/jobs", json={"dataset_id": dataset["id"],
+                                                        "target": target, "seed": 7,
+                                                        "budget": {"trials": trials}})
+                created.raise_for_status()
+                jobs.append((name, question, created.json()))
             print(f"\ntuning both tables, {trials} trials each:")
             finished = _wait_all(client, [(name, j) for name, _, j in jobs])
             samples = {name: _sample_row(tables[name], target) for name, target, _ in JOBS}
@@ -207,7 +207,8 @@ def _sample_row(path: Path, target: str) -> dict[str, Any]:
     import pandas as pd
 
     row = pd.read_csv(path, nrows=1).drop(columns=[target]).iloc[0]
-    return {k: (None if pd.isna(v) else v.item() if hasattr(v, "item") else v)
+    # read_csv names the columns from the header row: text.
+    return {str(k): (None if pd.isna(v) else v.item() if hasattr(v, "item") else v)
             for k, v in row.items()}
 
 

@@ -28,7 +28,7 @@ from pathlib import Path
 
 import sqlalchemy as sa
 
-from service.db import get_engine, is_sqlite, session_scope
+from service.db import get_engine, is_sqlite, rows_changed, session_scope
 from service.settings import Settings
 from service.storage import ArtifactStore
 from service.tables import Dataset, Job, JobStatus, Model, Trial, utcnow
@@ -112,10 +112,10 @@ def prune(settings: Settings, *, trials_days: float | None,
                 Job.status.in_(_FINISHED), Job.finished_at < cutoff)).all()
             for job_id, study in old:
                 gone = session.execute(sa.delete(Trial).where(Trial.job_id == job_id))
-                report.trials += gone.rowcount or 0  # type: ignore[attr-defined]
+                report.trials += rows_changed(gone)
                 if study:
                     rows = session.execute(sa.delete(JOURNAL).where(JOURNAL.c.study == study))
-                    report.journal_rows += rows.rowcount or 0  # type: ignore[attr-defined]
+                    report.journal_rows += rows_changed(rows)
                     session.execute(sa.delete(BEATS).where(BEATS.c.study == study))
             report.jobs = len(old)
     if unreferenced:

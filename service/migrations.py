@@ -22,6 +22,7 @@ start-up race (docs/measured-facts.md §2).
 from __future__ import annotations
 
 from collections.abc import Callable
+from typing import Any
 
 import sqlalchemy as sa
 from sqlalchemy.engine import Connection, Engine
@@ -34,7 +35,7 @@ SCHEMA_VERSION = 3
 STEPS: dict[int, Callable[[Connection], None]] = {}
 
 
-def _default_sql(column: sa.Column, conn: Connection) -> str | None:
+def _default_sql(column: sa.Column[Any], conn: Connection) -> str | None:
     if column.server_default is not None:
         arg = column.server_default.arg  # type: ignore[attr-defined]
         if isinstance(arg, str):

@@ -31,6 +31,7 @@ from datetime import datetime, timedelta
 import sqlalchemy as sa
 from sqlalchemy.orm import Session
 
+from service.db import rows_changed
 from service.tables import Job, JobStatus, JobWorker, utcnow
 
 QUEUED = JobStatus.QUEUED.value
@@ -212,7 +213,7 @@ def _beat_participant(session: Session, *, job_id: str, worker_id: str, now: dat
         .values(heartbeat_at=now)
         .execution_options(synchronize_session=False)
     )
-    return result.rowcount == 1  # type: ignore[attr-defined]
+    return rows_changed(result) == 1
 
 
 def heartbeat_joiner(session: Session, *, job_id: str, worker_id: str) -> tuple[bool, bool]:
@@ -240,7 +241,7 @@ def release(session: Session, *, job_id: str, worker_id: str,
         .execution_options(synchronize_session=False)
     )
     leave(session, job_id=job_id, worker_id=worker_id)
-    return result.rowcount == 1  # type: ignore[attr-defined]
+    return rows_changed(result) == 1
 
 
 def finish(
@@ -260,10 +261,10 @@ def finish(
         .values(status=status.value, error=error, model_id=model_id, finished_at=utcnow())
         .execution_options(synchronize_session=False)
     )
-    if result.rowcount == 1:  # type: ignore[attr-defined]
+    if rows_changed(result) == 1:
         # Joiners still beating see the job finished and stop; their rows go now.
         session.execute(sa.delete(JobWorker).where(JobWorker.job_id == job_id))
-    return result.rowcount == 1  # type: ignore[attr-defined]
+    return rows_changed(result) == 1
 
 
 def requeue_stale(session: Session, *, stale_after_seconds: float) -> list[str]:

@@ -113,12 +113,12 @@ class ArtifactStore:
     def put(self, tmp: Path, key: str) -> None:
         """Move a finished temporary file into place atomically (see the module notes)."""
         if not self.is_local:
-            target = self._remote(key)
-            staged = f"{target}.tmp-{secrets.token_hex(6)}"
-            self.fs.makedirs(target.rsplit("/", 1)[0], exist_ok=True)
+            remote = self._remote(key)
+            staged = f"{remote}.tmp-{secrets.token_hex(6)}"
+            self.fs.makedirs(remote.rsplit("/", 1)[0], exist_ok=True)
             self.fs.put_file(str(tmp), staged)
             try:
-                self.fs.mv(staged, target)
+                self.fs.mv(staged, remote)
             except BaseException:
                 if self.fs.exists(staged):
                     self.fs.rm(staged)

@@ -177,7 +177,7 @@ class MetricsMiddleware:
         status = {"code": 500}
 
         async def counting_receive() -> dict[str, Any]:
-            message = await receive()
+            message: dict[str, Any] = await receive()
             if message["type"] == "http.request":
                 self.metrics.upload_bytes.inc(len(message.get("body", b"")))
             return message

@@ -12,7 +12,7 @@ import logging
 import threading
 import time
 from collections.abc import Callable
-from typing import Any
+from typing import Any, TypeVar
 
 import sqlalchemy as sa
 from sqlalchemy import event
@@ -144,8 +144,11 @@ def is_transient(exc: BaseException) -> bool:
                for c in kind.__mro__)
 
 
-def with_reconnect(action: Callable[[], Any], what: str,
-                   seconds: float | None = None) -> Any:
+_T = TypeVar("_T")
+
+
+def with_reconnect(action: Callable[[], _T], what: str,
+                   seconds: float | None = None) -> _T:
     """``action()``, tried again after a lost connection with pauses of 0.1 s doubling up
     to 2 s, for up to ``seconds`` (default ``RECONNECT_SECONDS``); then the error stands."""
     deadline = time.monotonic() + (RECONNECT_SECONDS if seconds is None else seconds)

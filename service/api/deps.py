@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Iterator
-from typing import Annotated
+from typing import Annotated, cast
 
 from fastapi import Depends, Request
 from sqlalchemy.orm import Session
@@ -15,11 +15,12 @@ from service.storage import LocalStore
 
 
 def get_settings_dep(request: Request) -> Settings:
-    return request.app.state.settings
+    # app.state is untyped; service/api/app.py puts the Settings there.
+    return cast(Settings, request.app.state.settings)
 
 
 def get_store(request: Request) -> LocalStore:
-    return request.app.state.store
+    return cast(LocalStore, request.app.state.store)
 
 
 def get_session(settings: Annotated[Settings, Depends(get_settings_dep)]) -> Iterator[Session]:

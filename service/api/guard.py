@@ -36,6 +36,7 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 from service import links
 from service.api import problems
 from service.errors import ServiceError
+from service.settings import Settings
 
 #: Paths that need no key at all (health, metrics, the API description and its page).
 PUBLIC_PREFIXES = ("/healthz", "/readyz", "/metrics", "/docs", "/openapi.json")
@@ -77,7 +78,7 @@ def is_loopback_host(host: str) -> bool:
         return False
 
 
-def body_limit(path: str, settings: Any) -> int:
+def body_limit(path: str, settings: Settings) -> int:
     if _LARGE_BODY.match(path):
         return settings.max_upload_mb * (1 << 20) + _FRAMING
     return settings.max_request_kb * (1 << 10)

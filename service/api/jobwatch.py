@@ -47,7 +47,8 @@ Snapshot = tuple[dict[str, Any], list[dict[str, Any]]]
 
 
 def _poll(url: str, job_id: str, floor: int, seen: set[int],
-          status_payload: Callable[[Any], dict[str, Any]]) -> tuple[str, dict, list[TrialOut]]:
+          status_payload: Callable[[Any], dict[str, Any]],
+          ) -> tuple[str, dict[str, Any], list[TrialOut]]:
     """The job's status, then its finished trials numbered ``floor`` or more not yet seen."""
     with session_scope(url) as session:
         job = repository.get_job(session, job_id)
@@ -162,7 +163,8 @@ class WatchHub:
         return Ticket(self, who, feed)
 
     async def events(self, ticket: Ticket,
-                     disconnected: Callable[[], Any]) -> AsyncIterator[tuple[str, dict]]:
+                     disconnected: Callable[[], Any],
+                     ) -> AsyncIterator[tuple[str, dict[str, Any]]]:
         """``(event, data)`` pairs for one stream: status changes, trials, the final
         status. Releases the stream's place when it ends, however it ends."""
         feed = ticket.feed

@@ -11,7 +11,8 @@ from typing import Any
 from fastapi import FastAPI
 
 from service.api import paging
-from service.api.problems import PROBLEM, TYPE_BASE
+from service.api.problems import PROBLEM
+from service.errors import TYPE_BASE
 
 DATASET = {
     "id": "ds_0123abcd4567ef89", "name": "kilns", "rows": 1200, "n_columns": 13,
@@ -29,7 +30,7 @@ PROGRESS = {"trials_completed": 17, "trials_pruned": 4, "trials_failed": 0,
             "trials_budget": 40, "best_score": 0.8712, "best_trial_number": 11,
             "elapsed_seconds": 42.5, "eta_seconds": 38.5,
             "trials_by_fidelity": {"0.1111": 9, "0.3333": 3, "1": 9}}
-JOB = {
+JOB: dict[str, Any] = {
     "id": "job_89ab01cd23ef4567", "dataset_id": DATASET["id"], "status": "running",
     "priority": 0, "target": "defect", "task": "binary", "metric": "roc_auc",
     "direction": "maximize",
@@ -117,11 +118,12 @@ COMPARISON = {
 CHANNEL_MOVE = {"model_id": MODEL["id"], "previous_model_id": "mdl_0f1e2d3c4b5a6978",
                 "action": "set", "forced": False, "key_id": "key_5a5a5a5a5a5a5a5a",
                 "job_id": None, "at": "2026-04-02T08:00:00Z"}
-CHANNEL = {"name": "kilns", "model_id": MODEL["id"], "created_at": "2026-03-14T10:00:00Z",
-           "updated_at": "2026-04-02T08:00:00Z",
-           "history": [CHANNEL_MOVE,
-                       {**CHANNEL_MOVE, "model_id": "mdl_0f1e2d3c4b5a6978",
-                        "previous_model_id": None, "at": "2026-03-14T10:00:00Z"}]}
+CHANNEL: dict[str, Any] = {
+    "name": "kilns", "model_id": MODEL["id"], "created_at": "2026-03-14T10:00:00Z",
+    "updated_at": "2026-04-02T08:00:00Z",
+    "history": [CHANNEL_MOVE,
+                {**CHANNEL_MOVE, "model_id": "mdl_0f1e2d3c4b5a6978",
+                 "previous_model_id": None, "at": "2026-03-14T10:00:00Z"}]}
 KEPT_ROW = {"firing_id": "F-000417", **ROW}
 PREDICT_EXAMPLES = {
     "request": {JSON: {"rows": [KEPT_ROW], "keep": ["firing_id"]},

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import logging
+from collections.abc import Mapping
 from typing import Any
 
 from fastapi import FastAPI, Request
@@ -64,7 +65,7 @@ async def _tuner_input_error(_: Request, exc: Exception) -> JSONResponse:
     return ProblemResponse(body, status_code=422, media_type=PROBLEM)
 
 
-def _entry(e: dict[str, Any]) -> dict[str, Any]:
+def _entry(e: Mapping[str, Any]) -> dict[str, Any]:
     if e.get("type") in ("json_invalid", "json_type"):
         # The location of a JSON syntax error is a character offset, not a field.
         offset = [p for p in e.get("loc", ()) if isinstance(p, int)]

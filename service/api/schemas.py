@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from datetime import UTC, datetime
-from typing import TYPE_CHECKING, Any, Literal, TypeAlias
+from typing import TYPE_CHECKING, Any, Literal, TypeAlias, overload
 
 from pydantic import BaseModel, ConfigDict, Field
 
@@ -35,6 +35,12 @@ else:
     Unseen, StatusName = Literal[UNSEEN_POLICIES], Literal[JOB_STATUSES]
 
 
+@overload
+def as_utc(value: datetime) -> datetime: ...
+@overload
+def as_utc(value: None) -> None: ...
+@overload
+def as_utc(value: datetime | None) -> datetime | None: ...
 def as_utc(value: datetime | None) -> datetime | None:
     # SQLite hands back naive datetimes; every one we store is UTC.
     if value is None or value.tzinfo is not None:

@@ -17,7 +17,7 @@ import json
 import re
 from collections.abc import Collection, Iterable, Sequence
 from datetime import datetime
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, cast
 
 from fastapi import Request
 from fastapi.responses import Response
@@ -79,7 +79,9 @@ def neutralised_frame(frame: pd.DataFrame, exact: Collection[str] = ()) -> pd.Da
         fixed = [neutralise(u) for u in uniques]
         if any(f is not u for f, u in zip(fixed, uniques, strict=True)):
             values = np.asarray([*fixed, None], dtype=object)[codes]
-            out.isetitem(i, pd.Series(values, index=frame.index, dtype=object))
+            # pandas takes a Series here; pandas-stubs leave it out of the value types.
+            out.isetitem(i, pd.Series(values, index=frame.index,  # type: ignore[arg-type]
+                                      dtype=object))
     return out
 
 
@@ -98,11 +100,12 @@ def frame_csv(frame: pd.DataFrame, exact: Collection[str] = ()) -> str:
     """
     frame = neutralised_frame(frame, exact)
     header = [str(c) for c in frame.columns]
-    columns = [_cells(frame[c]) for c in frame.columns]
-    if any(c is None for c in columns) or not _plain(header) or (
+    cells = [_cells(frame[c]) for c in frame.columns]
+    columns = [c for c in cells if c is not None]
+    if len(columns) < len(cells) or not _plain(header) or (
             len(columns) == 1 and "" in columns[0]):  # pandas quotes a lone empty cell
         return frame.to_csv(index=False)
-    lines = map(",".join, zip(*columns, strict=True))  # type: ignore[arg-type]
+    lines = map(",".join, zip(*columns, strict=True))
     return ",".join(header) + "\n" + "".join(line + "\n" for line in lines)
 
 
@@ -124,7 +127,8 @@ def _cells(s: pd.Series) -> list[str] | None:
         texts = [str(u) for u in uniques]
         if not _plain(texts):
             return None
-        return np.asarray([*texts, ""], dtype=object)[codes].tolist()
+        # tolist() is untyped; an object array of these texts gives back str.
+        return cast(list[str], np.asarray([*texts, ""], dtype=object)[codes].tolist())
     return None
 
 

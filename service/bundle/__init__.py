@@ -31,7 +31,7 @@ predict.py     predictions with lightgbm and pandas alone:
 def _json(value: Any) -> str:
     def default(obj: Any) -> Any:
         if isinstance(obj, datetime):
-            return as_utc(obj).isoformat()  # type: ignore[union-attr]
+            return as_utc(obj).isoformat()
         raise TypeError(f"cannot serialise {type(obj).__name__}")
 
     return json.dumps(value, indent=2, default=default) + "\n"
@@ -56,7 +56,7 @@ def build_bundle(model: Model, job: Job, dataset: Dataset | None, model_text: by
         },
         "versions": {"lightgbm": version("lightgbm")},
     }
-    files = {
+    files: dict[str, str | bytes] = {
         "model.txt": model_text,
         "schema.json": _json({"task": model.task, "target": model.target,
                               "classes": model.classes, **model.feature_schema}),

@@ -21,6 +21,7 @@ from __future__ import annotations
 import json
 import sys
 from pathlib import Path
+from typing import Any
 
 import lightgbm as lgb
 import numpy as np
@@ -60,7 +61,7 @@ def boolean(value: object) -> float:
     return np.nan
 
 
-def column(raw: pd.Series, feature: dict) -> pd.Series:
+def column(raw: pd.Series, feature: dict[str, Any]) -> pd.Series:
     kind = feature["kind"]
     if kind == "numeric":
         if pd.api.types.is_bool_dtype(raw.dtype):
@@ -75,7 +76,9 @@ def column(raw: pd.Series, feature: dict) -> pd.Series:
     if kind == "categorical":
         levels = list(feature["levels"] or [])
         codes = pd.Index(levels, dtype=object).get_indexer(raw.astype(object).map(level_text))
-        return pd.Series(pd.Categorical.from_codes(codes, categories=levels), index=raw.index)
+        # pandas takes any list-like as categories; pandas-stubs ask for an Index.
+        cats = pd.Categorical.from_codes(codes, categories=levels)  # type: ignore[call-overload]
+        return pd.Series(cats, index=raw.index)
     raise ValueError(f"unknown feature kind {kind!r} for column {feature['name']!r}")
 
 
@@ -92,7 +95,7 @@ def date_parts(raw: pd.Series, parts: list[str]) -> list[pd.Series]:
     return out
 
 
-def features(table: pd.DataFrame, schema: dict, booster: lgb.Booster) -> pd.DataFrame:
+def features(table: pd.DataFrame, schema: dict[str, Any], booster: lgb.Booster) -> pd.DataFrame:
     missing = [f["name"] for f in schema["features"] if f["name"] not in table.columns]
     if missing:
         raise SystemExit(f"predict.py: columns missing from the input: {', '.join(missing)}")

@@ -213,7 +213,7 @@ def _calibration(model: dict[str, Any]) -> str:
     ece, held_ece = cal["oof_ece"], (cal.get("holdout") or {}).get("ece")
     parts = [f"out-of-fold log loss {_num(oof['before'])} → {_num(oof['after'])}, "
              f"calibration error {_num(ece['before'], 3)} → {_num(ece['after'], 3)}"]
-    if held:
+    if held and held_ece:  # the hold-out keeps both, or neither (tuner/model.py)
         parts.append(f"hold-out log loss {_num(held['before'])} → {_num(held['after'])}, "
                      f"calibration error {_num(held_ece['before'], 3)} → "
                      f"{_num(held_ece['after'], 3)}")

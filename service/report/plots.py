@@ -117,7 +117,7 @@ def _bars(labels: list[str], values: list[float], *, xlabel: str, title: str,
 def hyperparameters(importance: dict[str, Any] | None) -> bytes:
     """fANOVA share of score variance per tuned parameter."""
     found = (importance or {}).get("importances") or {}
-    if not found:
+    if importance is None or not found:
         raise PlotUnavailable((importance or {}).get("note", "no hyperparameter importance"))
     names = list(found)
     return _bars(names, [100 * found[n] for n in names],

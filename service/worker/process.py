@@ -107,12 +107,12 @@ class Worker:
         self._fruitless = {j: at for j, at in self._fruitless.items()
                            if now - at < max(10.0, self.settings.stale_after_seconds)}
         with session_scope(url) as session:
-            job_id = queue.join_next(session, worker_id=self.worker_id,
-                                     skip=self._fruitless)
-        if job_id is not None:
-            with log_context(job_id=job_id, worker_id=self.worker_id):
-                if join_job(self.ctx, job_id) == 0:
-                    self._fruitless[job_id] = time.monotonic()
+            joining = queue.join_next(session, worker_id=self.worker_id,
+                                      skip=self._fruitless)
+        if joining is not None:
+            with log_context(job_id=joining, worker_id=self.worker_id):
+                if join_job(self.ctx, joining) == 0:
+                    self._fruitless[joining] = time.monotonic()
             return True
         return False
 

@@ -66,7 +66,7 @@ def run_scoring(url: str, store: ArtifactStore, scoring_id: str, worker_id: str,
 def _score(url: str, predictor: tuner.Predictor, source: object, dest: object, *,
            keep: list[str], unseen: str, scoring_id: str, worker_id: str,
            shutdown: threading.Event, chunk_rows: int) -> int:
-    parquet = pq.ParquetFile(source)  # type: ignore[arg-type]
+    parquet = pq.ParquetFile(source)
     present = set(parquet.schema_arrow.names)
     features = [n for n in predictor.schema.columns if n in present]  # input columns
     columns = list(dict.fromkeys([*keep, *features]))
@@ -86,7 +86,7 @@ def _score(url: str, predictor: tuner.Predictor, source: object, dest: object, *
                 table = table.add_column(i, name, batch.column(batch.schema.get_field_index(
                     name)))
             if writer is None:
-                writer = pq.ParquetWriter(dest, table.schema)  # type: ignore[arg-type]
+                writer = pq.ParquetWriter(dest, table.schema)
             writer.write_table(table)
             done += batch.num_rows
             with session_scope(url) as session:

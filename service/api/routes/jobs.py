@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from datetime import datetime
-from typing import Annotated
+from typing import Annotated, Any
 
 from fastapi import APIRouter, Query, Request, Response
 from sqlalchemy.orm import Session
@@ -13,7 +13,6 @@ from service.admission import WARM_START_TRIALS, admit
 from service.api import paging
 from service.api.deps import SessionDep, SettingsDep, StoreDep
 from service.api.schemas import (
-    JobCreate,
     JobList,
     JobOut,
     Leaderboard,
@@ -27,11 +26,11 @@ from service.api.schemas import (
 from service.api.tabular import csv_response, wants_csv
 from service.db import session_scope
 from service.errors import NotFound, Unprocessable
-from service.jobrequest import JobRequest
+from service.jobrequest import JobCreate, JobRequest
 from service.progress import eta_seconds
 from service.settings import Settings
 from service.storage import LocalStore
-from service.tables import Job, JobStatus, utcnow
+from service.tables import Job, JobStatus, Trial, utcnow
 
 router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
 StatusFilter = StatusName
@@ -81,7 +80,7 @@ def to_out(job: Job) -> JobOut:
     )
 
 
-def _warm_start(session: Session, job_id: str) -> tuple[dict, str]:
+def _warm_start(session: Session, job_id: str) -> tuple[dict[str, Any], str]:
     """The earlier job's best trials, to enqueue first; and that job's task."""
     def bad(message: str) -> Unprocessable:
         return Unprocessable(message, errors=[{"field": "warm_start_job_id",
@@ -199,7 +198,15 @@ def _trial_out(t: object) -> TrialOut:
     return TrialOut.model_validate(t, from_attributes=True)
 
 
-_CSV_TOO = {200: {"content": {"text/csv": {"schema": {"type": "string"}}}}}
+_CSV_TOO: dict[int | str, dict[str, Any]] = {
+    200: {"content": {"text/csv": {"schema": {"type": "string"}}}}}
+
+
+def _ranked_score(trial: Trial) -> float:
+    # repository.leaderboard ranks only trials that have a score.
+    if trial.score is None:
+        raise RuntimeError(f"trial {trial.number} is ranked without a score")
+    return trial.score
 
 
 @router.get("/{job_id}/trials", response_model=TrialList, responses=_CSV_TOO)
@@ -258,7 +265,7 @@ def leaderboard(
         session, job_id=job_id, direction=direction, after=after,
         limit=None if page_size is None else page_size + 1)
     rows = [
-        LeaderboardRow(rank=i, number=t.number, score=t.score, score_std=t.score_std,
+        LeaderboardRow(rank=i, number=t.number, score=_ranked_score(t), score_std=t.score_std,
                        score_se=t.score_se, params=t.params, boosting_rounds=t.boosting_rounds)
         for i, t in enumerate(trials, start=rank + 1)
     ]
