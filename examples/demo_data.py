@@ -104,7 +104,7 @@ _YEAR_START = np.datetime64("2024-01-01", "D")
 
 def _sigmoid(x: np.ndarray) -> np.ndarray:
     """Logistic function."""
-    return 1.0 / (1.0 + np.exp(-x))
+    return np.asarray(1.0 / (1.0 + np.exp(-x)))
 
 
 def _blank_out(rng: np.random.Generator, values: np.ndarray, fraction: float) -> np.ndarray:
