@@ -174,6 +174,10 @@ def test_pruned_trials_keep_their_fold_scores(setup) -> None:
     # An upper threshold below any AUC prunes every trial at its first report.
     study = optuna.create_study(direction="maximize",
                                 pruner=optuna.pruners.ThresholdPruner(upper=0.0))
+    # LightGBM's defaults (learning rate 0.1) for both trials: a sampled high learning rate
+    # would reach an in-fold checkpoint and be pruned before fold 0 ends.
+    for _ in range(2):
+        study.enqueue_trial(dict(LIGHTGBM_DEFAULTS))
     study.optimize(objective, n_trials=2)
     for trial in study.trials:
         assert trial.state == TrialState.PRUNED
