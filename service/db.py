@@ -43,8 +43,12 @@ def _sqlite_pragmas(dbapi_conn, _record) -> None:  # type: ignore[no-untyped-def
 
 def make_engine(url: str) -> Engine:
     if is_sqlite(url):
+        # A larger pool than SQLAlchemy's 5 + 10: writers waiting for SQLite's one write
+        # lock each hold a connection, and readers (WAL lets them read meanwhile) must not
+        # starve behind them at checkout.
         engine = sa.create_engine(
-            url, connect_args={"timeout": SQLITE_BUSY_TIMEOUT_S, "check_same_thread": False}
+            url, connect_args={"timeout": SQLITE_BUSY_TIMEOUT_S, "check_same_thread": False},
+            pool_size=10, max_overflow=30,
         )
         event.listen(engine, "connect", _sqlite_pragmas)
         return engine
