@@ -33,6 +33,7 @@ from tuner.profile import (
     profile_column,
     profile_table,
 )
+from tuner.profiled import check_names
 from tuner.schema import FeatureSchema, FeatureSpec, convert_feature
 from vocabulary import COLUMN_KINDS as KINDS
 from vocabulary import DECLARED_KINDS, TASKS
@@ -114,28 +115,6 @@ def _error(field: str, message: str) -> dict[str, str]:
 def _raise(errors: list[dict[str, str]]) -> None:
     if errors:
         raise DatasetError(summarise("cannot prepare the dataset", errors), errors)
-
-
-def _check_names(df: pd.DataFrame, target: str, features: Sequence[str] | None,
-                 exclude: Sequence[str] | None, roles: dict[str, str | None]) -> None:
-    columns = [str(c) for c in df.columns]
-    available = set(columns)
-    if target not in available:
-        listing = ", ".join(columns[:50]) + (", ..." if len(columns) > 50 else "")
-        _raise([_error("target", f"column '{target}' not found; available columns: {listing}")])
-    errors = []
-    for field, names in (("features", features), ("exclude", exclude)):
-        unknown = [n for n in names or () if n not in available]
-        if unknown:
-            errors.append(_error(field, f"unknown columns: {', '.join(map(repr, unknown))}"))
-    if features is not None and target in features:
-        errors.append(_error("features", f"the target '{target}' cannot also be a feature"))
-    for field, name in roles.items():
-        if name is not None and name not in available:
-            errors.append(_error(field, f"column '{name}' not found"))
-        elif name is not None and name == target:
-            errors.append(_error(field, f"column '{name}' is the target"))
-    _raise(errors)
 
 
 def _labels(y: pd.Series, kind: str) -> tuple[np.ndarray, list[Any]]:
@@ -293,7 +272,7 @@ def prepare(
         features = list(dict.fromkeys(features))
     roles = {"weight_column": weight_column, "group_column": group_column,
              "time_column": time_column}
-    _check_names(df, target, features, exclude, roles)
+    check_names([str(c) for c in df.columns], target, features, exclude, roles)
     declared = _check_kinds(df, target, features, dict(column_kinds or {}))
     unknown = [s for s in segments or () if s not in df.columns or s == target]
     if unknown:

@@ -65,8 +65,10 @@ def infer_task(column: Mapping[str, Any]) -> str | None:
     return "regression"
 
 
-def _check_names(names: list[str], target: str, features: Sequence[str] | None,
-                 exclude: Sequence[str] | None, roles: dict[str, str | None]) -> None:
+def check_names(names: list[str], target: str, features: Sequence[str] | None,
+                exclude: Sequence[str] | None, roles: dict[str, str | None]) -> None:
+    """The target, features, exclusions and role columns named against ``names``;
+    shared by admission (stored profile) and ``prepare`` (the rows)."""
     available = set(names)
     if target not in available:
         listing = ", ".join(names[:50]) + (", ..." if len(names) > 50 else "")
@@ -306,7 +308,7 @@ def judge(columns: Sequence[Mapping[str, Any]], rows: int, *, target: str,
         features = list(dict.fromkeys(features))
     roles = {"weight_column": weight_column, "group_column": group_column,
              "time_column": time_column}
-    _check_names(names, target, features, exclude, roles)
+    check_names(names, target, features, exclude, roles)
     kinds = dict(column_kinds or {})
     _check_kinds(set(names), target, features, kinds)
     unknown = [s for s in segments or () if s not in by_name or s == target]
