@@ -41,6 +41,9 @@ JOB: dict[str, Any] = {
     "created_at": "2026-03-14T09:31:00Z",
     "started_at": "2026-03-14T09:31:01Z", "finished_at": None,
 }
+# A row of the jobs list: the job without its stored request, warnings, problem or promotion.
+JOB_SUMMARY = {k: v for k, v in JOB.items()
+               if k not in ("spec", "warnings", "problem", "promotion")}
 PARAMS = {"learning_rate": 0.052, "num_leaves": 31, "min_data_in_leaf": 20,
           "feature_fraction": 0.8, "lambda_l2": 0.01}
 TRIAL = {"number": 11, "state": "complete", "params": PARAMS, "score": 0.8712,
@@ -153,7 +156,7 @@ EXAMPLES: dict[tuple[str, str], dict[str, Any]] = {
     ("post", "/v1/jobs"): {"request": {JSON: JOB_CREATE},
                            "responses": {"202": {JSON: {**JOB, "status": "queued"}}}},
     ("get", "/v1/jobs"): {"responses": {"200": {
-        JSON: {"items": [JOB], "total": 3, "next": NEXT_JOBS},
+        JSON: {"items": [JOB_SUMMARY], "total": 3, "next": NEXT_JOBS},
         CSV: "id,dataset_id,status,target,task,metric,trials_completed,trials_pruned,"
              "trials_failed,trials_budget,best_score,elapsed_seconds,eta_seconds,model_id,"
              "created_at,finished_at,error\n"

@@ -90,7 +90,10 @@ class Progress(BaseModel):
     trials_by_fidelity: dict[str, int] = Field(default_factory=dict)
 
 
-class JobOut(BaseModel):
+class JobSummary(BaseModel):
+    """A row of the jobs list: what a job is and how far it got. ``GET /v1/jobs/{id}``
+    adds the stored request (``spec``), warnings, the problem document and the promotion."""
+
     id: str
     dataset_id: str
     status: str
@@ -99,16 +102,9 @@ class JobOut(BaseModel):
     task: str
     metric: str
     direction: str
-    spec: dict[str, Any]
     progress: Progress
     model_id: str | None
-    # With a promote request, once the job has succeeded: what happened to the channel.
-    promotion: dict[str, Any] | None = None
     error: str | None
-    # A job failed for bad input that only its rows showed: the problem document (RFC
-    # 9457, with the fields named) that submission would have answered.
-    problem: dict[str, Any] | None = None
-    warnings: list[str]
     cancel_requested: bool
     attempts: int
     max_workers: int = 1
@@ -117,7 +113,17 @@ class JobOut(BaseModel):
     finished_at: datetime | None
 
 
-class JobList(Page[JobOut]):
+class JobOut(JobSummary):
+    spec: dict[str, Any]
+    # With a promote request, once the job has succeeded: what happened to the channel.
+    promotion: dict[str, Any] | None = None
+    # A job failed for bad input that only its rows showed: the problem document (RFC
+    # 9457, with the fields named) that submission would have answered.
+    problem: dict[str, Any] | None = None
+    warnings: list[str]
+
+
+class JobList(Page[JobSummary]):
     pass
 
 

@@ -151,6 +151,25 @@ def test_lists_keep_their_documented_order(filled: Filled) -> None:
     assert queued["total"] == 4 and {j["status"] for j in queued["items"]} == {"queued"}
 
 
+def test_a_jobs_list_item_is_the_job_without_its_request(filled: Filled) -> None:
+    # The list reads the summary fields out of the stored request in SQL (JSON paths on
+    # SQLite and PostgreSQL); each must equal what the job itself answers.
+    with filled.api.client() as client:
+        jobs = client.get("/v1/jobs", params={"limit": 1000}).json()["items"]
+        whole = {j["id"]: client.get(f"/v1/jobs/{j['id']}").json() for j in jobs}
+    assert len(jobs) == 5
+    for item in jobs:
+        job = whole[item["id"]]
+        assert set(job) - set(item) == {"spec", "warnings", "problem", "promotion"}
+        assert item["target"] == job["spec"]["target"] == "defect"
+        assert item["progress"]["trials_budget"] == job["spec"]["budget"]["trials"] == 3
+        timeless = ("elapsed_seconds", "eta_seconds")
+        assert {k: v for k, v in item["progress"].items() if k not in timeless} == \
+            {k: v for k, v in job["progress"].items() if k not in timeless}
+        assert {k: v for k, v in item.items() if k != "progress"} == \
+            {k: job[k] for k in item if k != "progress"}
+
+
 def test_trials_and_leaderboard_walk_over_250_trials(filled: Filled) -> None:
     expected = [t.number for t in filled.trials]
     # Outside reference: the ranking worked out here in Python from the rows inserted.

@@ -6,6 +6,7 @@ from datetime import datetime
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Query, Request, Response
+from sqlalchemy import RowMapping
 from sqlalchemy.orm import Session
 
 from service import repository
@@ -15,6 +16,7 @@ from service.api.deps import SessionDep, SettingsDep, StoreDep
 from service.api.schemas import (
     JobList,
     JobOut,
+    JobSummary,
     Leaderboard,
     LeaderboardRow,
     Progress,
@@ -36,11 +38,28 @@ router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
 StatusFilter = StatusName
 
 
+def _progress(*, status: str, started_at: datetime | None, finished_at: datetime | None,
+              trials_completed: int, trials_pruned: int, trials_failed: int,
+              trials_budget: int, seconds_budget: float | None, best_score: float | None,
+              best_trial_number: int | None, trials_by_fidelity: dict[str, int] | None,
+              ) -> Progress:
+    started = as_utc(started_at)
+    end = as_utc(finished_at) or utcnow()
+    elapsed = max((end - started).total_seconds(), 0.0) if started else 0.0
+    return Progress(
+        trials_completed=trials_completed, trials_pruned=trials_pruned,
+        trials_failed=trials_failed, trials_budget=trials_budget, best_score=best_score,
+        best_trial_number=best_trial_number, trials_by_fidelity=trials_by_fidelity or {},
+        elapsed_seconds=round(elapsed, 3),
+        eta_seconds=eta_seconds(
+            status=status, elapsed=elapsed,
+            finished_trials=trials_completed + trials_pruned + trials_failed,
+            trials_budget=trials_budget, seconds_budget=seconds_budget),
+    )
+
+
 def to_out(job: Job) -> JobOut:
     effective = job.spec["effective"]
-    started = as_utc(job.started_at)
-    end = as_utc(job.finished_at) or utcnow()
-    elapsed = (end - started).total_seconds() if started else 0.0
     return JobOut(
         id=job.id,
         dataset_id=job.dataset_id,
@@ -51,21 +70,13 @@ def to_out(job: Job) -> JobOut:
         metric=effective["metric"],
         direction=effective["direction"],
         spec=effective,
-        progress=Progress(
-            trials_completed=job.trials_completed,
-            trials_pruned=job.trials_pruned,
-            trials_failed=job.trials_failed,
-            trials_budget=effective["budget"]["trials"],
-            best_score=job.best_score,
+        progress=_progress(
+            status=job.status, started_at=job.started_at, finished_at=job.finished_at,
+            trials_completed=job.trials_completed, trials_pruned=job.trials_pruned,
+            trials_failed=job.trials_failed, trials_budget=effective["budget"]["trials"],
+            seconds_budget=effective["budget"].get("seconds"), best_score=job.best_score,
             best_trial_number=job.best_trial_number,
-            trials_by_fidelity=job.trials_by_fidelity or {},
-            elapsed_seconds=round(max(elapsed, 0.0), 3),
-            eta_seconds=eta_seconds(
-                status=job.status, elapsed=max(elapsed, 0.0),
-                finished_trials=job.trials_completed + job.trials_pruned + job.trials_failed,
-                trials_budget=effective["budget"]["trials"],
-                seconds_budget=effective["budget"].get("seconds")),
-        ),
+            trials_by_fidelity=job.trials_by_fidelity),
         model_id=job.model_id,
         promotion=job.promotion,
         error=job.error,
@@ -75,8 +86,28 @@ def to_out(job: Job) -> JobOut:
         attempts=job.attempts,
         max_workers=job.max_workers,
         created_at=as_utc(job.created_at),
-        started_at=started,
+        started_at=as_utc(job.started_at),
         finished_at=as_utc(job.finished_at),
+    )
+
+
+def to_summary(row: RowMapping) -> JobSummary:
+    """A jobs-list row (repository.JOB_SUMMARY_COLUMNS) as the list shows it."""
+    return JobSummary(
+        id=row["id"], dataset_id=row["dataset_id"], status=row["status"],
+        priority=row["priority"], target=row["target"], task=row["task"],
+        metric=row["metric"], direction=row["direction"],
+        progress=_progress(
+            status=row["status"], started_at=row["started_at"],
+            finished_at=row["finished_at"], trials_completed=row["trials_completed"],
+            trials_pruned=row["trials_pruned"], trials_failed=row["trials_failed"],
+            trials_budget=row["trials_budget"], seconds_budget=row["seconds_budget"],
+            best_score=row["best_score"], best_trial_number=row["best_trial_number"],
+            trials_by_fidelity=row["trials_by_fidelity"]),
+        model_id=row["model_id"], error=row["error"],
+        cancel_requested=row["cancel_requested"], attempts=row["attempts"],
+        max_workers=row["max_workers"], created_at=as_utc(row["created_at"]),
+        started_at=as_utc(row["started_at"]), finished_at=as_utc(row["finished_at"]),
     )
 
 
@@ -161,9 +192,10 @@ def list_jobs(
     """`?cursor=` continues from a page's `next` (with the same `status`); the CSV form
     is the same page."""
     after = paging.decode("jobs", cursor, (datetime, str)) if cursor else None
-    rows, total = repository.list_jobs(session, status=status, limit=limit + 1, after=after)
-    rows, nxt = paging.cut(rows, limit, "jobs", lambda j: (as_utc(j.created_at), j.id))
-    out = [to_out(j) for j in rows]
+    rows, total = repository.list_job_summaries(session, status=status, limit=limit + 1,
+                                                after=after)
+    rows, nxt = paging.cut(rows, limit, "jobs", lambda j: (as_utc(j["created_at"]), j["id"]))
+    out = [to_summary(j) for j in rows]
     if wants_csv(request, format):
         return csv_response(JOB_CSV_HEADER, (_job_csv_row(j) for j in out))
     return JobList(items=out, total=total, next=nxt)
@@ -175,7 +207,7 @@ JOB_CSV_HEADER = ["id", "dataset_id", "status", "target", "task", "metric", "tri
                   "error"]
 
 
-def _job_csv_row(job: JobOut) -> list[object]:
+def _job_csv_row(job: JobSummary) -> list[object]:
     fields = {**job.progress.model_dump(), **job.model_dump(exclude={"progress"})}
     return [fields[h] for h in JOB_CSV_HEADER]
 
