@@ -3,8 +3,8 @@
 glibc's malloc gives each thread that finds the shared heap busy an arena of its own, up
 to eight per core, and an arena keeps the high-water mark of what its threads allocated.
 The API answers from a pool of dozens of threads, and some answers are large (a page of
-100 jobs is about 0.5 MB of JSON): in a 20-minute soak the API's RSS rose in steps of
-about 16 MiB, 16% after the warm-up, while two arenas kept it flat (+0.7%, same load;
+1,000 trials runs to hundreds of KB of JSON): in a 20-minute soak the API's RSS rose in
+steps of about 16 MiB, 16% after the warm-up, while two arenas kept it flat (+0.7%, same load;
 docs/measured-facts.md §7). The workers train in few threads and are left alone.
 """
 
