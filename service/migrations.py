@@ -7,9 +7,10 @@ The story, kept deliberately small:
    database lacks is added with ``ALTER TABLE … ADD COLUMN`` and its default, so an older
    database keeps its rows and gains the new columns. This covers new tables, new
    nullable columns and new columns with a scalar default.
-3. Anything else (a rename, a type change, a dropped column, a data rewrite) is a step in
+3. Every index the models declare but the database lacks is created the same way.
+4. Anything else (a rename, a type change, a dropped column, a data rewrite) is a step in
    ``STEPS``, keyed by the revision it produces and run once, in order, inside one
-   transaction; ``gk_schema`` records the revision reached. There are none yet.
+   transaction; ``gk_schema`` records the revision reached.
 
 The trial journal's two tables (``gk_trial_journal``, ``gk_trial_beats``) belong to the
 tuner, which creates them (``tuner.init_storage``); a study left in Optuna's own
@@ -27,12 +28,30 @@ from typing import Any
 import sqlalchemy as sa
 from sqlalchemy.engine import Connection, Engine
 
-from service.tables import ApiKey, Base, KeyGeneration, SchemaVersion, utcnow
+from service.tables import (
+    ApiKey,
+    Base,
+    Job,
+    KeyGeneration,
+    SchemaVersion,
+    job_summary_fields,
+    utcnow,
+)
 
 # Revision 1: the foundation. Revision 2: gk_job_workers, gk_jobs.max_workers/joinable.
 # Revision 3: gk_key_generation (seeded by _seed_key_generation on every migrate).
-SCHEMA_VERSION = 3
-STEPS: dict[int, Callable[[Connection], None]] = {}
+# Revision 4: gk_jobs' summary columns (target ... seconds_budget), filled from the spec.
+SCHEMA_VERSION = 4
+
+
+def _fill_job_summaries(conn: Connection) -> None:
+    rows = conn.execute(sa.select(Job.id, Job.spec).where(Job.target.is_(None))).all()
+    for job_id, spec in rows:
+        conn.execute(sa.update(Job).where(Job.id == job_id)
+                     .values(**job_summary_fields(spec or {})))
+
+
+STEPS: dict[int, Callable[[Connection], None]] = {4: _fill_job_summaries}
 
 
 def _default_sql(column: sa.Column[Any], conn: Connection) -> str | None:
@@ -70,11 +89,28 @@ def add_missing_columns(conn: Connection) -> list[str]:
     return added
 
 
+def add_missing_indexes(conn: Connection) -> list[str]:
+    """CREATE INDEX for each declared index the database lacks (``create_all`` makes the
+    indexes of the tables it creates only)."""
+    inspector = sa.inspect(conn)
+    added = []
+    for table in Base.metadata.sorted_tables:
+        if not inspector.has_table(table.name):
+            continue
+        present = {i["name"] for i in inspector.get_indexes(table.name)}
+        for index in table.indexes:
+            if index.name not in present:
+                index.create(conn)
+                added.append(str(index.name))
+    return added
+
+
 def migrate(engine: Engine) -> int:
     """Bring the service schema to :data:`SCHEMA_VERSION`; returns the revision found."""
     Base.metadata.create_all(engine)
     with engine.begin() as conn:
         add_missing_columns(conn)
+        add_missing_indexes(conn)
         row = conn.execute(sa.select(SchemaVersion.version).where(SchemaVersion.id == 1)).first()
         found = row[0] if row else (1 if _has_jobs(conn) else SCHEMA_VERSION)
         for version in sorted(v for v in STEPS if v > found):

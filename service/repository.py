@@ -98,22 +98,17 @@ def get_job(session: Session, job_id: str) -> Job:
     return job
 
 
-# What a row of the jobs list shows: the job's columns and the few fields of its stored
-# request that a summary names, extracted by the database. Decoding each job's whole
-# request (a few KB of JSON) made the list's cost grow with the page far more than the
-# rest of a request does.
-_EFFECTIVE = Job.spec["effective"]
+# What a row of the jobs list shows: the job's own columns, the summary fields copied
+# from its request included (tables.Job._summary). Decoding each job's whole request (a
+# few KB of JSON) made a page's cost grow with the requests' size. A row written by an
+# older process, without the copies, brings its request along instead.
 JOB_SUMMARY_COLUMNS = (
-    Job.id, Job.dataset_id, Job.status, Job.priority,
-    _EFFECTIVE["target"].as_string().label("target"),
-    _EFFECTIVE["task"].as_string().label("task"),
-    _EFFECTIVE["metric"].as_string().label("metric"),
-    _EFFECTIVE["direction"].as_string().label("direction"),
-    _EFFECTIVE["budget"]["trials"].as_integer().label("trials_budget"),
-    _EFFECTIVE["budget"]["seconds"].as_float().label("seconds_budget"),
+    Job.id, Job.dataset_id, Job.status, Job.priority, Job.target, Job.task, Job.metric,
+    Job.direction, Job.trials_budget, Job.seconds_budget,
     Job.trials_completed, Job.trials_pruned, Job.trials_failed, Job.trials_by_fidelity,
     Job.best_score, Job.best_trial_number, Job.model_id, Job.error, Job.cancel_requested,
     Job.attempts, Job.max_workers, Job.created_at, Job.started_at, Job.finished_at,
+    sa.case((Job.target.is_(None), Job.spec)).label("unsummarised_spec"),
 )
 
 

@@ -8,7 +8,7 @@ from datetime import UTC, datetime
 from typing import Any
 
 import sqlalchemy as sa
-from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
+from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, validates
 
 
 def utcnow() -> datetime:
@@ -32,6 +32,7 @@ class JobStatus(enum.StrEnum):
 
 class Dataset(Base):
     __tablename__ = "gk_datasets"
+    __table_args__ = (sa.Index("ix_gk_datasets_listed", "created_at", "id"),)
 
     id: Mapped[str] = mapped_column(sa.String(40), primary_key=True)
     name: Mapped[str] = mapped_column(sa.String(200))
@@ -50,7 +51,13 @@ class Dataset(Base):
 
 class Job(Base):
     __tablename__ = "gk_jobs"
-    __table_args__ = (sa.Index("ix_gk_jobs_claim", "status", "priority", "created_at"),)
+    __table_args__ = (
+        sa.Index("ix_gk_jobs_claim", "status", "priority", "created_at"),
+        # The jobs list, newest first, whole or by status: a page reads its rows off these
+        # in order instead of sorting every job ever queued.
+        sa.Index("ix_gk_jobs_listed", "created_at", "id"),
+        sa.Index("ix_gk_jobs_status_listed", "status", "created_at", "id"),
+    )
 
     id: Mapped[str] = mapped_column(sa.String(40), primary_key=True)
     # No foreign key: a job keeps the id of its dataset after the dataset is deleted.
@@ -58,6 +65,14 @@ class Job(Base):
     status: Mapped[str] = mapped_column(sa.String(16), default=JobStatus.QUEUED.value)
     priority: Mapped[int] = mapped_column(default=0)
     spec: Mapped[dict[str, Any]]
+    # Copies of the effective request's fields that the jobs list shows, kept by
+    # ``_summary`` whenever ``spec`` is set: a list page then reads no request JSON.
+    target: Mapped[str | None] = mapped_column(sa.Text)
+    task: Mapped[str | None] = mapped_column(sa.String(16))
+    metric: Mapped[str | None] = mapped_column(sa.String(40))
+    direction: Mapped[str | None] = mapped_column(sa.String(8))
+    trials_budget: Mapped[int | None]
+    seconds_budget: Mapped[float | None]
     study_name: Mapped[str] = mapped_column(sa.String(80))
     trials_completed: Mapped[int] = mapped_column(default=0)
     trials_pruned: Mapped[int] = mapped_column(default=0)
@@ -91,6 +106,21 @@ class Job(Base):
     started_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
     heartbeat_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
     finished_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True))
+
+    @validates("spec")
+    def _summary(self, _key: str, spec: dict[str, Any]) -> dict[str, Any]:
+        for name, value in job_summary_fields(spec).items():
+            setattr(self, name, value)
+        return spec
+
+
+def job_summary_fields(spec: dict[str, Any]) -> dict[str, Any]:
+    """The jobs list's columns (``Job.target`` ... ``Job.seconds_budget``) from a spec."""
+    effective = spec.get("effective") or {}
+    budget = effective.get("budget") or {}
+    return {"target": effective.get("target"), "task": effective.get("task"),
+            "metric": effective.get("metric"), "direction": effective.get("direction"),
+            "trials_budget": budget.get("trials"), "seconds_budget": budget.get("seconds")}
 
 
 class JobWorker(Base):
@@ -138,6 +168,7 @@ class Trial(Base):
 
 class Model(Base):
     __tablename__ = "gk_models"
+    __table_args__ = (sa.Index("ix_gk_models_listed", "created_at", "id"),)
 
     id: Mapped[str] = mapped_column(sa.String(40), primary_key=True)
     job_id: Mapped[str] = mapped_column(sa.ForeignKey("gk_jobs.id"), index=True)
@@ -292,7 +323,7 @@ class AuditEntry(Base):
     # None: a server without keys, or a command run on the server (keys create/revoke).
     key_id: Mapped[str | None] = mapped_column(sa.String(40))
     action: Mapped[str] = mapped_column(sa.String(40), index=True)
-    target: Mapped[str | None] = mapped_column(sa.String(200))
+    target: Mapped[str | None] = mapped_column(sa.Text)
     method: Mapped[str | None] = mapped_column(sa.String(8))
     path: Mapped[str | None] = mapped_column(sa.String(300))
     status: Mapped[int | None]

@@ -15,12 +15,14 @@ from datetime import timedelta
 
 import httpx
 import pytest
+import sqlalchemy as sa
 
 from examples.demo_data import kilns
 from service import audit, repository
-from service.db import session_scope
+from service.api.routes.jobs import to_summary
+from service.db import init_db, session_scope
 from service.settings import Settings
-from service.tables import Trial, utcnow
+from service.tables import Job, Trial, utcnow
 from tests.conftest import DB_KINDS, ROOT, child_env, fresh_database
 from tests.service.conftest import LiveApi, live_api
 
@@ -168,6 +170,32 @@ def test_a_jobs_list_item_is_the_job_without_its_request(filled: Filled) -> None
             {k: v for k, v in job["progress"].items() if k not in timeless}
         assert {k: v for k, v in item.items() if k != "progress"} == \
             {k: job[k] for k in item if k != "progress"}
+
+
+@pytest.mark.parametrize("db_url", DB_KINDS, indirect=True)
+def test_a_job_row_without_summary_columns_is_listed_from_its_request(db_url: str) -> None:
+    # A row an older API process wrote after the upgrade has no copies of its request's
+    # fields; the list reads them from the request instead.
+    init_db(db_url)
+    spec = {"effective": {"target": "yield_kg", "task": "regression", "metric": "rmse",
+                          "direction": "minimize", "budget": {"trials": 9, "seconds": 60.0}}}
+    with session_scope(db_url) as session:
+        repository.add_job(session, id="job_older", dataset_id="ds", spec=spec,
+                           study_name="s", warnings=[])
+        repository.add_job(session, id="job_newer", dataset_id="ds", spec=spec,
+                           study_name="s", warnings=[])
+        session.execute(sa.update(Job).where(Job.id == "job_older").values(
+            target=None, task=None, metric=None, direction=None, trials_budget=None,
+            seconds_budget=None))
+    with session_scope(db_url) as session:
+        rows, total = repository.list_job_summaries(session, status=None, limit=10)
+        items = {r["id"]: to_summary(r) for r in rows}
+    assert total == 2
+    for item in items.values():
+        assert (item.target, item.task, item.metric, item.direction) == (
+            "yield_kg", "regression", "rmse", "minimize")
+        assert item.progress.trials_budget == 9
+    assert rows[0]["unsummarised_spec"] is None or rows[1]["unsummarised_spec"] is None
 
 
 def test_trials_and_leaderboard_walk_over_250_trials(filled: Filled) -> None:

@@ -70,14 +70,21 @@ def test_old_database_gains_new_columns_and_keeps_rows(db_url: str) -> None:
             " warnings JSON NOT NULL, created_at TIMESTAMP WITH TIME ZONE NOT NULL,"
             " started_at TIMESTAMP WITH TIME ZONE, heartbeat_at TIMESTAMP WITH TIME ZONE,"
             " finished_at TIMESTAMP WITH TIME ZONE)"))
+        spec = ('{"effective": {"target": "defect", "task": "binary", "metric": "roc_auc",'
+                ' "direction": "maximize", "budget": {"trials": 7, "seconds": null}}}')
         conn.execute(sa.text(
-            "INSERT INTO gk_jobs VALUES ('job_old', 'ds', 'succeeded', 0, '{}', 's', 3, 0, 0,"
+            "INSERT INTO gk_jobs VALUES ('job_old', 'ds', 'succeeded', 0, :spec, 's', 3, 0, 0,"
             " 0.9, 1, false, NULL, NULL, NULL, 1, '[]', '2026-01-01 00:00:00+00', NULL, NULL,"
-            " NULL)"))
+            " NULL)"), {"spec": spec})
     init_db(db_url)
     init_db(db_url)  # idempotent
     with session_scope(db_url) as session:
         job = session.get(Job, "job_old")
         assert job is not None and job.max_workers == 1 and job.joinable is False
         assert job.trials_completed == 3
+        # The jobs list's columns, filled from the stored request by the upgrade.
+        assert (job.target, job.task, job.metric, job.direction, job.trials_budget,
+                job.seconds_budget) == ("defect", "binary", "roc_auc", "maximize", 7, None)
         assert session.scalar(sa.select(SchemaVersion.version)) == SCHEMA_VERSION
+    indexes = {i["name"] for i in sa.inspect(engine).get_indexes("gk_jobs")}
+    assert {"ix_gk_jobs_listed", "ix_gk_jobs_status_listed", "ix_gk_jobs_claim"} <= indexes

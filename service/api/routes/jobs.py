@@ -32,7 +32,7 @@ from service.jobrequest import JobCreate, JobRequest
 from service.progress import eta_seconds
 from service.settings import Settings
 from service.storage import LocalStore
-from service.tables import Job, JobStatus, Trial, utcnow
+from service.tables import Job, JobStatus, Trial, job_summary_fields, utcnow
 
 router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
 StatusFilter = StatusName
@@ -93,21 +93,24 @@ def to_out(job: Job) -> JobOut:
 
 def to_summary(row: RowMapping) -> JobSummary:
     """A jobs-list row (repository.JOB_SUMMARY_COLUMNS) as the list shows it."""
+    fields = dict(row)
+    if fields["target"] is None:  # written before the summary columns existed
+        fields.update(job_summary_fields(fields["unsummarised_spec"] or {}))
     return JobSummary(
-        id=row["id"], dataset_id=row["dataset_id"], status=row["status"],
-        priority=row["priority"], target=row["target"], task=row["task"],
-        metric=row["metric"], direction=row["direction"],
+        id=fields["id"], dataset_id=fields["dataset_id"], status=fields["status"],
+        priority=fields["priority"], target=fields["target"], task=fields["task"],
+        metric=fields["metric"], direction=fields["direction"],
         progress=_progress(
-            status=row["status"], started_at=row["started_at"],
-            finished_at=row["finished_at"], trials_completed=row["trials_completed"],
-            trials_pruned=row["trials_pruned"], trials_failed=row["trials_failed"],
-            trials_budget=row["trials_budget"], seconds_budget=row["seconds_budget"],
-            best_score=row["best_score"], best_trial_number=row["best_trial_number"],
-            trials_by_fidelity=row["trials_by_fidelity"]),
-        model_id=row["model_id"], error=row["error"],
-        cancel_requested=row["cancel_requested"], attempts=row["attempts"],
-        max_workers=row["max_workers"], created_at=as_utc(row["created_at"]),
-        started_at=as_utc(row["started_at"]), finished_at=as_utc(row["finished_at"]),
+            status=fields["status"], started_at=fields["started_at"],
+            finished_at=fields["finished_at"], trials_completed=fields["trials_completed"],
+            trials_pruned=fields["trials_pruned"], trials_failed=fields["trials_failed"],
+            trials_budget=fields["trials_budget"], seconds_budget=fields["seconds_budget"],
+            best_score=fields["best_score"], best_trial_number=fields["best_trial_number"],
+            trials_by_fidelity=fields["trials_by_fidelity"]),
+        model_id=fields["model_id"], error=fields["error"],
+        cancel_requested=fields["cancel_requested"], attempts=fields["attempts"],
+        max_workers=fields["max_workers"], created_at=as_utc(fields["created_at"]),
+        started_at=as_utc(fields["started_at"]), finished_at=as_utc(fields["finished_at"]),
     )
 
 
