@@ -47,6 +47,9 @@ class Log:
     calls: list[tuple[float, str, float, bool]] = field(default_factory=list)
     errors: list[str] = field(default_factory=list)
     latest_job: str | None = None
+    #: (when, items on the page) of each jobs-list answer: its cost follows the page,
+    #: which fills up to the default limit as jobs accumulate.
+    listed: list[tuple[float, int]] = field(default_factory=list)
 
     def add(self, route: str, started: float, response: httpx.Response | None,
             error: str | None = None) -> None:
@@ -145,7 +148,10 @@ def reader(base: str, log: Log, model_id: str, job_id: str, rows: list[dict],
                 call(log, client, "GET leaderboard", "GET", f"/v1/jobs/{job_id}/leaderboard",
                      params={"limit": 10})
             elif kind == 2:
-                call(log, client, "GET /v1/jobs", "GET", "/v1/jobs")
+                started = time.monotonic()
+                r = call(log, client, "GET /v1/jobs", "GET", "/v1/jobs")
+                if r is not None and r.status_code == 200:
+                    log.listed.append((started, len(r.json()["items"])))
             else:
                 call(log, client, "GET /v1/jobs/{id}", "GET",
                      f"/v1/jobs/{log.latest_job or job_id}")
@@ -309,6 +315,15 @@ def report(log: Log, samples: list[dict[str, object]], start: float, end: float,
             for x in samples[::step]))
         print("load average:        " + " ".join(
             f"{float(x['load']):>5.1f}" for x in samples[::step]))  # type: ignore[arg-type]
+        # The jobs list by band between those minutes: its latency against its page size.
+        edges = [float(x["t"]) for x in samples[::step]]  # type: ignore[arg-type]
+        bands = list(zip(edges, [*edges[1:], end], strict=True))
+        lists = [c for c in log.calls if c[1] == "GET /v1/jobs"]
+        print("jobs on a list page: " + " ".join(
+            f"{max([n for t, n in log.listed if a <= t < b], default=0):>5}"
+            for a, b in bands))
+        print("GET /v1/jobs p50 ms: " + " ".join(
+            f"{pct([c[2] for c in lists if a <= c[0] < b], 0.5):>5.1f}" for a, b in bands))
 
 
 if __name__ == "__main__":
