@@ -1,7 +1,8 @@
 """Warnings about data that may fool the search: leaks, copies, duplicates, imbalance, size.
 
-``table_warnings`` needs only the table (upload time); ``job_warnings`` knows the target
-and the hold-out (job start). Both return plain sentences and never raise on odd data.
+``table_warnings`` needs only the table (upload time; it lives in ``tuner.tablechecks``,
+which loads no scikit-learn); ``job_warnings`` knows the target and the hold-out (job
+start). Both return plain sentences and never raise on odd data.
 """
 
 from __future__ import annotations
@@ -11,6 +12,7 @@ import pandas as pd
 
 from tuner.dataset import PreparedData
 from tuner.metrics import METRICS
+from tuner.tablechecks import ROWS_PER_COLUMN, size_message, table_warnings
 from tuner.validation import ValidationPlan
 
 __all__ = ["job_warnings", "table_warnings", "single_feature_power"]
@@ -18,69 +20,12 @@ __all__ = ["job_warnings", "table_warnings", "single_feature_power"]
 #: A single feature explaining this share of the target alone is very likely a leak (a
 #: value recorded after, or computed from, the outcome); honest predictors rarely come close.
 LEAK_SHARE = 0.98
-#: Common practice: many more rows than columns, at least ten per column (a rule of thumb
-#: like the "ten events per variable" rule for regression models; Peduzzi et al., 1996,
-#: from memory). With rows comparable to columns, trees cannot choose between variables.
-ROWS_PER_COLUMN = 10
 #: Common practice: a class under 5% of the rows (or with under 20 rows) is "heavily
 #: imbalanced"; accuracy then flatters and folds may hold only a handful of its rows.
 MINORITY_SHARE = 0.05
 MINORITY_ROWS = 20
 _BINS = 20
-_MIX = np.uint64(0x9E3779B97F4A7C15)  # an odd 64-bit constant (the golden ratio's bits)
 _MAX_ROWS = 200_000  # the checks look at a seeded sample of bigger tables
-
-
-def table_warnings(frame: pd.DataFrame) -> list[str]:
-    """Upload-time warnings that need no target: duplicate rows, too few rows per column."""
-    out: list[str] = []
-    rows, cols = frame.shape
-    if rows and cols:
-        dup = count_duplicate_rows(frame)
-        if dup:
-            out.append(f"{dup} row(s) are exact duplicates of earlier rows; duplicates that "
-                       "land on both sides of a validation split make scores look better")
-    if cols > 1 and rows < ROWS_PER_COLUMN * (cols - 1):
-        out.append(_size_message(rows, cols - 1, "rows"))
-    return out
-
-
-def count_duplicate_rows(frame: pd.DataFrame) -> int:
-    """``int(frame.duplicated().sum())``, without factorising every column of a big table.
-
-    Each row gets a 64-bit key mixed from its columns' values (numbers by their bits,
-    anything else by its factorised code); rows that are equal get equal keys. Only rows
-    whose key occurs more than once are compared exactly, by ``duplicated`` itself, so a
-    key collision costs time, never a wrong count.
-    """
-    key = np.zeros(len(frame), dtype=np.uint64)
-    for name in frame.columns:
-        key *= _MIX
-        key += _column_key(frame[name])
-    candidates = pd.Series(key).duplicated(keep=False).to_numpy()
-    if not candidates.any():
-        return 0
-    return int(frame[candidates].duplicated().sum())
-
-
-def _column_key(s: pd.Series) -> np.ndarray:
-    """uint64 per row, equal for values ``duplicated`` treats as equal."""
-    dtype = s.dtype
-    if isinstance(dtype, np.dtype) and dtype.kind == "f":
-        v = s.to_numpy(dtype="float64")
-        # -0.0 == 0.0, and every NaN is one missing value: give each a single bit pattern.
-        v = np.where(np.isnan(v), np.nan, v + 0.0)
-        return v.view(np.uint64)
-    if isinstance(dtype, np.dtype) and dtype.kind in "iub":
-        return s.to_numpy().astype(np.uint64)
-    codes, _ = pd.factorize(s, use_na_sentinel=True)
-    return codes.astype(np.uint64)
-
-
-def _size_message(rows: int, columns: int, what: str) -> str:
-    return (f"only {rows} {what} for {columns} feature column(s): common practice asks for at "
-            f"least {ROWS_PER_COLUMN} rows per column; with fewer, the trees cannot reliably "
-            "tell useful columns from lucky ones")
 
 
 def _codes(x: pd.Series) -> np.ndarray:
@@ -252,5 +197,5 @@ def job_warnings(data: PreparedData, plan: ValidationPlan, *, seed: int = 0) -> 
             out.append(message)
     n_search, n_features = len(plan.train_idx), len(data.schema.names)
     if n_search < ROWS_PER_COLUMN * n_features:
-        out.append(_size_message(n_search, n_features, "search rows"))
+        out.append(size_message(n_search, n_features, "search rows"))
     return out

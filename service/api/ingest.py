@@ -253,7 +253,7 @@ def _safe(stem: str) -> str:
 def profile(frame: Any, kinds: dict[str, str] | None = None
             ) -> tuple[list[tuner.ColumnProfile], list[str]]:
     """Column profiles, and the column and table warnings, of a parsed table."""
-    from tuner.datachecks import table_warnings  # NumPy loads with the first upload
+    from tuner.tablechecks import table_warnings  # NumPy loads with the first upload
 
     profiles, warnings = tuner.profile_table(frame, kinds)
     return profiles, warnings + table_warnings(frame)

@@ -39,6 +39,24 @@ def test_the_check_can_see_a_heavy_import() -> None:
     assert {"lightgbm", "numpy", "optuna", "pandas"} <= set(loaded)
 
 
+def test_an_upload_loads_no_training_library(tmp_path: Path) -> None:
+    """Parsing, profiling and storing an upload (what the API process does with one) needs
+    pandas and pyarrow, never the training or plotting libraries."""
+    body = tmp_path / "kilns.csv"
+    body.write_text("peak_temp_c,clay_body,defect\n1240,raku,0\n1180,stoneware,1\n"
+                    "1240,raku,0\n")
+    loaded = _loaded_after(
+        "from pathlib import Path\n"
+        "from service.api.ingest import Received, parse_and_store\n"
+        f"received = Received(path=Path({str(body)!r}), size=1, sha256='', fmt='csv', "
+        "name='k')\n"
+        f"frame, profiles, warnings, _ = parse_and_store(received, Path({str(tmp_path)!r}) "
+        "/ 'out.parquet')\n"
+        "assert len(frame) == 3 and any('duplicates' in w for w in warnings), warnings")
+    assert {"pandas", "pyarrow"} <= set(loaded)
+    assert not {"optuna", "sklearn", "lightgbm", "matplotlib", "scipy"} & set(loaded)
+
+
 def _rss_mib(pid: int) -> float:
     for line in Path(f"/proc/{pid}/status").read_text().splitlines():
         if line.startswith("VmRSS:"):

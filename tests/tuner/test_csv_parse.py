@@ -11,7 +11,7 @@ import pandas as pd
 import pytest
 
 from tuner import profile_table, read_table
-from tuner.datachecks import count_duplicate_rows
+from tuner.tablechecks import count_duplicate_rows
 from tuner.io.csvcheck import check_csv
 from tuner.io.read import _normalise_column
 from tuner.profile import _distinct_floats
