@@ -127,9 +127,10 @@ def cmd_serve(args: argparse.Namespace) -> int:
     from service.api.app import create_app
     from service.auth import any_key_exists
     from service.db import init_db
-    from service.memory import limit_malloc_arenas
+    from service.memory import arrow_returns_memory, limit_malloc_arenas
 
     limit_malloc_arenas()  # before uvicorn's threads start (see service/memory.py)
+    arrow_returns_memory()  # before pyarrow loads; the workers inherit it
     settings = _settings(args)
     _setup_logging(settings)
     settings.ensure_dirs()
@@ -172,7 +173,10 @@ class _Server(uvicorn.Server):
 
 
 def cmd_worker(args: argparse.Namespace) -> int:
+    from service.memory import arrow_returns_memory
+
     os.environ.setdefault("OMP_WAIT_POLICY", "passive")  # before LightGBM loads OpenMP
+    arrow_returns_memory()  # before pyarrow loads (see service/memory.py)
     from service import worker
 
     settings = _settings(args)

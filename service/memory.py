@@ -1,4 +1,4 @@
-"""Memory settings of the API process.
+"""Memory settings of the API and worker processes.
 
 glibc's malloc gives each thread that finds the shared heap busy an arena of its own, up
 to eight per core, and an arena keeps the high-water mark of what its threads allocated.
@@ -35,3 +35,25 @@ def limit_malloc_arenas(arenas: int = ARENAS) -> bool:
         return bool(libc.mallopt(_M_ARENA_MAX, arenas))
     except (OSError, AttributeError):
         return False
+
+
+#: jemalloc settings for pyarrow's allocator: hand freed pages back to the system at once.
+#: pyarrow's own default keeps them about a second, so while an upload is parsed and
+#: converted to pandas, the freed parse buffers stayed resident beside the new frame
+#: (measured on a 1,000,000 x 20 table: +213 MiB over the frame's 189 MiB with this
+#: setting, +392 MiB without). ``pyarrow.jemalloc_set_decay_ms`` cannot do it later: it
+#: changes only arenas created after the call.
+ARROW_JEMALLOC_CONF = "dirty_decay_ms:0,muzzy_decay_ms:0"
+
+
+def arrow_returns_memory() -> bool:
+    """Set :data:`ARROW_JEMALLOC_CONF` for this process and its children; True if set.
+
+    pyarrow's jemalloc reads ``JE_ARROW_MALLOC_CONF`` once, when pyarrow loads, so this
+    must run before anything imports pyarrow. A value already in the environment wins.
+    """
+    if "pyarrow" in sys.modules or "JE_ARROW_MALLOC_CONF" in os.environ:
+        return False
+    os.environ["JE_ARROW_MALLOC_CONF"] = ARROW_JEMALLOC_CONF
+    return True
+

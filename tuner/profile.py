@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import os
 from collections.abc import Mapping
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import asdict, dataclass, replace
 from typing import Any
 
@@ -19,6 +21,9 @@ from tuner.columns import (
     to_float,
 )
 
+#: Tables with at least this many rows are profiled a column per thread, in _THREADS threads.
+_THREADED_ROWS = 100_000
+_THREADS = 2
 # Rows needed before "every value is distinct" suggests an identifier rather than chance.
 _ID_MIN_ROWS = 20
 #: Distinct values a numeric column may have for the profile to list them (a target with
@@ -113,8 +118,16 @@ def profile_table(df: pd.DataFrame, kinds: Mapping[str, str] | None = None
         (integers or strings, all distinct, at least 20 rows) and text columns, which are
         not used as features.
     """
-    profiles = [declare(profile_column(df[name]), (kinds or {}).get(str(name)))
-                for name in df.columns]
+    columns = [df[name] for name in df.columns]
+    if len(df) >= _THREADED_ROWS and len(columns) > 1:
+        # The distinct counts sort each column in NumPy, which lets go of the GIL: on a
+        # big table, two threads profile about twice as fast as one.
+        with ThreadPoolExecutor(max_workers=min(_THREADS, os.cpu_count() or 1),
+                                thread_name_prefix="gk-profile") as pool:
+            found = list(pool.map(profile_column, columns))
+    else:
+        found = [profile_column(c) for c in columns]
+    profiles = [declare(p, (kinds or {}).get(p.name)) for p in found]
     return profiles, column_warnings(profiles, df)
 
 

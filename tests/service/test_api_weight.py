@@ -57,6 +57,20 @@ def test_an_upload_loads_no_training_library(tmp_path: Path) -> None:
     assert not {"optuna", "sklearn", "lightgbm", "matplotlib", "scipy"} & set(loaded)
 
 
+def test_arrow_memory_setting_comes_before_pyarrow_loads() -> None:
+    # serve and worker set it first thing; pyarrow's allocator reads it when pyarrow loads.
+    code = ("import os, sys\n"
+            "from service.memory import arrow_returns_memory, ARROW_JEMALLOC_CONF\n"
+            "import service.cli, service.api.app\n"
+            "assert 'pyarrow' not in sys.modules\n"
+            "assert arrow_returns_memory()\n"
+            "assert os.environ['JE_ARROW_MALLOC_CONF'] == ARROW_JEMALLOC_CONF\n"
+            "del os.environ['JE_ARROW_MALLOC_CONF']\n"
+            "import pyarrow\n"
+            "assert not arrow_returns_memory()  # too late once pyarrow is loaded\n")
+    subprocess.run([sys.executable, "-c", code], cwd=ROOT, check=True)
+
+
 def _rss_mib(pid: int) -> float:
     for line in Path(f"/proc/{pid}/status").read_text().splitlines():
         if line.startswith("VmRSS:"):

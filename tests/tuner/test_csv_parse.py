@@ -11,10 +11,10 @@ import pandas as pd
 import pytest
 
 from tuner import profile_table, read_table
-from tuner.tablechecks import count_duplicate_rows
 from tuner.io.csvcheck import check_csv
 from tuner.io.read import _normalise_column
 from tuner.profile import _distinct_floats
+from tuner.tablechecks import count_duplicate_rows
 
 CELLS = ["1", "-3", "+1", "1.5", "", "NA", "nan", "NAN", "x", "True", "false", "TrUe",
          "2024-01-01", "2024-01-01 10:00", "10:00", "0x10", " 1", "1 ", "inf",
@@ -94,6 +94,21 @@ def test_type_change_far_down_the_file(tmp_path) -> None:
     assert ours["a"].dtype == "str" and ours["b"].isna().sum() == 1
 
 
+SAMPLE_ROWS = 300_000  # past the first MiB, whose types the parse asks for (arrowcsv)
+
+
+@pytest.mark.parametrize("first", ["1", "2.5", "true", "2024-01-01", "x"])
+@pytest.mark.parametrize("cell", [c for c in CELLS if c not in DIFFERENCES])
+def test_a_cell_after_the_sampled_head_is_read_as_pandas_reads_it(tmp_path, first: str,
+                                                                  cell: str) -> None:
+    # The first MiB says one type; a single later cell may need another (or be missing).
+    path = tmp_path / "t.csv"
+    path.write_text("a,b\n" + f"{first},1\n" * SAMPLE_ROWS + f"{cell},2\n", encoding="utf-8")
+    assert path.stat().st_size > 1 << 20
+    ours = read_table(path, "csv")
+    pd.testing.assert_frame_equal(ours, _pandas_reference(path))
+
+
 def test_ragged_row_keeps_its_line_number(tmp_path) -> None:
     path = tmp_path / "t.csv"
     path.write_text("a,b\n" + "1,2\n" * 100_000 + "3\n")
@@ -125,3 +140,21 @@ def test_distinct_floats_matches_nunique() -> None:
         values = rng.choice([0.0, -0.0, np.nan, np.inf, -np.inf, 1.5, 1e-300],
                             int(rng.integers(0, 12)))
         assert _distinct_floats(values) == pd.Series(values, dtype="float64").nunique()
+
+
+def test_a_big_table_is_profiled_in_threads_with_the_same_result() -> None:
+    # Past tuner.profile._THREADED_ROWS the columns are profiled in threads; the counts
+    # must be what pandas counts (nunique, isna) column by column.
+    rng = np.random.default_rng(3)
+    n = 120_000
+    values = rng.normal(size=n).round(3)
+    values[rng.random(n) < 0.05] = np.nan
+    frame = pd.DataFrame({"x": values, "k": rng.integers(0, 40, n),
+                          "c": pd.Series(rng.choice(["kiln_a", "kiln_b", None], n), dtype="str"),
+                          "flag": rng.random(n) < 0.3})
+    profiles, _ = profile_table(frame)
+    assert [p.name for p in profiles] == ["x", "k", "c", "flag"]
+    for p in profiles:
+        assert p.missing == int(frame[p.name].isna().sum())
+        assert p.distinct == int(frame[p.name].nunique(dropna=True))
+    assert [p.kind for p in profiles] == ["numeric", "numeric", "categorical", "boolean"]
