@@ -22,11 +22,11 @@ start-up race (docs/measured-facts.md §2).
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from typing import Any
 
 import sqlalchemy as sa
-from sqlalchemy.engine import Connection, Engine
+from sqlalchemy.engine import Connection, Engine, Inspector
 
 from service.tables import (
     ApiKey,
@@ -67,13 +67,18 @@ def _default_sql(column: sa.Column[Any], conn: Connection) -> str | None:
     return None
 
 
+def _existing_tables(conn: Connection) -> Iterator[tuple[Inspector, sa.Table]]:
+    """The declared tables the database already has, with an inspector to read them."""
+    inspector = sa.inspect(conn)
+    for table in Base.metadata.sorted_tables:
+        if inspector.has_table(table.name):
+            yield inspector, table
+
+
 def add_missing_columns(conn: Connection) -> list[str]:
     """ALTER TABLE … ADD COLUMN for each declared column the database lacks."""
-    inspector = sa.inspect(conn)
     added = []
-    for table in Base.metadata.sorted_tables:
-        if not inspector.has_table(table.name):
-            continue
+    for inspector, table in _existing_tables(conn):
         present = {c["name"] for c in inspector.get_columns(table.name)}
         for column in table.columns:
             if column.name in present:
@@ -92,11 +97,8 @@ def add_missing_columns(conn: Connection) -> list[str]:
 def add_missing_indexes(conn: Connection) -> list[str]:
     """CREATE INDEX for each declared index the database lacks (``create_all`` makes the
     indexes of the tables it creates only)."""
-    inspector = sa.inspect(conn)
     added = []
-    for table in Base.metadata.sorted_tables:
-        if not inspector.has_table(table.name):
-            continue
+    for inspector, table in _existing_tables(conn):
         present = {i["name"] for i in inspector.get_indexes(table.name)}
         for index in table.indexes:
             if index.name not in present:
