@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 import os
 import socket
 import statistics
@@ -85,8 +86,13 @@ class LiveServer:
 
 @contextmanager
 def live_server(home: Path, *, workers: int | None = 0, bench_routes: bool = False,
-                env: dict[str, str] | None = None) -> Iterator[LiveServer]:
-    """``grovekeeper serve`` (or the benchmark server with its echo route) on loopback."""
+                env: dict[str, str] | None = None,
+                log: Path | None = None) -> Iterator[LiveServer]:
+    """``grovekeeper serve`` (or the benchmark server with its echo route) on loopback.
+
+    ``log``: a file that receives the server's and its workers' log lines (default:
+    discarded).
+    """
     port = free_port()
     child = _child_env(home, **(env or {}))
     if bench_routes:
@@ -95,8 +101,9 @@ def live_server(home: Path, *, workers: int | None = 0, bench_routes: bool = Fal
         # workers=None: serve's own default (what suits the machine)
         cmd = [sys.executable, "-m", "service", "serve", "--port", str(port),
                *([] if workers is None else ["--workers", str(workers)])]
-    proc = subprocess.Popen(cmd, env=child, cwd=ROOT, stdout=subprocess.DEVNULL,
-                            stderr=subprocess.DEVNULL)
+    with open(log, "ab") if log is not None else contextlib.nullcontext() as sink:
+        proc = subprocess.Popen(cmd, env=child, cwd=ROOT, stdout=subprocess.DEVNULL,
+                                stderr=sink if sink is not None else subprocess.DEVNULL)
     base = f"http://127.0.0.1:{port}"
     try:
         wait_ready(base, proc)

@@ -177,6 +177,9 @@ def cmd_worker(args: argparse.Namespace) -> int:
 
     os.environ.setdefault("OMP_WAIT_POLICY", "passive")  # before LightGBM loads OpenMP
     arrow_returns_memory()  # before pyarrow loads (see service/memory.py)
+    # Before pyarrow loads: Arrow allocates through malloc, which returns what a read of
+    # a table freed (service/memory.py); its own pool (mimalloc) keeps it.
+    os.environ.setdefault("ARROW_DEFAULT_MEMORY_POOL", "system")
     from service import worker
 
     settings = _settings(args)

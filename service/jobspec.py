@@ -75,6 +75,9 @@ def build_run(stored: JobRequest | Mapping[str, Any], frame: pd.DataFrame, *,
         column_kinds=request.column_kinds,
         segments=request.segments,
     )
+    # The prepared features replace the raw table: the caller that passed it straight
+    # in (service/worker/context.py) holds no other reference, so it is freed here.
+    del frame
     if request.decision is not None and data.task != "binary":
         # Judged at submission when the profile told the task; here for the rest.
         message = f"decision costs apply to binary tasks; this job is {data.task}"

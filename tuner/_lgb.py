@@ -66,12 +66,54 @@ def base_params(task: str, *, num_class: int | None, metric: str, seed: int,
 
 
 def make_dataset(X: pd.DataFrame, y: np.ndarray, weight: np.ndarray | None,
-                 params: dict[str, Any], reference: lgb.Dataset | None = None) -> lgb.Dataset:
-    """Build a Dataset; categoricals are taken from the pandas ``category`` columns."""
-    return lgb.Dataset(
-        lgb_frame(X), label=y, weight=weight, reference=reference, params=params,
-        free_raw_data=True, categorical_feature="auto",
-    )
+                 params: dict[str, Any], reference: lgb.Dataset | None = None, *,
+                 rows: np.ndarray | None = None,
+                 matrix: np.ndarray | None = None) -> lgb.Dataset:
+    """A Dataset of ``X``'s rows at positions ``rows`` (every row: ``None``).
+
+    ``y`` and ``weight`` are those rows' already. Categoricals are the pandas
+    ``category`` columns, as LightGBM's pandas path takes them (codes, levels kept as
+    ``pandas_categorical``), but the float matrix LightGBM bins is gathered straight from
+    ``X``'s columns (:func:`feature_matrix`): no ``X.iloc[rows]`` copy of the frame, and
+    no second conversion inside LightGBM. ``matrix``: that matrix, built already.
+    """
+    names = lgb_names([str(c) for c in X.columns])
+    cats = [c for c in X.columns if isinstance(X[c].dtype, pd.CategoricalDtype)]
+    unordered = [name for name, c in zip(names, X.columns, strict=True)
+                 if c in cats and not X[c].cat.ordered]
+    data = feature_matrix(X, rows) if matrix is None else matrix
+    dataset = lgb.Dataset(data, label=y, weight=weight, reference=reference, params=params,
+                          free_raw_data=True, feature_name=names,
+                          categorical_feature=unordered)
+    if reference is None:
+        # What LightGBM's pandas path records; the model file keeps it for predictions.
+        dataset.pandas_categorical = [list(X[c].cat.categories) for c in cats]
+    return dataset
+
+
+def feature_matrix(X: pd.DataFrame, rows: np.ndarray | None = None, *,
+                   order: str = "F") -> np.ndarray:
+    """The float64 matrix LightGBM's pandas path makes of ``X`` (category codes, missing
+    and unseen levels as NaN), of the rows at positions ``rows`` only (all: ``None``).
+
+    Gathered column by column, so no copy of the frame is made on the way. Column-major
+    by default (LightGBM reads either layout without copying it; filling columns of a
+    column-major matrix is the fast way round).
+    """
+    n = len(X) if rows is None else len(rows)
+    out = np.empty((X.shape[1], n), dtype=np.float64).T if order == "F" else \
+        np.empty((n, X.shape[1]), dtype=np.float64)
+    for j, name in enumerate(X.columns):
+        column = X[name]
+        if isinstance(column.dtype, pd.CategoricalDtype):
+            codes = column.cat.codes.to_numpy()
+            codes = codes if rows is None else codes[rows]
+            out[:, j] = codes
+            out[codes < 0, j] = np.nan
+        else:
+            values = column.to_numpy(dtype=np.float64, na_value=np.nan)
+            out[:, j] = values if rows is None else values[rows]
+    return out
 
 
 def predict(booster: lgb.Booster, task: str, frame: pd.DataFrame | np.ndarray,
@@ -112,13 +154,4 @@ def frame_matrix(booster: lgb.Booster | lgb.Dataset,
                                                                             strict=True)
     ):
         return lgb_frame(frame)
-    out = np.empty(frame.shape, dtype=np.float64)
-    for j, name in enumerate(frame.columns):
-        column = frame[name]
-        if isinstance(column.dtype, pd.CategoricalDtype):
-            codes = column.cat.codes.to_numpy(dtype=np.float64)
-            codes[codes < 0] = np.nan
-            out[:, j] = codes
-        else:
-            out[:, j] = column.to_numpy(dtype=np.float64, na_value=np.nan)
-    return out
+    return feature_matrix(frame, order="C")

@@ -245,6 +245,10 @@ def to_codes(s: pd.Series, levels: tuple[str, ...]) -> tuple[pd.Categorical, np.
 
 def levels_of(s: pd.Series) -> tuple[str, ...]:
     """Sorted distinct non-missing level strings of a column."""
+    if isinstance(s.dtype, pd.StringDtype):
+        # The same strings, without a Python string per row first (a million rows of
+        # Arrow text would take about 50 MB of them).
+        return tuple(sorted(string_levels(s)))
     return tuple(sorted(pd.unique(as_level_strings(s).dropna().to_numpy())))
 
 

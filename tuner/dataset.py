@@ -285,7 +285,8 @@ def prepare(
         warnings.append(f"dropped {int((~keep).sum())} row(s) with a missing target '{target}'")
     if not keep.any():
         _raise([_error("target", f"target '{target}' has no values")])
-    frame = df.loc[keep].reset_index(drop=True)
+    # A copy of the table only when rows are dropped (most tables have every target).
+    frame = (df if keep.all() else df.loc[keep]).reset_index(drop=True)
     task, y, classes = _target(frame[target], target, task)
     weight, groups, times = _side_columns(frame, weight_column, group_column, time_column)
 
@@ -325,7 +326,9 @@ def prepare(
             _raise([_error(spec.name, f"{int(bad.sum())} value(s) cannot be read as {spec.kind}")])
         columns.update(values)
     return PreparedData(
-        X=pd.DataFrame(columns), y=y, task=task, classes=classes, schema=schema,
+        # The converted columns are this frame's own (copy=False): no second copy of every
+        # feature to consolidate them into one block while the first still exists.
+        X=pd.DataFrame(columns, copy=False), y=y, task=task, classes=classes, schema=schema,
         weight=weight, groups=groups, times=times, warnings=tuple(warnings), target=target,
         segments={name: frame[name].to_numpy(dtype=object) for name in segments or ()},
     )

@@ -15,7 +15,7 @@ from typing import Any
 import lightgbm as lgb
 import numpy as np
 
-from tuner._lgb import make_dataset, predict
+from tuner._lgb import feature_matrix, make_dataset, predict
 from tuner.dataset import PreparedData
 from tuner.validation import ValidationPlan
 from vocabulary import DEFAULT_DECISION
@@ -73,15 +73,17 @@ def out_of_fold(data: PreparedData, plan: ValidationPlan, params: dict[str, Any]
     """Positions (into the table) and probabilities of every search row that some fold
     validated, each predicted by that fold's model refit with the trial's early-stopped
     round count."""
-    X = data.X.iloc[plan.train_idx].reset_index(drop=True)
-    y = data.y[plan.train_idx]
-    w = None if data.weight is None else data.weight[plan.train_idx]
+    w = data.weight
     rows, probs = [], []
     for (fit, valid), rounds in zip(plan.folds, best_iterations, strict=False):
-        train = make_dataset(X.iloc[fit], y[fit], None if w is None else w[fit], params)
+        fit_rows, valid_rows = plan.train_idx[fit], plan.train_idx[valid]
+        train = make_dataset(data.X, data.y[fit_rows], None if w is None else w[fit_rows],
+                             params, rows=fit_rows)
         booster = lgb.train(params, train, num_boost_round=max(1, int(rounds)))
-        rows.append(plan.train_idx[valid])
-        probs.append(predict(booster, data.task, X.iloc[valid]))
+        del train
+        rows.append(valid_rows)
+        probs.append(predict(booster, data.task,
+                             feature_matrix(data.X, valid_rows, order="C")))
     return np.concatenate(rows), np.concatenate(probs)
 
 

@@ -10,7 +10,7 @@ import lightgbm as lgb
 import numpy as np
 
 from tuner import calibration as cal
-from tuner._lgb import base_params, frame_matrix, make_dataset, predict
+from tuner._lgb import base_params, feature_matrix, frame_matrix, make_dataset, predict
 from tuner.config import SearchConfig
 from tuner.dataset import PreparedData
 from tuner.errors import TunerError
@@ -101,25 +101,30 @@ def fit_final(data: PreparedData, plan: ValidationPlan, config: SearchConfig,
     }
     train = plan.train_idx
     weight = None if data.weight is None else data.weight[train]
-    dataset = make_dataset(data.X.iloc[train], data.y[train], weight, params)
+    dataset = make_dataset(data.X, data.y[train], weight, params, rows=train)
     started = time.perf_counter()
     booster = lgb.train(params, dataset, num_boost_round=best.boosting_rounds)
     seconds = time.perf_counter() - started
 
+    del dataset  # binned rows of the refit, no longer needed
     cmap, calibration = _choose_calibration(data, plan, config, params, best, booster)
     rows = plan.holdout_idx
     check_rows = rows if len(rows) else plan.train_idx[:1000]
-    held_raw = (_raw(booster, data.task, data.X.iloc[rows])
+    # The hold-out rows as floats, built once for every prediction below (category codes
+    # by the table's levels, which are the model's).
+    held = feature_matrix(data.X, rows, order="C")
+    check = held if len(rows) else feature_matrix(data.X, check_rows, order="C")
+    held_raw = (_raw(booster, data.task, held)
                 if len(rows) and "oof_log_loss" in calibration else None)
     if cmap is not None:
-        booster, problem = _write_calibration(booster, cmap, data.X.iloc[check_rows])
+        booster, problem = _write_calibration(booster, cmap, check)
         if problem:
             cmap = None
             calibration = {**calibration, "applied": False, "method": None, "reason": problem}
     holdout: dict[str, Any] = {}
     pred = None
     if len(rows):
-        pred = predict(booster, data.task, data.X.iloc[rows])
+        pred = predict(booster, data.task, held)
         w = None if data.weight is None else data.weight[rows]
         holdout = {**score_all(data.task, data.y[rows], pred, w), "rows": int(len(rows))}
         if held_raw is not None:
@@ -136,8 +141,9 @@ def fit_final(data: PreparedData, plan: ValidationPlan, config: SearchConfig,
         started = time.perf_counter()
         booster = lgb.train(params, everything, num_boost_round=best.boosting_rounds)
         seconds += time.perf_counter() - started
+        del everything
         if cmap is not None:
-            booster, problem = _write_calibration(booster, cmap, data.X.iloc[check_rows])
+            booster, problem = _write_calibration(booster, cmap, check)
             if problem:
                 raise TunerError(f"calibrating the model refit on all rows: {problem}")
         refit = {"rows": "all", "fit_rows": int(data.n_rows), "served_is_scored": False,
@@ -176,20 +182,22 @@ def out_of_fold_raw(data: PreparedData, plan: ValidationPlan, config: SearchConf
     for k, (fit, valid) in enumerate(used):
         fit_rows, valid_rows = train[fit], train[valid]
         w_fit = None if data.weight is None else data.weight[fit_rows]
-        dataset = make_dataset(data.X.iloc[fit_rows], data.y[fit_rows], w_fit, params)
+        dataset = make_dataset(data.X, data.y[fit_rows], w_fit, params,
+                               rows=fit_rows).construct()
+        matrix = feature_matrix(data.X, valid_rows, order="C")
         if exact:
             booster = lgb.train(params, dataset, num_boost_round=max(1, int(counts[k])))
         else:
             w_val = None if data.weight is None else data.weight[valid_rows]
-            valid_set = make_dataset(data.X.iloc[valid_rows], data.y[valid_rows], w_val,
-                                     params, reference=dataset)
+            valid_set = make_dataset(data.X, data.y[valid_rows], w_val, params,
+                                     reference=dataset, matrix=matrix)
             metric = get_metric(config.metric, data.task).lgb_metric_for(data.task)
             booster = lgb.train(
                 {**params, "metric": metric}, dataset, num_boost_round=config.max_rounds,
                 valid_sets=[valid_set], valid_names=["valid"],
                 callbacks=[lgb.early_stopping(config.early_stopping_rounds,
                                               first_metric_only=True, verbose=False)])
-        matrix = frame_matrix(booster, data.X.iloc[valid_rows])
+        del dataset
         raw = np.asarray(booster.predict(matrix, raw_score=True,
                                          num_iteration=booster.best_iteration or None),
                          dtype="float64")
@@ -204,8 +212,8 @@ def out_of_fold_raw(data: PreparedData, plan: ValidationPlan, config: SearchConf
 
 
 def _raw(booster: lgb.Booster, task: str, frame: Any) -> np.ndarray:
-    out = np.asarray(booster.predict(frame_matrix(booster, frame), raw_score=True),
-                     dtype="float64")
+    matrix = frame if isinstance(frame, np.ndarray) else frame_matrix(booster, frame)
+    out = np.asarray(booster.predict(matrix, raw_score=True), dtype="float64")
     return out.reshape(len(frame), -1) if task == "multiclass" else out
 
 

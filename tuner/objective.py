@@ -12,7 +12,7 @@ import lightgbm as lgb
 import numpy as np
 import optuna
 
-from tuner._lgb import base_params, frame_matrix, make_dataset, predict
+from tuner._lgb import base_params, feature_matrix, make_dataset, predict
 from tuner.dataset import PreparedData
 from tuner.fidelity import promoted, rung_key, subsample_rank
 from tuner.metrics import Metric
@@ -51,7 +51,9 @@ class _Fold:
     key: tuple[tuple[str, Any], ...]
     train_set: lgb.Dataset
     valid_set: lgb.Dataset
-    X_valid: Any  # what tuner._lgb.predict hands LightGBM: a float matrix (or the frame)
+    # The validation rows as tuner._lgb.predict hands them to LightGBM (a float matrix);
+    # None when LightGBM's own score of the fold is taken (CVObjective._predicts).
+    X_valid: np.ndarray | None
     y_valid: np.ndarray
     w_valid: np.ndarray | None
     # AUC of a fold holding one class is undefined: our metric says so, LightGBM's would not.
@@ -209,10 +211,12 @@ class CVObjective:
         same = _SAME_IN_LIGHTGBM.get((metric.name, data.task))
         exact = same == self.params_base["metric"] and data.weight is None
         self._lgb_score = same if exact else None
-        # Only the train part is kept. Each fold keeps its binned Datasets (raw rows freed)
-        # and its validation rows as a float matrix: one float copy of the train part
-        # over all folds, never n_folds copies of the table.
-        self._X = data.X.iloc[plan.train_idx].reset_index(drop=True)
+        # The table is held once (``data.X``); no copy of its train part is kept. Each
+        # fold keeps its binned Datasets (raw rows freed as soon as they are binned) and
+        # its validation rows as a float matrix: one float copy of the validation rows,
+        # never a copy of the table per fold or per trial.
+        self._features = data.X
+        self._train = plan.train_idx
         self._y = data.y[plan.train_idx]
         self._w = None if data.weight is None else data.weight[plan.train_idx]
         # Constructed folds, per thread (parallel trials never share a LightGBM Dataset).
@@ -255,21 +259,38 @@ class CVObjective:
         cached = folds.get(slot)
         if cached is not None and cached.key == key:
             return cached
+        # The other parameters' Datasets of this slot go before these are built.
+        cached = None
+        folds.pop(slot, None)
         fit, valid = self._positions(k, share)
         w_fit = None if self._w is None else self._w[fit]
         w_val = None if self._w is None else self._w[valid]
-        X_val, y_val = self._X.iloc[valid], self._y[valid]
-        train_set = make_dataset(self._X.iloc[fit], self._y[fit], w_fit, params)
-        valid_set = make_dataset(X_val, y_val, w_val, params, reference=train_set)
+        y_val = self._y[valid]
         started = time.perf_counter()
-        train_set.construct()
-        valid_set.construct()
+        # Built and binned one after the other: the fit rows' float matrix is freed once
+        # binned, before the validation rows' is gathered.
+        train_set = make_dataset(self._features, self._y[fit], w_fit, params,
+                                 rows=self._train[fit]).construct()
+        # The validation rows as floats, kept for predicting them (category codes by the
+        # table's levels, as every booster of this fold has them).
+        X_val = feature_matrix(self._features, self._train[valid], order="C")
+        valid_set = make_dataset(self._features, y_val, w_val, params, reference=train_set,
+                                 matrix=X_val).construct()
         built = time.perf_counter() - started
-        # Category codes by the train part's levels, as every booster of this fold has them.
-        cached = _Fold(key, train_set, valid_set, frame_matrix(train_set, X_val), y_val, w_val,
-                       both_classes=len(np.unique(y_val)) > 1, build_seconds=built)
+        both = len(np.unique(y_val)) > 1
+        # Kept only when the fold's score needs our own predictions (_fit_fold).
+        kept = X_val if self._predicts(share, both) else None
+        cached = _Fold(key, train_set, valid_set, kept, y_val, w_val,
+                       both_classes=both, build_seconds=built)
         folds[slot] = cached
         return cached
+
+    def _predicts(self, share: float, both_classes: bool) -> bool:
+        """Whether a fold at ``share`` is scored from our own predictions of its
+        validation rows; otherwise LightGBM's own value of the metric at the best round.
+        A single split on all the rows also needs them, for the score's standard error."""
+        single = len(self.plan.folds) == 1 and share >= 1.0
+        return self._lgb_score is None or not both_classes or single
 
     def _fit_fold(self, params: dict[str, Any], k: int, trial: optuna.Trial,
                   progress: dict[str, float], share: float = 1.0
@@ -303,9 +324,11 @@ class CVObjective:
         # Early stopping fires after `patience` rounds without gain, else the cap ends it.
         trained = min(self.max_rounds, best + self.early_stopping_rounds)
         single = len(self.plan.folds) == 1 and share >= 1.0
-        if self._lgb_score is not None and fold.both_classes and not single:
+        if not self._predicts(share, fold.both_classes):
+            assert self._lgb_score is not None
             score = float(booster.best_score["valid"][self._lgb_score])
             return score, best, seconds, trained, None
+        assert fold.X_valid is not None
         pred = predict(booster, self.task, fold.X_valid, num_iteration=best)
         score = self.metric(fold.y_valid, pred, fold.w_valid)
         se = (split_standard_error(self.metric, fold.y_valid, pred, fold.w_valid)

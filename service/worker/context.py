@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 import pandas as pd
 
 import tuner
-from service import repository
+from service import memory, repository
 from service.api.schemas import as_utc
 from service.db import session_scope
 from service.jobspec import RunPlan, build_run
@@ -47,6 +47,12 @@ class LoadedJob:
     max_workers: int
 
 
+def _read(ctx: WorkerContext, file_key: str, file_sha: str) -> pd.DataFrame:
+    frame = pd.read_parquet(ctx.store.local_path(file_key, file_sha))
+    memory.trim()  # the read's own buffers (about the table's size again), before prepare()
+    return frame
+
+
 def load_job(ctx: WorkerContext, job_id: str) -> LoadedJob:
     """The job's data, validation plan and search configuration, clamped to this machine."""
     with session_scope(ctx.url) as session:
@@ -56,8 +62,9 @@ def load_job(ctx: WorkerContext, job_id: str) -> LoadedJob:
         file_key, file_sha = dataset.file_key, dataset.file_sha256
         dataset_sha = dataset.sha256
         started_at, max_workers = job.started_at, job.max_workers
-    frame = pd.read_parquet(ctx.store.local_path(file_key, file_sha))
-    run = build_run(request, frame, dataset_sha256=dataset_sha)
+    # Read straight into the call: build_run holds the only reference to the raw table,
+    # and drops it once the prepared features replace it.
+    run = build_run(request, _read(ctx, file_key, file_sha), dataset_sha256=dataset_sha)
     # Parallel trials share this worker's cores: never more trials or LightGBM threads
     # than cores (tuner divides num_threads among the trials; default one each).
     cores = os.cpu_count() or 1

@@ -11,7 +11,7 @@ import numpy as np
 import tuner
 import tuner.decision
 import tuner.drift
-from service import queue, repository
+from service import memory, queue, repository
 from service.db import is_transient, session_scope, with_reconnect
 from service.errors import describe_failure
 from service.jobspec import RunPlan
@@ -144,13 +144,16 @@ def fit_and_store(url: str, store: ArtifactStore, job_id: str, run: RunPlan,
     ``Fenced`` otherwise, after deleting the file).
     """
     fitted = tuner.fit_final(run.data, run.plan, run.config, best)
+    memory.trim()  # each step below refits on the search rows; what one freed goes first
 
     costs = None if run.request.decision is None else run.request.decision.model_dump()
     decision = decide_safely(fitted, run, best, costs, job_id)
     # The hold-out confusion matrix uses the threshold the model serves labels with.
     threshold = float((decision or {}).get("threshold", 0.5))
     evaluation = evaluate_safely(fitted, run, url, job_id, threshold=threshold)
+    memory.trim()
     gain = gain_safely(fitted, run, url, job_id, best)
+    memory.trim()
     if gain.get("available") and not gain["helped"] and not gain["same_trial"]:
         evaluation.setdefault("warnings", []).append(gain["verdict"])
     model_id = repository.new_id("mdl")

@@ -11,7 +11,7 @@ import logging
 import traceback
 
 import tuner
-from service import queue
+from service import memory, queue
 from service.db import is_transient, session_scope, with_reconnect
 from service.worker import heartbeat
 from service.worker.context import WorkerContext, load_job
@@ -29,6 +29,7 @@ def join_job(ctx: WorkerContext, job_id: str) -> int:
     ran = 0
     try:
         job = with_reconnect(lambda: load_job(ctx, job_id), f"job {job_id}: loading")
+        memory.trim()  # what reading and preparing the table freed
         if job.config.timeout is not None and job.config.timeout <= 1.0:
             return 0  # the job's wall-clock limit is (nearly) spent: nothing to add
         # Each process on one study samples with its own salt, so they draw different

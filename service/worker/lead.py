@@ -18,7 +18,7 @@ from typing import Any
 import pandas as pd
 
 import tuner
-from service import comparing, queue, repository
+from service import comparing, memory, queue, repository
 from service.db import is_transient, session_scope, with_reconnect
 from service.errors import describe_failure, input_problem
 from service.jobspec import RunPlan
@@ -118,6 +118,7 @@ def prepare_job(ctx: WorkerContext, job_id: str) -> LoadedJob:
     Raises the tuner's bad-input errors when the rows show a problem the profile did not.
     """
     job = with_reconnect(lambda: load_job(ctx, job_id), f"job {job_id}: loading")
+    memory.trim()  # what reading and preparing the table freed
     record_plan(ctx, job_id, job.run, job.config)
     return job
 
@@ -141,6 +142,7 @@ def _execute(ctx: WorkerContext, job_id: str, flags: heartbeat.JobFlags,
     def on_trial(record: tuner.TrialRecord) -> None:
         if not record_trial(ctx.url, job_id, ctx.worker_id, record, epoch=epoch):
             flags.lost = True  # fenced off: stop at the next fold
+        memory.trim()  # what the trial's boosters and any new fold Datasets left free
 
     # Joiners may come once trial 0 is taken, and only until the last share of the
     # budget is handed out: one joining later would load the study to find nothing to run.
@@ -154,6 +156,7 @@ def _execute(ctx: WorkerContext, job_id: str, flags: heartbeat.JobFlags,
         on_budget_taken=(lambda: set_joinable(False)) if shared else None,
         fence=fence,
     )
+    memory.trim()  # the search's folds and boosters
     if job.max_workers > 1 and not flags.lost:
         set_joinable(False)
     if not should_stop():

@@ -65,12 +65,13 @@ def learning_curve(data: PreparedData, plan: ValidationPlan, params: dict[str, A
     all_fit, all_valid = plan.folds[fold]
     fit = sampling.bounded(all_fit, CURVE_FIT_ROWS, seed=config.seed)
     valid = sampling.bounded(all_valid, seed=config.seed)
-    X = data.X.iloc[plan.train_idx].reset_index(drop=True)
-    y = data.y[plan.train_idx]
-    w = None if data.weight is None else data.weight[plan.train_idx]
-    train_set = make_dataset(X.iloc[fit], y[fit], None if w is None else w[fit], full)
-    valid_set = make_dataset(X.iloc[valid], y[valid], None if w is None else w[valid], full,
-                             reference=train_set)
+    fit_rows, valid_rows = plan.train_idx[fit], plan.train_idx[valid]
+    w = data.weight
+    train_set = make_dataset(data.X, data.y[fit_rows], None if w is None else w[fit_rows],
+                             full, rows=fit_rows)
+    valid_set = make_dataset(data.X, data.y[valid_rows],
+                             None if w is None else w[valid_rows], full, reference=train_set,
+                             rows=valid_rows)
     record: dict[str, Any] = {}
     booster = lgb.train(
         full, train_set, num_boost_round=config.max_rounds,
