@@ -8,7 +8,6 @@ until the table has parsed; a failure at any step removes what was written.
 
 from __future__ import annotations
 
-import hashlib
 import json
 import re
 from concurrent.futures import ThreadPoolExecutor
@@ -20,6 +19,7 @@ from fastapi import Request
 
 import tuner
 from service.api.multipart import read_form
+from service.api.spool import Spool
 from service.errors import PayloadTooLarge, Unprocessable, UnsupportedMediaType
 from service.storage import sha256_file
 from vocabulary import DECLARED_KINDS
@@ -53,6 +53,8 @@ class Received:
     name: str
     #: Column kinds declared with the upload (``?kinds=`` or the multipart field).
     kinds: dict[str, str] = field(default_factory=dict)
+    #: The ``ByteScanner`` the bytes went through as they arrived (None: not scanned).
+    scanner: Any = None
 
 
 def _media_type(value: str | None) -> str:
@@ -71,16 +73,14 @@ def clean_name(name: str | None, fallback: str = "dataset") -> str:
     return name
 
 
-async def _copy(chunks: Any, dest: Path, limit: int) -> tuple[int, str]:
-    digest, size = hashlib.sha256(), 0
-    with open(dest, "wb") as out:
+async def _copy(chunks: Any, dest: Path, limit: int, scanner: Any) -> tuple[int, str]:
+    with open(dest, "wb") as out, Spool(out, scanner) as spool:
         async for chunk in chunks:
-            size += len(chunk)
-            if size > limit:
+            if spool.size + len(chunk) > limit:
                 raise PayloadTooLarge(f"upload exceeds the limit of {limit // (1 << 20)} MB")
-            digest.update(chunk)
-            out.write(chunk)
-    return size, digest.hexdigest()
+            await spool.write(chunk)
+        digest = await spool.finish()
+    return spool.size, digest
 
 
 def sniff(path: Path, declared: str) -> str:
@@ -174,8 +174,11 @@ async def receive(request: Request, tmp: Path, *, limit: int, name: str | None,
     if declared is not None and declared.isdigit() and int(declared) > limit + (1 << 16):
         raise PayloadTooLarge(f"upload exceeds the limit of {limit // (1 << 20)} MB")
     media = _media_type(request.headers.get("content-type"))
+    from tuner.io.csvcheck import ByteScanner  # NumPy loads with the first upload
+
+    scanner = None if media in PARQUET_TYPES else ByteScanner()
     if media == "multipart/form-data":
-        form = await read_form(request, tmp, limit=limit)
+        form = await read_form(request, tmp, limit=limit, scanner=scanner)
         if not form.has_file:
             raise Unprocessable("multipart upload needs a file field named 'file'",
                                 errors=[{"field": "file", "message": "missing"}])
@@ -191,7 +194,7 @@ async def receive(request: Request, tmp: Path, *, limit: int, name: str | None,
     elif media in CSV_TYPES or media in PARQUET_TYPES:
         fmt = "csv" if media in CSV_TYPES else "parquet"
         name = clean_name(name)
-        size, digest = await _copy(request.stream(), tmp, limit)
+        size, digest = await _copy(request.stream(), tmp, limit, scanner)
     else:
         raise UnsupportedMediaType(
             f"Content-Type {media or '(none)'} is not accepted; send text/csv, "
@@ -201,7 +204,7 @@ async def receive(request: Request, tmp: Path, *, limit: int, name: str | None,
     if fmt == "parquet" and table_limit is not None:
         check_parquet_footer(tmp, table_limit)
     return Received(path=tmp, size=size, sha256=digest, fmt=fmt, name=name,
-                    kinds=declared_kinds)
+                    kinds=declared_kinds, scanner=scanner)
 
 
 def check_parquet_footer(path: Path, limit: int) -> None:

@@ -8,13 +8,13 @@ other fields are small text held in memory, each bounded.
 
 from __future__ import annotations
 
-import hashlib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 from python_multipart.multipart import MultipartParser, parse_options_header
 
+from service.api.spool import Spool
 from service.errors import BadRequest, PayloadTooLarge, Unprocessable
 
 MAX_PARTS = 8
@@ -32,11 +32,10 @@ class Form:
 
 
 class _Reader:
-    def __init__(self, dest: Path, limit: int, out: Any) -> None:
+    def __init__(self, limit: int, spool: Spool) -> None:
         self.form = Form()
         self.limit = limit
-        self.out = out
-        self.digest = hashlib.sha256()
+        self.spool = spool
         self.parts = 0
         self.headers: dict[bytes, bytes] = {}
         self._field, self._value = b"", b""
@@ -81,8 +80,7 @@ class _Reader:
             if self.form.size > self.limit:
                 raise PayloadTooLarge(
                     f"upload exceeds the limit of {self.limit // (1 << 20)} MB")
-            self.digest.update(chunk)
-            self.out.write(chunk)
+            self.spool.add(chunk)
             return
         self.buffer += chunk
         if len(self.buffer) > MAX_FIELD_BYTES:
@@ -95,15 +93,16 @@ class _Reader:
             self.form.fields[self.name] = self.buffer.decode("utf-8", "replace")
 
 
-async def read_form(request: Any, dest: Path, *, limit: int) -> Form:
+async def read_form(request: Any, dest: Path, *, limit: int, scanner: Any = None) -> Form:
     """Stream ``request``'s multipart body: the ``file`` part to ``dest`` (at most
-    ``limit`` bytes), the other fields into ``Form.fields``."""
+    ``limit`` bytes, written, hashed and fed to ``scanner`` by a :class:`Spool`), the other
+    fields into ``Form.fields``."""
     _, options = parse_options_header(request.headers.get("content-type", ""))
     boundary = options.get(b"boundary")
     if not boundary:
         raise BadRequest("multipart/form-data without a boundary")
-    with open(dest, "wb") as out:
-        reader = _Reader(dest, limit, out)
+    with open(dest, "wb") as out, Spool(out, scanner) as spool:
+        reader = _Reader(limit, spool)
         callbacks = {name: getattr(reader, name) for name in (
             "on_part_begin", "on_part_data", "on_part_end", "on_header_field",
             "on_header_value", "on_header_end", "on_headers_finished")}
@@ -111,6 +110,7 @@ async def read_form(request: Any, dest: Path, *, limit: int) -> Form:
         try:
             async for chunk in request.stream():
                 parser.write(chunk)
+                await spool.settle()
             parser.finalize()
         except (PayloadTooLarge, Unprocessable, BadRequest):
             raise
@@ -118,5 +118,5 @@ async def read_form(request: Any, dest: Path, *, limit: int) -> Form:
             if type(exc).__module__.startswith("python_multipart"):
                 raise BadRequest(f"malformed multipart body: {exc}") from None
             raise
-    reader.form.sha256 = reader.digest.hexdigest()
+        reader.form.sha256 = await spool.finish()
     return reader.form

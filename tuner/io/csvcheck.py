@@ -39,48 +39,102 @@ class ByteScan:
     hex_prefix: bool  # "0x" or "0X" anywhere (pyarrow reads "0x10" as 16; see arrowcsv)
 
 
+class ByteScanner:
+    """The checks of :func:`scan_bytes`, fed the file's bytes in order as they arrive.
+
+    An upload is scanned while it is received, so the parse need not read the file an
+    extra time. The first fault is remembered (nothing after it is looked at) and raised
+    by :meth:`result`, which reads the file again only to name the fault's line.
+    Blocks are tested with C-level scans (``in``, ``isascii``); only a block with
+    non-ASCII bytes is decoded.
+    """
+
+    def __init__(self) -> None:
+        self.quoted = self.hex_prefix = False
+        self._done = 0  # bytes of the file before ``_pending``
+        self._pending = b""  # the tail of the last non-ASCII block after its last line end
+        self._last = b""  # the previous block's last byte, so a "0x" across a border is seen
+        self._start = b""  # the file's first two bytes
+        self._fault: tuple[str, int, int] | None = None  # (kind, offset, length)
+
+    @property
+    def failed(self) -> bool:
+        """A fault was seen: :meth:`result` will raise it, and later bytes are ignored."""
+        return self._fault is not None
+
+    def feed(self, block: bytes | bytearray | memoryview) -> None:
+        if self._fault is not None or not len(block):
+            return
+        if not isinstance(block, (bytes, bytearray)):
+            block = bytes(block)
+        if len(self._start) < 2:  # the byte-order mark, however the first bytes came
+            self._start += bytes(block[:2 - len(self._start)])
+            if self._start in (b"\xff\xfe", b"\xfe\xff"):
+                self._fault = ("utf16", 0, 0)
+                return
+        self.quoted = self.quoted or b'"' in block
+        # memchr for the letter first: a two-byte search is slow in digit-heavy text.
+        self.hex_prefix = self.hex_prefix or (b"x" in block and b"0x" in block) or (
+            b"X" in block and b"0X" in block) or (
+            self._last == b"0" and bytes(block[:1]) in (b"x", b"X"))
+        self._last = bytes(block[-1:])
+        nul = block.find(b"\x00")
+        if nul >= 0:
+            self._fault = ("nul", self._done + len(self._pending) + nul, 0)
+            return
+        if not self._pending and block.isascii():
+            self._done += len(block)
+            return
+        data = self._pending + bytes(block)
+        # Decode whole lines only, so a multi-byte character split by the block border
+        # is not mistaken for bad UTF-8.
+        cut = data.rfind(b"\n") + 1
+        self._check_utf8(data[:cut])
+        self._done += cut
+        self._pending = data[cut:]
+
+    def _check_utf8(self, data: bytes) -> None:
+        try:
+            data.decode("utf-8")
+        except UnicodeDecodeError:
+            self._fault = ("utf8", self._done, len(data))
+
+    def result(self, path: str | os.PathLike[str]) -> ByteScan:
+        """What the scan found; raises :class:`DatasetError` for the first fault.
+
+        ``path`` is the file that was fed (only a fault reads it, for the line number).
+        """
+        if self._fault is None and self._pending:
+            self._check_utf8(self._pending)
+        if self._fault is not None:
+            kind, offset, length = self._fault
+            if kind == "utf16":
+                raise _fail("file", "the file is UTF-16 text; re-save it as UTF-8")
+            if kind == "nul":
+                where = f"line {_line_at(path, offset)}"
+                raise _fail(where, f"the file holds binary data (a NUL byte on {where}), "
+                                   "not CSV text")
+            with open(path, "rb") as handle:
+                handle.seek(offset)
+                _decode(handle.read(length), path, offset)
+        return ByteScan(quoted=self.quoted, hex_prefix=self.hex_prefix)
+
+
 def scan_bytes(path: str | os.PathLike[str]) -> ByteScan:
     """Refuse NUL bytes (binary data) and text that is not UTF-8, naming the line.
 
-    Chunks are read into one reused buffer and tested with C-level scans (``in``,
-    ``isascii``); only a chunk with non-ASCII bytes is decoded, and lines are counted
-    only to name the line of a fault, so a plain ASCII file costs a few fast passes.
+    Chunks are read into one reused buffer; lines are counted only to name the line of
+    a fault, so a plain ASCII file costs a few fast passes.
     """
-    quoted = hex_prefix = False
+    scanner = ByteScanner()
     buffer = bytearray(16 * _CHUNK)
     view = memoryview(buffer)
-    done = 0  # bytes of the file before ``pending``
-    pending = b""
-    last = b""  # the previous chunk's last byte, so a "0x" across a border is seen
     with open(path, "rb") as handle:
         while size := handle.readinto(buffer):
-            chunk = view[:size] if size < len(buffer) else buffer
-            if done == 0 and not pending and bytes(chunk[:2]) in (b"\xff\xfe", b"\xfe\xff"):
-                raise _fail("file", "the file is UTF-16 text; re-save it as UTF-8")
-            block = chunk if isinstance(chunk, bytearray) else bytearray(chunk)
-            quoted = quoted or b'"' in block
-            # memchr for the letter first: a two-byte search is slow in digit-heavy text.
-            hex_prefix = hex_prefix or (b"x" in block and b"0x" in block) or (
-                b"X" in block and b"0X" in block) or (
-                last == b"0" and bytes(block[:1]) in (b"x", b"X"))
-            last = bytes(block[-1:])
-            nul = block.find(b"\x00")
-            if nul >= 0:
-                where = f"line {_line_at(path, done + len(pending) + nul)}"
-                raise _fail(where, f"the file holds binary data (a NUL byte on {where}), "
-                                   "not CSV text")
-            if not pending and block.isascii():
-                done += size
-                continue
-            data = pending + bytes(block)
-            # Decode whole lines only, so a multi-byte character split by the chunk border
-            # is not mistaken for bad UTF-8; look line by line only once a chunk fails.
-            cut = data.rfind(b"\n") + 1
-            _decode(data[:cut], path, done)
-            done += cut
-            pending = data[cut:]
-        _decode(pending, path, done)
-    return ByteScan(quoted=quoted, hex_prefix=hex_prefix)
+            scanner.feed(buffer if size == len(buffer) else view[:size])
+            if scanner.failed:
+                break
+    return scanner.result(path)
 
 
 def _line_at(path: str | os.PathLike[str], offset: int) -> int:

@@ -14,7 +14,14 @@ from tuner.columns import (
 )
 from tuner.errors import DatasetError
 from tuner.io.arrowcsv import ArrowParseError, read_csv
-from tuner.io.csvcheck import MAX_COLUMNS, MAX_NAME_LENGTH, check_csv, plain_header, scan_bytes
+from tuner.io.csvcheck import (
+    MAX_COLUMNS,
+    MAX_NAME_LENGTH,
+    ByteScan,
+    check_csv,
+    plain_header,
+    scan_bytes,
+)
 
 
 def _fail(field: str, message: str) -> DatasetError:
@@ -22,8 +29,10 @@ def _fail(field: str, message: str) -> DatasetError:
 
 
 def _read_csv(path: str | os.PathLike[str], max_columns: int,
-              text_columns: Collection[str] = ()) -> pd.DataFrame:
-    scan = scan_bytes(path)  # binary data, UTF-16, text that is not UTF-8: refused here
+              text_columns: Collection[str] = (), scan: ByteScan | None = None
+              ) -> pd.DataFrame:
+    if scan is None:  # binary data, UTF-16, text that is not UTF-8: refused here
+        scan = scan_bytes(path)
     header = None if scan.quoted else plain_header(path, max_columns)
     if header is None:
         # Quotes, or blank lines above the header: the csv module checks quoting and row
@@ -155,7 +164,7 @@ def _all_ints(s: pd.Series) -> bool:
 
 def read_table(
     path: str | os.PathLike[str], fmt: str, *, max_columns: int = MAX_COLUMNS,
-    text_columns: Collection[str] = (),
+    text_columns: Collection[str] = (), scan: ByteScan | None = None,
 ) -> pd.DataFrame:
     """Read an uploaded CSV or Parquet file into a DataFrame with default dtypes.
 
@@ -166,6 +175,8 @@ def read_table(
         max_columns: Wider tables are refused (default ``MAX_COLUMNS``, 2000).
         text_columns: CSV columns read as text exactly as written (leading zeros kept),
             whatever they look like; names the file lacks are ignored.
+        scan: What :class:`~tuner.io.csvcheck.ByteScanner` found while the file was
+            received (its ``result``); a CSV file is scanned here when it is left out.
 
     Returns:
         The table; text columns use pandas' ``str`` dtype, never pyarrow-backed dtypes.
@@ -181,7 +192,7 @@ def read_table(
         >>> frame = read_table("upload.csv", "csv")  # doctest: +SKIP
     """
     if fmt == "csv":
-        frame = _read_csv(path, max_columns, text_columns)
+        frame = _read_csv(path, max_columns, text_columns, scan)
     elif fmt == "parquet":
         frame = _read_parquet(path, max_columns)
     else:
