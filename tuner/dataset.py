@@ -13,6 +13,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+from pandas.api import types as ptypes
 
 from tuner.columns import (
     as_level_strings,
@@ -300,7 +301,8 @@ def prepare(
         if explicit and p.kind == "text":
             warnings.append(f"column '{p.name}' looks like free text; used as a categorical "
                             "feature because it was requested")
-    warnings += [w for w in column_warnings(profiles, frame)
+    integers = {c for c in candidates if ptypes.is_integer_dtype(frame[c].dtype)}
+    warnings += [w for w in column_warnings(profiles, len(frame), integers)
                  if not (explicit and w.endswith("will not be used as features"))]
     specs = []
     for p in profiles:

@@ -6,7 +6,7 @@ import os
 from collections.abc import Mapping
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import asdict, dataclass, replace
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 import pandas as pd
@@ -20,6 +20,7 @@ from tuner.columns import (
     to_bool_float,
     to_float,
 )
+from tuner.tablechecks import column_key, mix_key
 
 #: Tables with at least this many rows are profiled a column per thread, in _THREADS threads.
 _THREADED_ROWS = 100_000
@@ -99,7 +100,28 @@ def _distinct_floats(values: np.ndarray) -> int:
     return int(np.count_nonzero(ordered[1:] != ordered[:-1])) + int(len(ordered) > 0)
 
 
-def profile_table(df: pd.DataFrame, kinds: Mapping[str, str] | None = None
+class Columns(Protocol):
+    """A table read one column at a time, each as a pandas Series
+    (``tuner.io.read.CsvColumns``: an Arrow table converted a column at a time)."""
+
+    names: list[str]
+    rows: int
+
+    def series(self, index: int) -> pd.Series: ...
+
+
+class _FrameColumns:
+    def __init__(self, frame: pd.DataFrame) -> None:
+        self.frame = frame
+        self.names = [str(c) for c in frame.columns]
+        self.rows = len(frame)
+
+    def series(self, index: int) -> pd.Series:
+        return self.frame.iloc[:, index]
+
+
+def profile_table(df: pd.DataFrame | Columns, kinds: Mapping[str, str] | None = None, *,
+                  row_key: np.ndarray | None = None
                   ) -> tuple[list[ColumnProfile], list[str]]:
     """Infer each column's kind and collect warnings about doubtful columns.
 
@@ -109,26 +131,40 @@ def profile_table(df: pd.DataFrame, kinds: Mapping[str, str] | None = None
     ``max(2, min(1000, 0.5 * non_missing))`` distinct values, else ``text``.
 
     Args:
-        df: A table from :func:`read_table`.
+        df: A table from :func:`read_table`, or one read a column at a time (:class:`Columns`).
         kinds: Kinds the user declared (``vocabulary.DECLARED_KINDS``), checked already;
             they replace the inferred ones (``ignore`` keeps the inferred kind).
+        row_key: A zeroed uint64 array, one per row: each column's values are mixed into
+            it in column order while the column is at hand, as
+            ``tuner.tablechecks.row_keys`` would (one pass over the table for both).
 
     Returns:
         The profiles in column order, and warnings naming constant columns, ID-like columns
         (integers or strings, all distinct, at least 20 rows) and text columns, which are
         not used as features.
     """
-    columns = [df[name] for name in df.columns]
-    if len(df) >= _THREADED_ROWS and len(columns) > 1:
+    source = _FrameColumns(df) if isinstance(df, pd.DataFrame) else df
+
+    def one(index: int) -> tuple[ColumnProfile, bool, np.ndarray | None]:
+        s = source.series(index)
+        key = column_key(s) if row_key is not None else None
+        return profile_column(s), ptypes.is_integer_dtype(s.dtype), key
+
+    indices = range(len(source.names))
+    with ThreadPoolExecutor(max_workers=min(_THREADS, os.cpu_count() or 1),
+                            thread_name_prefix="gk-profile") as pool:
         # The distinct counts sort each column in NumPy, which lets go of the GIL: on a
         # big table, two threads profile about twice as fast as one.
-        with ThreadPoolExecutor(max_workers=min(_THREADS, os.cpu_count() or 1),
-                                thread_name_prefix="gk-profile") as pool:
-            found = list(pool.map(profile_column, columns))
-    else:
-        found = [profile_column(c) for c in columns]
-    profiles = [declare(p, (kinds or {}).get(p.name)) for p in found]
-    return profiles, column_warnings(profiles, df)
+        threaded = source.rows >= _THREADED_ROWS and len(indices) > 1
+        found = pool.map(one, indices) if threaded else map(one, indices)
+        profiles, integers = [], set()
+        for profile, integer, key in found:  # in column order; each key mixed, then freed
+            if key is not None and row_key is not None:
+                mix_key(row_key, key)
+            profiles.append(declare(profile, (kinds or {}).get(profile.name)))
+            if integer:
+                integers.add(profile.name)
+    return profiles, column_warnings(profiles, source.rows, integers)
 
 
 def declare(profile: ColumnProfile, kind: str | None) -> ColumnProfile:
@@ -138,14 +174,15 @@ def declare(profile: ColumnProfile, kind: str | None) -> ColumnProfile:
     return replace(profile, declared=kind, kind=profile.kind if kind == "ignore" else kind)
 
 
-def column_warnings(profiles: list[ColumnProfile], df: pd.DataFrame) -> list[str]:
-    """Warnings about constant, ID-like and free-text columns among ``profiles``."""
+def column_warnings(profiles: list[ColumnProfile], rows: int,
+                    integer_columns: set[str]) -> list[str]:
+    """Warnings about constant, ID-like and free-text columns among ``profiles`` (of a
+    table of ``rows`` rows, whose integer-typed columns are ``integer_columns``)."""
     warnings: list[str] = []
-    rows = len(df)
     for p in profiles:
         if p.distinct <= 1:
             warnings.append(f"column '{p.name}' is constant ({p.distinct} distinct value)")
-        id_typed = p.kind in ("categorical", "text") or ptypes.is_integer_dtype(df[p.name].dtype)
+        id_typed = p.kind in ("categorical", "text") or p.name in integer_columns
         if id_typed and p.distinct == rows and rows >= _ID_MIN_ROWS:
             warnings.append(
                 f"column '{p.name}' looks like an identifier (every value is distinct)"

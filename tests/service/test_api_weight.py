@@ -50,9 +50,9 @@ def test_an_upload_loads_no_training_library(tmp_path: Path) -> None:
         "from service.api.ingest import Received, parse_and_store\n"
         f"received = Received(path=Path({str(body)!r}), size=1, sha256='', fmt='csv', "
         "name='k')\n"
-        f"frame, profiles, warnings, _ = parse_and_store(received, Path({str(tmp_path)!r}) "
-        "/ 'out.parquet')\n"
-        "assert len(frame) == 3 and any('duplicates' in w for w in warnings), warnings")
+        f"parsed = parse_and_store(received, Path({str(tmp_path)!r}) / 'out.parquet')\n"
+        "assert parsed.rows == 3 and any('duplicates' in w for w in parsed.warnings), "
+        "parsed.warnings")
     assert {"pandas", "pyarrow"} <= set(loaded)
     assert not {"optuna", "sklearn", "lightgbm", "matplotlib", "scipy"} & set(loaded)
 

@@ -34,14 +34,25 @@ class ArrowParseError(Exception):
 def read_csv(path: str | os.PathLike[str], header: list[str], *, skip_rows: int,
              quoted: bool, hex_prefix: bool = False,
              text_columns: Collection[str] = ()) -> pd.DataFrame:
-    """Parse a CSV file whose header (already checked) is ``header``.
+    """Parse a CSV file whose header (already checked) is ``header`` into a frame: the
+    table of :func:`read_csv_table`, converted by :func:`to_frame`."""
+    return to_frame(read_csv_table(path, header, skip_rows=skip_rows, quoted=quoted,
+                                   hex_prefix=hex_prefix, text_columns=text_columns,
+                                   memory_pool=_pool()), release=True)
+
+
+def read_csv_table(path: str | os.PathLike[str], header: list[str], *, skip_rows: int,
+                   quoted: bool, hex_prefix: bool = False,
+                   text_columns: Collection[str] = (), memory_pool: Any = None) -> Any:
+    """Parse a CSV file whose header (already checked) is ``header`` into an Arrow table.
 
     ``skip_rows`` lines come before the data (the header line and any blank ones above
     it); ``quoted`` allows line breaks inside quoted fields; ``hex_prefix`` says the file
     holds "0x" somewhere (pyarrow reads ``0x10`` as 16; such columns stay text, since
     codes like ``0x1F`` are rarely meant as numbers). ``text_columns`` are read as text
-    exactly as written ("0042" stays "0042"). The frame has numpy dtypes (int64, float64,
-    bool) or pandas' ``str`` for text.
+    exactly as written ("0042" stays "0042"). Column types are int64, float64, bool or
+    string; :func:`to_frame` and :func:`column_to_pandas` turn them into pandas' (numpy
+    dtypes, ``str`` for text). ``memory_pool``: where Arrow allocates (its default if None).
     """
     import pyarrow as pa
 
@@ -54,14 +65,16 @@ def read_csv(path: str | os.PathLike[str], header: list[str], *, skip_rows: int,
     known = {**sampled, **{n: pa.string() for n, t in sampled.items() if _is_temporal(pa, t)},
              **declared}
     try:
-        table = _parse(path, header, skip_rows, quoted, {**convert, "column_types": known})
+        table = _parse(path, header, skip_rows, quoted, {**convert, "column_types": known},
+                       memory_pool)
     except ArrowParseError:
         if not sampled:
             raise
         # A later row disagrees with the first MiB's types (or the file is faulty): let
         # pyarrow infer from the whole file, as it would without a sample.
         known = dict(declared)
-        table = _parse(path, header, skip_rows, quoted, {**convert, "column_types": known})
+        table = _parse(path, header, skip_rows, quoted, {**convert, "column_types": known},
+                       memory_pool)
     as_text = [f.name for f in table.schema if _is_temporal(pa, f.type)
                or (hex_prefix and pa.types.is_integer(f.type))]
     if as_text:  # dates, times (and maybe hex) stay text: parse again with them as text
@@ -69,23 +82,48 @@ def read_csv(path: str | os.PathLike[str], header: list[str], *, skip_rows: int,
         del table
         table = _parse(path, header, skip_rows, quoted,
                        {**convert, "column_types": {**known,
-                                                    **{n: pa.string() for n in as_text}}})
+                                                    **{n: pa.string() for n in as_text}}},
+                       memory_pool)
         table = _integers_back(pa, table, integers)
     # Declared text stays as written: no padded-number conversion for those columns.
     columns = [column if field.name in declared else _column(pa, field.type, column)
                for field, column in zip(table.schema, table.columns, strict=True)]
-    table = pa.Table.from_arrays(columns, names=header)
-    del columns
+    return pa.Table.from_arrays(columns, names=header)
+
+
+def to_frame(table: Any, *, release: bool = False) -> pd.DataFrame:
+    """An Arrow table from :func:`read_csv_table` as a pandas frame.
+
+    ``release``: free each Arrow column as it is converted (the table is unusable after),
+    so the table is never held twice.
+    """
+    import pyarrow as pa
+
     gappy_flags = [f.name for f, c in zip(table.schema, table.columns, strict=True)
                    if pa.types.is_boolean(f.type) and c.null_count]
-    # One block per column and the Arrow buffers released as they are converted, so the
-    # table is never held twice.
-    frame: pd.DataFrame = table.to_pandas(split_blocks=True, self_destruct=True,
+    # One block per column, so the Arrow buffers can be released as they are converted.
+    frame: pd.DataFrame = table.to_pandas(split_blocks=True, self_destruct=release,
                                           use_threads=False, memory_pool=_pool(),
                                           types_mapper=_text_as_str)
-    for name in gappy_flags:  # True/False with gaps: objects, the gaps NaN (as pandas has)
-        frame[name] = frame[name].where(frame[name].notna(), np.nan)
+    for name in gappy_flags:
+        frame[name] = _gaps_as_nan(frame[name])
     return frame
+
+
+def column_to_pandas(name: str, column: Any) -> pd.Series:
+    """One column of a :func:`read_csv_table` table as :func:`to_frame` would give it."""
+    import pyarrow as pa
+
+    series: pd.Series = column.to_pandas(types_mapper=_text_as_str)
+    series.name = name
+    if pa.types.is_boolean(column.type) and column.null_count:
+        series = _gaps_as_nan(series)
+    return series
+
+
+def _gaps_as_nan(flags: pd.Series) -> pd.Series:
+    """True/False with gaps: objects, the gaps NaN (as pandas' reader has them)."""
+    return flags.where(flags.notna(), np.nan)
 
 
 #: Bytes at the head of a file whose inferred column types are asked for in the whole parse.
@@ -146,7 +184,7 @@ def _text_as_str(kind: Any) -> Any:
 
 
 def _parse(path: str | os.PathLike[str], header: list[str], skip_rows: int, quoted: bool,
-           convert: dict[str, Any]) -> Any:
+           convert: dict[str, Any], memory_pool: Any = None) -> Any:
     """The file as an Arrow table; :class:`ArrowParseError` when pyarrow refuses it.
 
     ``read_csv`` parses blocks on every core and infers types from the whole file. Its
@@ -162,7 +200,7 @@ def _parse(path: str | os.PathLike[str], header: list[str], skip_rows: int, quot
             read_options=pacsv.ReadOptions(column_names=header, skip_rows=skip_rows),
             parse_options=pacsv.ParseOptions(newlines_in_values=quoted),
             convert_options=pacsv.ConvertOptions(**convert),
-            memory_pool=_pool())
+            memory_pool=memory_pool)
     except (pa.ArrowException, OSError) as exc:
         raise ArrowParseError(str(exc)) from None
 

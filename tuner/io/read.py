@@ -4,7 +4,8 @@ the parse honest; profiling the columns is :mod:`tuner.profile`."""
 from __future__ import annotations
 
 import os
-from collections.abc import Collection
+from collections.abc import Callable, Collection
+from typing import Any
 
 import pandas as pd
 from pandas.api import types as ptypes
@@ -13,7 +14,13 @@ from tuner.columns import (
     as_level_strings,
 )
 from tuner.errors import DatasetError
-from tuner.io.arrowcsv import ArrowParseError, read_csv
+from tuner.io.arrowcsv import (
+    ArrowParseError,
+    column_to_pandas,
+    read_csv,
+    read_csv_table,
+    to_frame,
+)
 from tuner.io.csvcheck import (
     MAX_COLUMNS,
     MAX_NAME_LENGTH,
@@ -29,8 +36,10 @@ def _fail(field: str, message: str) -> DatasetError:
 
 
 def _read_csv(path: str | os.PathLike[str], max_columns: int,
-              text_columns: Collection[str] = (), scan: ByteScan | None = None
-              ) -> pd.DataFrame:
+              text_columns: Collection[str] = (), scan: ByteScan | None = None,
+              parse: Callable[..., Any] = read_csv) -> Any:
+    """The checks, then ``parse`` (a frame from ``read_csv``, or an Arrow table from
+    ``read_csv_table``)."""
     if scan is None:  # binary data, UTF-16, text that is not UTF-8: refused here
         scan = scan_bytes(path)
     header = None if scan.quoted else plain_header(path, max_columns)
@@ -40,9 +49,9 @@ def _read_csv(path: str | os.PathLike[str], max_columns: int,
         # faults without a line number.
         header = check_csv(path, max_columns=max_columns, scan=scan)
     try:
-        return read_csv(path, header, skip_rows=_header_line(path, scan.quoted),
-                        quoted=scan.quoted, hex_prefix=scan.hex_prefix,
-                        text_columns=text_columns)
+        return parse(path, header, skip_rows=_header_line(path, scan.quoted),
+                     quoted=scan.quoted, hex_prefix=scan.hex_prefix,
+                     text_columns=text_columns)
     except ArrowParseError as exc:
         # A ragged row or the like: find it again with the line number to report.
         check_csv(path, max_columns=max_columns, scan=scan)
@@ -197,10 +206,7 @@ def read_table(
         frame = _read_parquet(path, max_columns)
     else:
         raise _fail("format", f"unsupported format '{fmt}'; use 'csv' or 'parquet'")
-    if frame.shape[1] == 0:
-        raise _fail("file", "the file has no columns")
-    if len(frame) == 0:
-        raise _fail("file", "the file has a header but no data rows")
+    _check_size(frame.shape[1], len(frame))
     columns, changed = {}, False
     for name in frame.columns:
         column = frame[name]
@@ -208,3 +214,49 @@ def read_table(
         changed = changed or columns[name] is not column
     # Nothing to convert (the usual case for CSV): keep the frame rather than copy it.
     return pd.DataFrame(columns) if changed else frame
+
+
+def _check_size(columns: int, rows: int) -> None:
+    if columns == 0:
+        raise _fail("file", "the file has no columns")
+    if rows == 0:
+        raise _fail("file", "the file has a header but no data rows")
+
+
+class CsvColumns:
+    """A CSV file parsed into Arrow and handed out one column at a time.
+
+    Each column becomes a pandas Series only while it is looked at, exactly as
+    :func:`read_table` would have it in the frame, so a big upload can be profiled and
+    stored without a pandas copy of the whole table beside the Arrow one.
+    """
+
+    def __init__(self, table: Any) -> None:
+        self.table = table
+        self.names: list[str] = list(table.column_names)
+        self.rows: int = table.num_rows
+
+    def series(self, index: int) -> pd.Series:
+        name = self.names[index]
+        return _normalise_column(name, column_to_pandas(name, self.table.column(index)))
+
+    def frame(self, rows: Any = None) -> pd.DataFrame:
+        """The rows where the boolean mask ``rows`` holds (all if None), as a frame."""
+        part = self.table if rows is None else self.table.filter(rows)
+        frame = to_frame(part)
+        return pd.DataFrame({n: _normalise_column(n, frame[n]) for n in frame.columns})
+
+
+def read_csv_columns(
+    path: str | os.PathLike[str], *, max_columns: int = MAX_COLUMNS,
+    text_columns: Collection[str] = (), scan: ByteScan | None = None,
+) -> CsvColumns:
+    """Read a CSV file as :func:`read_table` does, checks and errors included, into Arrow.
+
+    The result hands out columns as pandas Series one at a time (:class:`CsvColumns`);
+    ``CsvColumns.frame()`` is the frame :func:`read_table` returns.
+    """
+    columns = CsvColumns(_read_csv(path, max_columns, text_columns, scan,
+                                   parse=read_csv_table))
+    _check_size(len(columns.names), columns.rows)
+    return columns

@@ -39,7 +39,7 @@ def _store_dataset(url: str, store: LocalStore, received: ingest.Received) -> Da
     dataset_id = repository.new_id("ds")
     key = f"datasets/{dataset_id}.parquet"
     with store.temp_path(".parquet") as tmp:
-        frame, profiles, warnings, file_sha = ingest.parse_and_store(received, tmp)
+        parsed = ingest.parse_and_store(received, tmp)
         store.put(tmp, key)
     try:
         with session_scope(url) as session:
@@ -47,15 +47,15 @@ def _store_dataset(url: str, store: LocalStore, received: ingest.Received) -> Da
                 session,
                 id=dataset_id,
                 name=received.name,
-                rows=len(frame),
-                n_columns=frame.shape[1],
+                rows=parsed.rows,
+                n_columns=parsed.n_columns,
                 size_bytes=received.size,
                 sha256=received.sha256,
                 source_format=received.fmt,
-                columns=[p.to_dict() for p in profiles],
-                warnings=warnings,
+                columns=[p.to_dict() for p in parsed.profiles],
+                warnings=parsed.warnings,
                 file_key=key,
-                file_sha256=file_sha,
+                file_sha256=parsed.file_sha256,
             )
             return to_out(dataset)
     except BaseException:
