@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import os
 from collections.abc import Mapping
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import Executor, ThreadPoolExecutor
 from dataclasses import asdict, dataclass, replace
 from typing import Any, Protocol
 
@@ -121,7 +121,7 @@ class _FrameColumns:
 
 
 def profile_table(df: pd.DataFrame | Columns, kinds: Mapping[str, str] | None = None, *,
-                  row_key: np.ndarray | None = None
+                  row_key: np.ndarray | None = None, pool: Executor | None = None
                   ) -> tuple[list[ColumnProfile], list[str]]:
     """Infer each column's kind and collect warnings about doubtful columns.
 
@@ -137,6 +137,8 @@ def profile_table(df: pd.DataFrame | Columns, kinds: Mapping[str, str] | None = 
         row_key: A zeroed uint64 array, one per row: each column's values are mixed into
             it in column order while the column is at hand, as
             ``tuner.tablechecks.row_keys`` would (one pass over the table for both).
+        pool: Threads to profile a big table's columns on, shared with other work (by
+            default two threads of its own, or none on one core).
 
     Returns:
         The profiles in column order, and warnings naming constant columns, ID-like columns
@@ -151,12 +153,14 @@ def profile_table(df: pd.DataFrame | Columns, kinds: Mapping[str, str] | None = 
         return profile_column(s), ptypes.is_integer_dtype(s.dtype), key
 
     indices = range(len(source.names))
-    with ThreadPoolExecutor(max_workers=min(_THREADS, os.cpu_count() or 1),
-                            thread_name_prefix="gk-profile") as pool:
+    big = source.rows >= _THREADED_ROWS and len(indices) > 1
+    workers = min(_THREADS, os.cpu_count() or 1) if big and pool is None else 0
+    with ThreadPoolExecutor(max_workers=max(workers, 1),
+                            thread_name_prefix="gk-profile") as own:
         # The distinct counts sort each column in NumPy, which lets go of the GIL: on a
         # big table, two threads profile about twice as fast as one.
-        threaded = source.rows >= _THREADED_ROWS and len(indices) > 1
-        found = pool.map(one, indices) if threaded else map(one, indices)
+        runner = pool if pool is not None and big else own if workers > 1 else None
+        found = runner.map(one, indices) if runner is not None else map(one, indices)
         profiles, integers = [], set()
         for profile, integer, key in found:  # in column order; each key mixed, then freed
             if key is not None and row_key is not None:
