@@ -76,9 +76,11 @@ def column_key(s: pd.Series) -> np.ndarray:
     for values ``duplicated`` treats as equal."""
     dtype = s.dtype
     if isinstance(dtype, np.dtype) and dtype.kind == "f":
-        v = s.to_numpy(dtype="float64")
         # -0.0 == 0.0, and every NaN is one missing value: give each a single bit pattern.
-        v = np.where(np.isnan(v), np.nan, v + 0.0)
+        v = s.to_numpy(dtype="float64") + 0.0  # a new array, so the NaNs can be set in it
+        gaps = np.isnan(v)
+        if gaps.any():
+            v[gaps] = np.nan
         return v.view(np.uint64)
     if isinstance(dtype, np.dtype) and dtype.kind in "iub":
         return s.to_numpy().astype(np.uint64)
