@@ -368,7 +368,8 @@ def _parquet_options(schema: Any) -> dict[str, Any]:
     import pyarrow as pa
 
     floats = {f.name for f in schema if pa.types.is_floating(f.type)}
-    return {"use_dictionary": [n for n in schema.names if n not in floats] or False,
+    others = [n for n in schema.names if n not in floats]
+    return {"use_dictionary": others or False, "write_statistics": others or False,
             "compression": {n: "none" if n in floats else "snappy" for n in schema.names}}
 
 
