@@ -287,12 +287,20 @@ class Parsed:
 def parse_and_store(received: Received, dest: Path) -> Parsed:
     """Parse the upload, then write it to ``dest`` as Parquet while it is profiled.
 
-    The Parquet write (Arrow code, which releases the GIL) runs in a second thread beside
+    The Parquet write (Arrow code, which releases the GIL) runs on another thread beside
     the profile, so the two overlap on a machine with a core to spare. Bad tables raise
-    tuner.DatasetError (422) before anything is written.
+    tuner.DatasetError (422) before anything is written. What the upload freed goes back
+    to the system at the end, whatever the outcome.
     """
-    if received.fmt == "csv":
-        return _parse_csv(received, dest)
+    try:
+        return _parse_csv(received, dest) if received.fmt == "csv" else _parse_parquet(
+            received, dest)
+    finally:
+        release_memory()
+
+
+def _parse_parquet(received: Received, dest: Path) -> Parsed:
+    """A Parquet upload is read into a pandas frame (``tuner.read_table``), as a job reads it."""
     from tuner.columns import as_declared  # pandas loads with the first upload
 
     text = [c for c, k in received.kinds.items() if k in ("categorical", "text")]
@@ -341,10 +349,7 @@ def _parse_csv(received: Received, dest: Path) -> Parsed:
         duplicates = duplicates_among(key, columns.frame)
         digest = written.result()
     warnings += shape_warnings(columns.rows, len(columns.names), duplicates)
-    rows, n_columns = columns.rows, len(columns.names)
-    del columns, key
-    release_memory()
-    return Parsed(rows, n_columns, profiles, warnings, digest)
+    return Parsed(columns.rows, len(columns.names), profiles, warnings, digest)
 
 
 def release_memory() -> None:
@@ -360,10 +365,11 @@ def release_memory() -> None:
 
 
 def _parquet_options(schema: Any) -> dict[str, Any]:
-    """Dictionary encoding and snappy compression for columns other than floats.
+    """Dictionary encoding, snappy and min/max statistics for columns other than floats.
 
-    Measured floats rarely repeat enough for a dictionary, and snappy shrank a million
-    random floats by 6% for a third of the whole write's time.
+    Measured floats rarely repeat enough for a dictionary, snappy shrank a million random
+    floats by 6% for a third of the whole write's time, and nothing reads the statistics
+    (docs/measured-facts.md §9).
     """
     import pyarrow as pa
 
