@@ -393,7 +393,7 @@ def write_parquet(frame: Any, dest: Path) -> str:
         for start in range(0, max(len(frame), 1), ROW_GROUP):
             part = frame.iloc[start:start + ROW_GROUP]
             writer.write_table(pa.Table.from_pandas(part, schema=schema, preserve_index=False))
-    return sha256_file(dest)  # ArtifactStore.put syncs the file when it moves it in
+    return _hash_and_sync(dest)
 
 
 def write_arrow_parquet(table: Any, dest: Path) -> str:
@@ -403,4 +403,17 @@ def write_arrow_parquet(table: Any, dest: Path) -> str:
     import pyarrow.parquet as pq
 
     pq.write_table(table, dest, row_group_size=ROW_GROUP, **_parquet_options(table.schema))
-    return sha256_file(dest)
+    return _hash_and_sync(dest)
+
+
+def _hash_and_sync(path: Path) -> str:
+    """The written file's sha256, after it is flushed to disk.
+
+    ``ArtifactStore.put`` syncs the file again when it moves it in; done here, on the
+    writer's thread while the profile still runs, that second sync finds nothing to
+    write (a 110 MB file took 0.05-0.07 s to sync, on the request's path before).
+    """
+    digest = sha256_file(path)
+    with open(path, "rb") as handle:
+        os.fsync(handle.fileno())
+    return digest
