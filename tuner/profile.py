@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import os
 from collections.abc import Mapping
 from concurrent.futures import Executor, ThreadPoolExecutor
@@ -155,13 +156,13 @@ def profile_table(df: pd.DataFrame | Columns, kinds: Mapping[str, str] | None = 
 
     indices = range(len(source.names))
     big = source.rows >= _THREADED_ROWS and len(indices) > 1
-    workers = min(_THREADS, os.cpu_count() or 1) if big and pool is None else 0
-    with ThreadPoolExecutor(max_workers=max(workers, 1),
-                            thread_name_prefix="gk-profile") as own:
-        # The distinct counts sort each column in NumPy, which lets go of the GIL: on a
-        # big table, two threads profile about twice as fast as one.
-        runner = pool if pool is not None and big else own if workers > 1 else None
-        found = runner.map(one, indices) if runner is not None else map(one, indices)
+    threads = min(_THREADS, os.cpu_count() or 1)
+    with contextlib.ExitStack() as stack:
+        if big and pool is None and threads > 1:
+            # The distinct counts sort each column in NumPy, which lets go of the GIL: on
+            # a big table, two threads profile about twice as fast as one.
+            pool = stack.enter_context(ThreadPoolExecutor(threads, "gk-profile"))
+        found = pool.map(one, indices) if big and pool is not None else map(one, indices)
         profiles, integers = [], set()
         for profile, integer, key in found:  # in column order; each key mixed, then freed
             if key is not None and row_key is not None:

@@ -151,20 +151,14 @@ def check_kinds(frame: Any, kinds: dict[str, str]) -> None:
     """
     from tuner.columns import declared_problem  # pandas loads with the first upload
 
-    by_column = hasattr(frame, "series")
-    names = list(frame.names if by_column else frame.columns)
-
-    def column(name: str) -> Any:
-        return frame.series(names.index(name)) if by_column else frame[name]
-
     errors = []
-    for name, kind in kinds.items():
-        if name not in names:
-            errors.append({"field": f"kinds.{name}", "message": "no such column"})
+    for column, kind in kinds.items():
+        if column not in frame.columns:
+            errors.append({"field": f"kinds.{column}", "message": "no such column"})
             continue
-        problem = declared_problem(column(name), kind)
+        problem = declared_problem(frame[column], kind)
         if problem:
-            errors.append({"field": f"kinds.{name}", "message": problem})
+            errors.append({"field": f"kinds.{column}", "message": problem})
     if errors:
         raise Unprocessable(f"{errors[0]['field']}: {errors[0]['message']}",
                             errors=errors)

@@ -236,9 +236,17 @@ class CsvColumns:
         self.names: list[str] = list(table.column_names)
         self.rows: int = table.num_rows
 
+    @property
+    def columns(self) -> list[str]:
+        return self.names
+
     def series(self, index: int) -> pd.Series:
         name = self.names[index]
         return _normalise_column(name, column_to_pandas(name, self.table.column(index)))
+
+    def __getitem__(self, name: str) -> pd.Series:
+        """The column ``name``, as a frame's ``frame[name]`` would give it."""
+        return self.series(self.names.index(name))
 
     def frame(self, rows: Any = None) -> pd.DataFrame:
         """The rows where the boolean mask ``rows`` holds (all if None), as a frame."""
